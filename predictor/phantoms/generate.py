@@ -1,0 +1,253 @@
+"""Write a phantom cohort: a BIDS dataset plus its ground truth and population template.
+
+Layout under OUT::
+
+    dataset_description.json, participants.tsv, participants.json
+    sub-001/sub-001_sessions.tsv
+    sub-001/ses-01/anat/sub-001_ses-01_T1w.nii.gz
+    derivatives/phantom-truth/
+        dataset_description.json, labels.tsv, draws.json
+        true_volumes.tsv            every visit's true regional volumes (mL)
+        best_forecast_volumes.tsv   the best forecast from baseline (mL), the error floor
+        rates.tsv                   each participant's true annual rates (% per year)
+        sub-001/ses-01/anat/sub-001_ses-01_dseg.nii.gz   label map on the scan's grid
+    derivatives/phantom-template/
+        template_T1w.nii.gz, template_probseg-{GM,WM,CSF}.nii.gz,
+        template_dseg.nii.gz, template_mask.nii.gz, labels.tsv
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from predictor import __version__
+from predictor.errors import OutputError
+from predictor.files import write_json, write_tsv
+from predictor.nifti import save_array
+from predictor.phantoms.anatomy import (
+    CSF_LABELS,
+    GM_LABELS,
+    LABELS,
+    WM_LABELS,
+    Progression,
+    region_volumes,
+)
+from predictor.phantoms.imaging import Pose, acquire, render, scanner_grid, tissue_intensities
+from predictor.phantoms.participants import (
+    _rng,
+    assign_groups,
+    best_forecast_ml,
+    build_anatomy,
+    draw_participant,
+)
+from predictor.phantoms.scenario import Scenario
+
+TRUTH = Path("derivatives") / "phantom-truth"
+TEMPLATE = Path("derivatives") / "phantom-template"
+CAUTION = "Synthetic phantom data for testing and demonstration; not images of any person."
+
+
+def _session(number: int) -> str:
+    return f"ses-{number:02d}"
+
+
+def _make_participant(
+    scenario_source: str, size_name: str, index: int, diagnosis: str, seed: int, out: str
+) -> dict:
+    """Render and write all visits of one participant; return its table rows."""
+    scenario = Scenario.from_toml(scenario_source)
+    size = scenario.size(size_name)
+    imaging = scenario.imaging
+    draw, anatomy = draw_participant(scenario, index, diagnosis, seed)
+    affine, _ = scanner_grid(size)
+    intensities = tissue_intensities(imaging)
+    root, pid = Path(out), draw.participant_id
+    truth_rows, best_rows, session_rows, visits = [], [], [], []
+    for number, years in enumerate(draw.visit_years, start=1):
+        session = _session(number)
+        rng = _rng(seed, index, 1, number)
+        pose = Pose.draw(rng, imaging["rotation_degrees"], imaging["translation_mm"])
+        progression = Progression.at(anatomy, draw.rates, years)
+        clean, labels, _ = render(
+            anatomy, progression, size, pose, int(imaging["supersample"]), intensities
+        )
+        image, acquisition = acquire(clean, size, imaging, rng)
+        stem = f"{pid}_{session}"
+        save_array(image, affine, root / pid / session / "anat" / f"{stem}_T1w.nii.gz", np.int16)
+        save_array(
+            labels, affine, root / TRUTH / pid / session / "anat" / f"{stem}_dseg.nii.gz", np.uint8
+        )
+        age = round(draw.baseline_age + years, 2)
+        key = {
+            "participant_id": pid,
+            "session_id": session,
+            "years": years,
+            "age": age,
+            "diagnosis": diagnosis,
+        }
+        truth_rows.append(key | region_volumes(progression.volumes_ml()))
+        best_rows.append(key | best_forecast_ml(scenario, draw, anatomy, years))
+        session_rows.append({"session_id": session, "age": age, "diagnosis": diagnosis})
+        visits.append(
+            {
+                "session_id": session,
+                "years": years,
+                "pose_rotation": pose.rotation.tolist(),
+                "pose_translation_mm": pose.translation.tolist(),
+            }
+            | acquisition
+        )
+    write_tsv(root / pid / f"{pid}_sessions.tsv", pd.DataFrame(session_rows))
+    rates = {f"{region}_percent_per_year": 100 * rate for region, rate in draw.rates.items()}
+    return {
+        "participant": {"participant_id": pid, "sex": draw.sex, "diagnosis": diagnosis},
+        "rates": {
+            "participant_id": pid,
+            "diagnosis": diagnosis,
+            "baseline_age": draw.baseline_age,
+            "stage": draw.stage,
+            "multiplier": draw.multiplier,
+        }
+        | rates,
+        "truth": truth_rows,
+        "best": best_rows,
+        "draw": draw.record() | {"visits": visits},
+    }
+
+
+def write_template(scenario: Scenario, size_name: str, out: Path) -> None:
+    """The population-mean anatomy (age at the reference, stage 0): T1, tissue maps, labels."""
+    size = scenario.size(size_name)
+    anatomy, _ = build_anatomy(
+        scenario, "F", 0.0, scenario.progression["age_reference_years"], rng=None
+    )
+    affine, _ = scanner_grid(size)
+    image, labels, fractions = render(
+        anatomy, None, size, Pose.identity(), 3, tissue_intensities(scenario.imaging)
+    )
+    folder = out / TEMPLATE
+    save_array(image * scenario.imaging["scale"], affine, folder / "template_T1w.nii.gz")
+    for name, values in (("GM", GM_LABELS), ("WM", WM_LABELS), ("CSF", CSF_LABELS)):
+        probability = fractions[..., list(values)].sum(axis=-1)
+        save_array(probability, affine, folder / f"template_probseg-{name}.nii.gz")
+    save_array(labels, affine, folder / "template_dseg.nii.gz", np.uint8)
+    brain = np.isin(labels, GM_LABELS + WM_LABELS + CSF_LABELS)
+    save_array(brain.astype(np.uint8), affine, folder / "template_mask.nii.gz", np.uint8)
+    write_tsv(folder / "labels.tsv", _label_table())
+
+
+def _label_table() -> pd.DataFrame:
+    return pd.DataFrame({"index": list(LABELS), "name": list(LABELS.values())})
+
+
+def _check_output(out: Path, force: bool) -> None:
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"{out}: exists and is not a folder")
+    if out.is_dir() and any(out.iterdir()) and not force:
+        raise OutputError(f"{out}: folder is not empty; choose another or pass --force")
+
+
+def generate_cohort(
+    out: str | os.PathLike[str],
+    participants: int | None = None,
+    size: str = "tiny",
+    seed: int = 0,
+    scenario_path: str | os.PathLike[str] | None = None,
+    jobs: int = 1,
+    force: bool = False,
+    progress: Callable[[], None] | None = None,
+) -> Path:
+    """Generate a phantom cohort under ``out`` (see the module docstring for the layout).
+
+    ``progress()`` is called after each participant.
+    The same arguments give the same bytes, whatever ``jobs`` is.
+    """
+    out = Path(out)
+    _check_output(out, force)
+    scenario = Scenario.from_toml(scenario_path)
+    scenario.size(size)  # fail early on an unknown size
+    count = participants if participants is not None else int(scenario.cohort["participants"])
+    if count < 1:
+        raise ValueError(f"participants must be at least 1, got {count}")
+    groups = assign_groups(scenario.cohort["diagnosis_fractions"], count, seed)
+    arguments = [(scenario.source, size, k, groups[k], seed, str(out)) for k in range(count)]
+    results = []
+    if jobs > 1:
+        with ProcessPoolExecutor(max_workers=jobs) as pool:
+            futures = [pool.submit(_make_participant, *argument) for argument in arguments]
+            for future in futures:
+                results.append(future.result())
+                if progress:
+                    progress()
+    else:
+        for argument in arguments:
+            results.append(_make_participant(*argument))
+            if progress:
+                progress()
+    _write_tables(out, scenario, size, seed, results)
+    write_template(scenario, size, out)
+    return out
+
+
+def _write_tables(out: Path, scenario: Scenario, size: str, seed: int, results: list) -> None:
+    generated_by = [
+        {
+            "Name": "predictor phantoms",
+            "Version": __version__,
+            "Description": f"scenario {scenario.name}, size {size}, seed {seed}",
+        }
+    ]
+    write_json(
+        out / "dataset_description.json",
+        {
+            "Name": f"{scenario.description} ({size})",
+            "BIDSVersion": "1.9.0",
+            "DatasetType": "raw",
+            "GeneratedBy": generated_by,
+            "License": "CC0",
+            "HowToAcknowledge": CAUTION,
+        },
+    )
+    write_tsv(out / "participants.tsv", pd.DataFrame([r["participant"] for r in results]))
+    write_json(
+        out / "participants.json",
+        {
+            "sex": {"Description": "sex", "Levels": {"F": "female", "M": "male"}},
+            "diagnosis": {"Description": "diagnosis group (constant over visits)"},
+        },
+    )
+    truth = out / TRUTH
+    write_json(
+        truth / "dataset_description.json",
+        {
+            "Name": "phantom ground truth",
+            "BIDSVersion": "1.9.0",
+            "DatasetType": "derivative",
+            "GeneratedBy": generated_by,
+            "HowToAcknowledge": CAUTION,
+        },
+    )
+    write_tsv(
+        truth / "true_volumes.tsv", pd.DataFrame([row for r in results for row in r["truth"]])
+    )
+    write_tsv(
+        truth / "best_forecast_volumes.tsv",
+        pd.DataFrame([row for r in results for row in r["best"]]),
+    )
+    write_tsv(truth / "rates.tsv", pd.DataFrame([r["rates"] for r in results]))
+    write_tsv(truth / "labels.tsv", _label_table())
+    write_json(
+        truth / "draws.json",
+        {
+            "seed": seed,
+            "size": size,
+            "scenario": scenario.name,
+            "participants": [r["draw"] for r in results],
+        },
+    )

@@ -1,0 +1,213 @@
+"""Draw phantom participants: anatomy, disease stage, annual rates and visit times.
+
+Every draw comes from a ``numpy.random.Generator`` seeded from the cohort
+seed and the participant's index (``SeedSequence(seed, spawn_key=(k, ...))``),
+so a participant is the same whatever else the cohort holds and however many
+processes build it. The drawn values are written beside the phantoms.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+
+import numpy as np
+from numpy.polynomial.hermite_e import hermegauss
+
+from predictor.phantoms.anatomy import Anatomy, Hippocampus, raw_volumes_at, region_volumes
+from predictor.phantoms.scenario import RATE_REGIONS, Scenario
+
+#: Gauss-Hermite nodes used to average over the unobservable rate noise
+_NODES, _WEIGHTS = hermegauss(40)
+_WEIGHTS = _WEIGHTS / _WEIGHTS.sum()
+
+
+@dataclass(frozen=True)
+class Draw:
+    """What was drawn for one participant (ages and times in years)."""
+
+    participant_id: str
+    sex: str
+    diagnosis: str
+    baseline_age: float
+    stage: float  # latent disease stage (units of its SD); visible at baseline
+    stage_deviation: float  # stage minus the group mean
+    hidden: float  # unobservable standard-normal rate noise
+    age_factor: float
+    multiplier: float
+    rates: dict[str, float]  # signed annual fractions per rate region
+    visit_years: tuple[float, ...]  # time since baseline of each visit, first is 0
+    head_scale: float
+
+    def record(self) -> dict:
+        return asdict(self)
+
+
+def _rng(seed: int, *key: int) -> np.random.Generator:
+    return np.random.default_rng(np.random.SeedSequence(seed, spawn_key=key))
+
+
+def assign_groups(fractions: dict[str, float], count: int, seed: int) -> list[str]:
+    """Exactly rounded group sizes (largest remainder), shuffled with the cohort seed."""
+    names = list(fractions)
+    exact = np.array([fractions[name] * count for name in names])
+    sizes = np.floor(exact).astype(int)
+    for index in np.argsort(-(exact - sizes), kind="stable")[: count - sizes.sum()]:
+        sizes[index] += 1
+    labels = [name for name, size in zip(names, sizes, strict=True) for _ in range(size)]
+    return list(_rng(seed, 1 << 20).permutation(labels))
+
+
+def rate_multiplier(scenario: Scenario, deviation: float, hidden) -> np.ndarray:
+    """Participant factor on all rates; mean 1 before clipping (see the scenario file)."""
+    gain, noise = scenario.progression["stage_gain"], scenario.progression["hidden_sd"]
+    low, high = scenario.progression["multiplier_range"]
+    factor = np.exp(gain * deviation + noise * np.asarray(hidden) - (gain**2 + noise**2) / 2)
+    return np.clip(factor, low, high)
+
+
+def age_factor(scenario: Scenario, age: float) -> float:
+    progression = scenario.progression
+    slope = progression["age_slope_per_decade"]
+    return 1.0 + slope * (age - progression["age_reference_years"]) / 10.0
+
+
+def population_waves(scenario: Scenario) -> tuple[np.ndarray, np.ndarray]:
+    """The population folding pattern: wave directions (J, 3) and phases (J,)."""
+    anatomy = scenario.anatomy
+    rng = _rng(int(anatomy["folding_seed"]))
+    directions = rng.normal(size=(int(anatomy["folding_waves"]), 3))
+    directions /= np.linalg.norm(directions, axis=1, keepdims=True)
+    return directions, rng.uniform(0, 2 * np.pi, len(directions))
+
+
+def build_anatomy(
+    scenario: Scenario,
+    sex: str,
+    stage: float,
+    age: float,
+    rng: np.random.Generator | None,
+) -> tuple[Anatomy, float]:
+    """A participant's baseline anatomy and head scale; ``rng=None`` gives the mean shape."""
+    spec, progression = scenario.anatomy, scenario.progression
+
+    def jitter(sd: float, size=None):
+        return np.ones(size) if rng is None else rng.normal(1.0, sd, size)
+
+    head_scale = float(jitter(spec["head_size_sd"], 1)[0])
+    if sex == "M":
+        head_scale *= spec["male_linear_scale"]
+    mean_axes = np.asarray(spec["intracranial_semi_axes_mm"], dtype=float)
+    axes = mean_axes * head_scale * jitter(spec["axis_sd"], 3)
+    stretch = axes / mean_axes
+    reference = progression["age_reference_years"]
+    ventricle_volume = np.exp(
+        progression["baseline_ventricles_per_stage"] * stage
+        + progression["baseline_ventricles_per_year_of_age"] * (age - reference)
+    )
+    mirror = np.array([-1.0, 1.0, 1.0])
+    centre = (
+        np.asarray(spec["ventricle_centre_mm"], dtype=float) * stretch * np.cbrt(ventricle_volume)
+    )
+    semi = (
+        np.asarray(spec["ventricle_semi_axes_mm"], dtype=float)
+        * stretch
+        * np.cbrt(ventricle_volume)
+    )
+    pitch = np.deg2rad(spec["hippocampus_pitch_degrees"])
+    # columns: lateral axis, long axis (anterior end lower), vertical axis
+    rotation = np.array(
+        [[1, 0, 0], [0, np.cos(pitch), np.sin(pitch)], [0, -np.sin(pitch), np.cos(pitch)]]
+    )
+    hippocampus_scale = np.cbrt(np.exp(progression["baseline_hippocampus_per_stage"] * stage))
+    hippocampi = []
+    for label, side in ((4, mirror), (5, np.ones(3))):
+        hippocampi.append(
+            Hippocampus(
+                centre=np.asarray(spec["hippocampus_centre_mm"], dtype=float) * side * stretch,
+                semi_axes=np.asarray(spec["hippocampus_semi_axes_mm"], dtype=float)
+                * np.cbrt(np.prod(stretch))
+                * hippocampus_scale
+                * jitter(spec["structure_sd"], 3),
+                rotation=rotation * side[:, None],
+                reach=float(spec["hippocampus_reach"]),
+                label=label,
+            )
+        )
+    directions, phases = population_waves(scenario)
+    if rng is not None:
+        directions = directions + spec["folding_jitter"] * rng.normal(size=directions.shape)
+        directions /= np.linalg.norm(directions, axis=1, keepdims=True)
+        phases = phases + spec["folding_jitter"] * np.pi * rng.normal(size=phases.shape)
+    anatomy = Anatomy(
+        semi_axes=axes,
+        skull_mm=float(spec["skull_mm"]),
+        scalp_mm=float(spec["scalp_mm"]),
+        pial_radius=float(spec["pial_radius"]),
+        sulcal_depth=float(spec["sulcal_depth"]),
+        sulcal_width=float(spec["sulcal_width"]),
+        cortex_thickness=float(spec["cortex_thickness"]),
+        wave_directions=directions,
+        wave_phases=phases,
+        frequency=float(spec["folding_frequency"]),
+        ventricle_centres=np.stack([centre * mirror, centre]),
+        ventricle_semi_axes=np.stack([semi, semi]),
+        hippocampi=tuple(hippocampi),
+    )
+    anatomy.check_layout()
+    return anatomy, head_scale
+
+
+def draw_participant(
+    scenario: Scenario, index: int, diagnosis: str, seed: int
+) -> tuple[Draw, Anatomy]:
+    """Draw participant number ``index`` (0-based) of a cohort with ``seed``."""
+    rng = _rng(seed, index, 0)
+    cohort, progression = scenario.cohort, scenario.progression
+    sex_fractions = cohort["sex_fractions"]
+    sex = "F" if rng.random() < sex_fractions["F"] else "M"
+    low, high = cohort["baseline_age_years"]
+    age = round(float(rng.uniform(low, high)), 2)
+    deviation, hidden = (float(value) for value in rng.normal(size=2))
+    stage = progression["stage_mean"][diagnosis] + deviation
+    factor = age_factor(scenario, age)
+    multiplier = float(rate_multiplier(scenario, deviation, hidden))
+    rates = {
+        region: scenario.rates[region][diagnosis] * factor * multiplier for region in RATE_REGIONS
+    }
+    first, last = cohort["follow_up_years"]
+    follow_up = int(rng.integers(first, last + 1))
+    jitter = cohort["visit_jitter_years"]
+    years = (0.0,) + tuple(
+        round(float(k + rng.uniform(-jitter, jitter)), 2) for k in range(1, follow_up + 1)
+    )
+    anatomy, head_scale = build_anatomy(scenario, sex, stage, age, rng)
+    draw = Draw(
+        participant_id=f"sub-{index + 1:03d}",
+        sex=sex,
+        diagnosis=diagnosis,
+        baseline_age=age,
+        stage=float(stage),
+        stage_deviation=deviation,
+        hidden=hidden,
+        age_factor=factor,
+        multiplier=multiplier,
+        rates=rates,
+        visit_years=years,
+        head_scale=head_scale,
+    )
+    return draw, anatomy
+
+
+def best_forecast_ml(scenario: Scenario, draw: Draw, anatomy: Anatomy, years: float) -> dict:
+    """Region volumes (mL) expected at ``years`` given all that is visible at baseline.
+
+    Visible: anatomy, age, diagnosis and the latent stage; the hidden rate noise
+    is averaged out (Gauss-Hermite quadrature over its standard normal law).
+    This is the best forecast any method could make: its error is the floor.
+    """
+    multipliers = rate_multiplier(scenario, draw.stage_deviation, _NODES)
+    ratios = {}
+    for region in RATE_REGIONS:
+        rate = scenario.rates[region][draw.diagnosis] * draw.age_factor * multipliers
+        ratios[region] = float(_WEIGHTS @ (1.0 + rate) ** years)
+    return region_volumes(raw_volumes_at(anatomy.baseline_volumes_ml, ratios))

@@ -1,0 +1,87 @@
+"""Phantom scenario: the TOML file under ``synthetic_phantoms/`` as frozen dataclasses."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+from predictor.config import read_toml, require
+from predictor.errors import ConfigError
+
+SCENARIO_DIR = Path(__file__).resolve().parent.parent.parent / "synthetic_phantoms"
+DEFAULT_SCENARIO = SCENARIO_DIR / "memory_clinic.toml"
+#: regions whose annual rates a scenario sets
+RATE_REGIONS = ("hippocampus", "ventricles", "cortical_gm", "wm")
+
+
+@dataclass(frozen=True)
+class Size:
+    """Image grid of one phantom size: isotropic voxel side (mm) and field of view (mm)."""
+
+    voxel_mm: float
+    field_of_view_mm: tuple[float, float, float]
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        return tuple(int(round(side / self.voxel_mm)) for side in self.field_of_view_mm)
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """Everything the phantom generator draws from; see the scenario file's comments."""
+
+    name: str
+    description: str
+    cohort: dict
+    rates: dict[str, dict[str, float]]  # region -> diagnosis -> fraction per year (signed)
+    progression: dict
+    anatomy: dict
+    imaging: dict
+    sizes: dict[str, Size]
+    source: str
+
+    @property
+    def diagnoses(self) -> tuple[str, ...]:
+        return tuple(self.cohort["diagnosis_fractions"])
+
+    def size(self, name: str) -> Size:
+        if name not in self.sizes:
+            raise ConfigError(
+                f"{self.source}: size '{name}' is not one of {', '.join(sorted(self.sizes))}"
+            )
+        return self.sizes[name]
+
+    @classmethod
+    def from_toml(cls, path: str | os.PathLike[str] | None = None) -> Scenario:
+        """Read and check a scenario file (the default one when ``path`` is None)."""
+        path = Path(path) if path is not None else DEFAULT_SCENARIO
+        raw = read_toml(path)
+        source = str(path)
+        cohort = require(raw, "cohort", source, dict)
+        fractions = require(cohort, "diagnosis_fractions", source, dict)
+        if abs(sum(fractions.values()) - 1.0) > 1e-6:
+            raise ConfigError(f"{source}: diagnosis_fractions must sum to 1")
+        rates_raw = require(raw, "rates_percent_per_year", source, dict)
+        rates = {}
+        for region in RATE_REGIONS:
+            table = require(rates_raw, region, source, dict)
+            missing = [group for group in fractions if group not in table]
+            if missing:
+                raise ConfigError(f"{source}: rates for '{region}' lack {', '.join(missing)}")
+            rates[region] = {group: float(table[group]) / 100.0 for group in fractions}
+        sizes = {
+            name: Size(float(spec["voxel_mm"]), tuple(float(v) for v in spec["field_of_view_mm"]))
+            for name, spec in require(raw, "sizes", source, dict).items()
+        }
+        return cls(
+            name=require(raw, "name", source, str),
+            description=require(raw, "description", source, str),
+            cohort=cohort,
+            rates=rates,
+            progression=require(raw, "progression", source, dict),
+            anatomy=require(raw, "anatomy", source, dict),
+            imaging=require(raw, "imaging", source, dict),
+            sizes=sizes,
+            source=source,
+        )

@@ -1,0 +1,34 @@
+"""Command line (predictor.cli) through typer's CliRunner."""
+
+from __future__ import annotations
+
+from typer.testing import CliRunner
+
+from predictor.cli import app
+
+runner = CliRunner()
+
+
+def test_help_states_units_and_caution():
+    result = runner.invoke(app, ["--help"])
+    assert result.exit_code == 0
+    assert "Research use only" in result.output
+    phantoms = runner.invoke(app, ["phantoms", "--help"])
+    assert "mm" in phantoms.output and "years" in phantoms.output
+
+
+def test_phantoms_command_and_one_line_error(tmp_path):
+    out = tmp_path / "cohort"
+    result = runner.invoke(app, ["phantoms", str(out), "--participants", "1", "--seed", "2"])
+    assert result.exit_code == 0, result.output
+    assert (out / "participants.tsv").is_file()
+    again = runner.invoke(app, ["phantoms", str(out), "--participants", "1"])
+    assert again.exit_code == 2
+    assert "not empty" in again.output
+    assert "Traceback" not in again.output
+
+
+def test_unknown_size_is_a_clear_error(tmp_path):
+    result = runner.invoke(app, ["phantoms", str(tmp_path / "x"), "--size", "huge"])
+    assert result.exit_code == 2
+    assert "size 'huge' is not one of demo, tiny" in result.output

@@ -1,0 +1,180 @@
+"""Synthetic phantom cohort (predictor.phantoms)."""
+
+from __future__ import annotations
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+import pytest
+
+from predictor.phantoms.anatomy import Progression, region_volumes
+from predictor.phantoms.generate import TRUTH, generate_cohort
+from predictor.phantoms.imaging import acquire, scanner_grid
+from predictor.phantoms.participants import assign_groups, draw_participant
+from predictor.phantoms.scenario import RATE_REGIONS, Scenario
+
+
+@pytest.fixture(scope="module")
+def scenario() -> Scenario:
+    return Scenario.from_toml()
+
+
+def _grid(low, high, step):
+    axes = [np.arange(lo, hi, step) + step / 2 for lo, hi in zip(low, high, strict=True)]
+    return np.stack(np.meshgrid(*axes, indexing="ij"), -1).reshape(-1, 3)
+
+
+def _ellipsoid_area(a, b, c):
+    # Knud Thomsen's approximation of an ellipsoid's surface area (relative error <= 1.061%).
+    p = 1.6075
+    return 4 * np.pi * (((a * b) ** p + (a * c) ** p + (b * c) ** p) / 3) ** (1 / p)
+
+
+def test_hippocampus_voxel_volume_matches_ellipsoid_formula(scenario):
+    # V = 4/3 pi a b c. A voxel (side h) is miscounted only if the surface passes
+    # within half its diagonal (sqrt(3) h / 2) of its centre, so the counting error is
+    # at most the volume of that band: area * sqrt(3) * h (area inflated by 1.1%).
+    _, anatomy = draw_participant(scenario, 0, "CN", seed=5)
+    hippocampus = anatomy.hippocampi[1]
+    a, b, c = hippocampus.semi_axes
+    exact = 4 / 3 * np.pi * a * b * c
+    for step in (1.0, 0.5):
+        reach = float(hippocampus.semi_axes.max()) + 2
+        points = _grid(hippocampus.centre - reach, hippocampus.centre + reach, step)
+        counted = (anatomy.labels(points) == hippocampus.label).sum() * step**3
+        bound = _ellipsoid_area(a, b, c) * 1.011 * np.sqrt(3) * step
+        assert abs(counted - exact) <= bound, (step, counted, exact, bound)
+        assert abs(counted - exact) / exact < 0.05
+
+
+def test_group_mean_rates_equal_configured_rates(scenario):
+    # The age factor and participant factor have mean 1, so over many draws each
+    # group's mean annual rate is the configured (published) one within 5%.
+    groups = assign_groups(scenario.cohort["diagnosis_fractions"], 1500, seed=11)
+    draws = [draw_participant(scenario, k, groups[k], seed=11)[0] for k in range(1500)]
+    for region in RATE_REGIONS:
+        for group in scenario.diagnoses:
+            rates = [d.rates[region] for d in draws if d.diagnosis == group]
+            configured = scenario.rates[region][group]
+            assert np.mean(rates) == pytest.approx(configured, rel=0.05), (region, group)
+    hippocampus = {
+        g: np.mean([d.rates["hippocampus"] for d in draws if d.diagnosis == g])
+        for g in scenario.diagnoses
+    }
+    assert hippocampus["AD"] < hippocampus["MCI"] < hippocampus["CN"] < 0
+
+
+def test_label_geometry_follows_the_rates(scenario):
+    # Count labels on a fine grid at baseline and at 4 years: the measured annual
+    # rate of each region equals the participant's own rate within 5%.
+    draw, anatomy = draw_participant(scenario, 2, "AD", seed=4)
+    progression = Progression.at(anatomy, draw.rates, 4.0)
+    half = anatomy.semi_axes + 1
+    points = _grid(-half, half, 1.0)
+    before = anatomy.labels(points)
+    after = anatomy.labels(progression.pullback(points))
+    for region, labels in [
+        ("hippocampus", (4, 5)),
+        ("ventricles", (6, 7)),
+        ("cortical_gm", (2,)),
+        ("wm", (3,)),
+    ]:
+        ratio = np.isin(after, labels).sum() / np.isin(before, labels).sum()
+        measured = ratio ** (1 / 4) - 1
+        assert measured == pytest.approx(draw.rates[region], rel=0.05), region
+
+
+def test_progression_is_invertible_and_fixes_the_skull(scenario, rng):
+    draw, anatomy = draw_participant(scenario, 1, "MCI", seed=2)
+    progression = Progression.at(anatomy, draw.rates, 5.0)
+    points = rng.uniform(-100, 100, size=(20_000, 3))
+    np.testing.assert_allclose(progression.pullback(progression.forward(points)), points, atol=1e-9)
+    outside = np.linalg.norm(points / anatomy.semi_axes, axis=1) > 1
+    np.testing.assert_array_equal(progression.forward(points)[outside], points[outside])
+
+
+def test_cohort_truth_tables_show_progression(tiny_cohort):
+    truth = pd.read_csv(tiny_cohort / TRUTH / "true_volumes.tsv", sep="\t")
+    rates = pd.read_csv(tiny_cohort / TRUTH / "rates.tsv", sep="\t").set_index("participant_id")
+    for pid, visits in truth.groupby("participant_id"):
+        first, last = visits.iloc[0], visits.iloc[-1]
+        assert last.ventricles > first.ventricles  # ventricular expansion
+        assert last.hippocampus_left < first.hippocampus_left  # hippocampal shrinkage
+        assert last.cortical_gm < first.cortical_gm  # cortical thinning
+        annual = (last.hippocampus_right / first.hippocampus_right) ** (1 / last.years) - 1
+        assert 100 * annual == pytest.approx(
+            rates.loc[pid, "hippocampus_percent_per_year"], rel=1e-4
+        )
+    assert ((truth.icv > 1100) & (truth.icv < 1900)).all()
+    # Plausible adult baseline volumes (the issue's targets): lateral ventricles
+    # 20-60 mL rising with age and disease, hippocampus about 3.3 mL per side.
+    baseline = truth[truth.years == 0]
+    assert baseline.ventricles.between(12, 80).all()
+    assert baseline.hippocampus_left.between(2.0, 4.8).all()
+
+
+def test_label_maps_agree_with_true_volumes(tiny_cohort):
+    truth = pd.read_csv(tiny_cohort / TRUTH / "true_volumes.tsv", sep="\t")
+    for row in truth.itertuples():
+        path = tiny_cohort / TRUTH / row.participant_id / row.session_id / "anat"
+        image = nib.load(path / f"{row.participant_id}_{row.session_id}_dseg.nii.gz")
+        labels = np.asarray(image.dataobj)
+        voxel_ml = abs(np.linalg.det(image.affine[:3, :3])) / 1000
+        assert np.isin(labels, (3,)).sum() * voxel_ml == pytest.approx(row.wm, rel=0.03)
+        assert np.isin(labels, (2,)).sum() * voxel_ml == pytest.approx(row.cortical_gm, rel=0.03)
+        assert np.isin(labels, (6, 7)).sum() * voxel_ml == pytest.approx(row.ventricles, rel=0.1)
+
+
+def test_t1_contrast_and_rician_background(tiny_cohort, scenario, rng):
+    pid, session = "sub-001", "ses-01"
+    image = nib.load(tiny_cohort / pid / session / "anat" / f"{pid}_{session}_T1w.nii.gz")
+    labels = np.asarray(
+        nib.load(
+            tiny_cohort / TRUTH / pid / session / "anat" / f"{pid}_{session}_dseg.nii.gz"
+        ).dataobj
+    )
+    data = image.get_fdata()
+    wm, gm, csf = (np.median(data[labels == value]) for value in (3, 2, 1))
+    assert wm > gm > csf
+    # Background of a magnitude image is Rayleigh distributed: mean sigma * sqrt(pi / 2)
+    # (Gudbjartsson and Patz 1995).
+    size = scenario.size("tiny")
+    noisy, drawn = acquire(np.zeros(size.shape, np.float32), size, scenario.imaging, rng)
+    assert noisy.mean() == pytest.approx(drawn["noise_sd"] * np.sqrt(np.pi / 2), rel=0.03)
+
+
+def test_same_seed_same_bytes_whatever_the_jobs(tmp_path):
+    first = generate_cohort(tmp_path / "a", participants=2, size="tiny", seed=9)
+    second = generate_cohort(tmp_path / "b", participants=2, size="tiny", seed=9, jobs=2)
+    files = sorted(p.relative_to(first) for p in first.rglob("*") if p.is_file())
+    assert files == sorted(p.relative_to(second) for p in second.rglob("*") if p.is_file())
+    for name in files:
+        assert (first / name).read_bytes() == (second / name).read_bytes(), name
+
+
+def test_template_tissue_maps(tiny_cohort, scenario):
+    folder = tiny_cohort / "derivatives" / "phantom-template"
+    maps = {
+        name: nib.load(folder / f"template_probseg-{name}.nii.gz").get_fdata()
+        for name in ("GM", "WM", "CSF")
+    }
+    total = sum(maps.values())
+    assert total.max() <= 1 + 1e-6 and total.min() >= 0
+    affine, shape = scanner_grid(scenario.size("tiny"))
+    assert maps["GM"].shape == shape
+    voxel_ml = abs(np.linalg.det(affine[:3, :3])) / 1000
+    from predictor.phantoms.participants import build_anatomy
+
+    anatomy, _ = build_anatomy(scenario, "F", 0.0, 75.0, rng=None)
+    volumes = region_volumes(anatomy.baseline_volumes_ml)
+    assert maps["GM"].sum() * voxel_ml == pytest.approx(volumes["total_gm"], rel=0.03)
+    assert maps["WM"].sum() * voxel_ml == pytest.approx(volumes["wm"], rel=0.03)
+
+
+def test_refuses_non_empty_output(tmp_path):
+    from predictor.errors import OutputError
+
+    (tmp_path / "keep.txt").write_text("user data")
+    with pytest.raises(OutputError, match="not empty"):
+        generate_cohort(tmp_path, participants=1)
+    assert (tmp_path / "keep.txt").read_text() == "user data"
