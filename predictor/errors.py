@@ -26,3 +26,7 @@ class ConfigError(PredictorError, ValueError):
 
 class OutputError(PredictorError, OSError):
     """An output cannot be written (existing file, full disk); previous outputs stay intact."""
+
+
+class DataError(PredictorError, ValueError):
+    """A volume table or forecast request cannot be used; the message names the value."""

@@ -248,12 +248,17 @@ class Progression:
 
     @classmethod
     def at(cls, anatomy: Anatomy, annual_rates: dict[str, float], years: float) -> Progression:
-        """Slopes that make every region follow ``(1 + rate) ** years`` exactly.
+        """Slopes that make every region follow ``1 + rate * years`` exactly.
+
+        Rates are annualised fractions of the baseline volume (linear change,
+        the usual definition of annual percentage change).
 
         ``annual_rates`` holds signed fractions per year for 'hippocampus',
         'ventricles', 'cortical_gm' and 'wm'.
         """
-        ratio = {region: (1.0 + rate) ** years for region, rate in annual_rates.items()}
+        ratio = {region: 1.0 + rate * years for region, rate in annual_rates.items()}
+        if min(ratio.values()) <= 0:
+            raise ValueError(f"a region vanishes within {years:g} years")
         volumes = anatomy.baseline_volumes_ml
         hippocampus_total = volumes["hippocampus_left"] + volumes["hippocampus_right"]
         wm_layer = (

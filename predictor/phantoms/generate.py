@@ -57,6 +57,41 @@ def _session(number: int) -> str:
     return f"ses-{number:02d}"
 
 
+def _visit_truth(scenario: Scenario, draw, anatomy, number: int, years: float):
+    """Keys, true volumes and best forecast (mL) of one visit, and its progression map."""
+    progression = Progression.at(anatomy, draw.rates, years)
+    key = {
+        "participant_id": draw.participant_id,
+        "session_id": _session(number),
+        "years": years,
+        "age": round(draw.baseline_age + years, 2),
+        "sex": draw.sex,
+        "diagnosis": draw.diagnosis,
+    }
+    truth = key | region_volumes(progression.volumes_ml())
+    best = key | best_forecast_ml(scenario, draw, anatomy, years)
+    return truth, best, progression
+
+
+def true_volume_table(
+    scenario: Scenario, participants: int, seed: int
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """True and best-forecast volume tables (mL) of a cohort, without rendering images.
+
+    Equal to ``true_volumes.tsv`` and ``best_forecast_volumes.tsv`` of
+    :func:`generate_cohort` with the same scenario, size-independent, and fast.
+    """
+    groups = assign_groups(scenario.cohort["diagnosis_fractions"], participants, seed)
+    truth, best = [], []
+    for index in range(participants):
+        draw, anatomy = draw_participant(scenario, index, groups[index], seed)
+        for number, years in enumerate(draw.visit_years, start=1):
+            true_row, best_row, _ = _visit_truth(scenario, draw, anatomy, number, years)
+            truth.append(true_row)
+            best.append(best_row)
+    return pd.DataFrame(truth), pd.DataFrame(best)
+
+
 def _make_participant(
     scenario_source: str, size_name: str, index: int, diagnosis: str, seed: int, out: str
 ) -> dict:
@@ -73,7 +108,7 @@ def _make_participant(
         session = _session(number)
         rng = _rng(seed, index, 1, number)
         pose = Pose.draw(rng, imaging["rotation_degrees"], imaging["translation_mm"])
-        progression = Progression.at(anatomy, draw.rates, years)
+        true_row, best_row, progression = _visit_truth(scenario, draw, anatomy, number, years)
         clean, labels, _ = render(
             anatomy, progression, size, pose, int(imaging["supersample"]), intensities
         )
@@ -83,17 +118,9 @@ def _make_participant(
         save_array(
             labels, affine, root / TRUTH / pid / session / "anat" / f"{stem}_dseg.nii.gz", np.uint8
         )
-        age = round(draw.baseline_age + years, 2)
-        key = {
-            "participant_id": pid,
-            "session_id": session,
-            "years": years,
-            "age": age,
-            "diagnosis": diagnosis,
-        }
-        truth_rows.append(key | region_volumes(progression.volumes_ml()))
-        best_rows.append(key | best_forecast_ml(scenario, draw, anatomy, years))
-        session_rows.append({"session_id": session, "age": age, "diagnosis": diagnosis})
+        truth_rows.append(true_row)
+        best_rows.append(best_row)
+        session_rows.append({"session_id": session, "age": true_row["age"], "diagnosis": diagnosis})
         visits.append(
             {
                 "session_id": session,

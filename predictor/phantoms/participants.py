@@ -13,7 +13,13 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from numpy.polynomial.hermite_e import hermegauss
 
-from predictor.phantoms.anatomy import Anatomy, Hippocampus, raw_volumes_at, region_volumes
+from predictor.phantoms.anatomy import (
+    Anatomy,
+    Hippocampus,
+    Progression,
+    raw_volumes_at,
+    region_volumes,
+)
 from predictor.phantoms.scenario import RATE_REGIONS, Scenario
 
 #: Gauss-Hermite nodes used to average over the unobservable rate noise
@@ -181,6 +187,7 @@ def draw_participant(
         round(float(k + rng.uniform(-jitter, jitter)), 2) for k in range(1, follow_up + 1)
     )
     anatomy, head_scale = build_anatomy(scenario, sex, stage, age, rng)
+    years = _until_dropout(anatomy, rates, years)
     draw = Draw(
         participant_id=f"sub-{index + 1:03d}",
         sex=sex,
@@ -198,6 +205,20 @@ def draw_participant(
     return draw, anatomy
 
 
+def _until_dropout(anatomy: Anatomy, rates: dict, years: tuple[float, ...]) -> tuple:
+    """Visits up to the first one the anatomy cannot reach (drop-out of extreme progressors).
+
+    A very fast progressor's ventricles can outgrow the sulcal room left in the
+    phantom's geometry; such a participant leaves the study before that visit.
+    """
+    for count, horizon in enumerate(years):
+        try:
+            Progression.at(anatomy, rates, horizon)
+        except ValueError:
+            return years[:count]
+    return years
+
+
 def best_forecast_ml(scenario: Scenario, draw: Draw, anatomy: Anatomy, years: float) -> dict:
     """Region volumes (mL) expected at ``years`` given all that is visible at baseline.
 
@@ -209,5 +230,5 @@ def best_forecast_ml(scenario: Scenario, draw: Draw, anatomy: Anatomy, years: fl
     ratios = {}
     for region in RATE_REGIONS:
         rate = scenario.rates[region][draw.diagnosis] * draw.age_factor * multipliers
-        ratios[region] = float(_WEIGHTS @ (1.0 + rate) ** years)
+        ratios[region] = float(_WEIGHTS @ (1.0 + rate * years))
     return region_volumes(raw_volumes_at(anatomy.baseline_volumes_ml, ratios))

@@ -1,0 +1,249 @@
+"""Volume forecasters (predictor.regression)."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+
+from predictor.errors import DataError
+from predictor.phantoms.generate import true_volume_table
+from predictor.phantoms.scenario import Scenario
+from predictor.regression import (
+    MixedEffectsForecaster,
+    NoChangeForecaster,
+    PopulationRateForecaster,
+    RidgeForecaster,
+    SVRForecaster,
+    all_forecasters,
+    baseline_rows,
+    check_table,
+    trim_mask,
+)
+
+TRUE_BETA = np.array([3.5, -0.01, 0.1, -0.2, -0.4, -0.05, -0.04, -0.1])  # mL, see _design
+TRUE_G = np.array([[0.09, 0.003], [0.003, 0.0009]])  # random intercept / slope covariance
+TRUE_S2 = 0.0025  # residual variance, mL^2
+
+
+def simulate_lmm(seed: int, participants: int = 60, visits: int = 4) -> pd.DataFrame:
+    """Data drawn from a known linear mixed model with the forecaster's own design."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for k in range(participants):
+        diagnosis = ("CN", "MCI", "AD")[k % 3]
+        sex = "M" if rng.random() < 0.5 else "F"
+        age0 = rng.uniform(60, 90)
+        b = rng.multivariate_normal(np.zeros(2), TRUE_G)
+        for years in np.arange(visits) + np.r_[0, rng.uniform(-0.1, 0.1, visits - 1)]:
+            mci, ad = float(diagnosis == "MCI"), float(diagnosis == "AD")
+            x = np.array([1, age0 - 75, sex == "M", mci, ad, years, years * mci, years * ad])
+            volume = x @ TRUE_BETA + b[0] + b[1] * years + rng.normal(0, np.sqrt(TRUE_S2))
+            rows.append(
+                {
+                    "participant_id": f"p{k:03d}",
+                    "age": age0 + years,
+                    "sex": sex,
+                    "diagnosis": diagnosis,
+                    "hippocampus": volume,
+                }
+            )
+    return pd.DataFrame(rows)
+
+
+@pytest.mark.slow
+def test_mixed_effects_confidence_intervals_cover_true_effects():
+    # Coverage of the Wald 95% intervals of statsmodels MixedLM (REML) over 50 replicates.
+    # Only the age reference differs from the simulation (sample mean vs 75), which shifts
+    # the intercept; the intercept is therefore left out.
+    covered = np.zeros(len(TRUE_BETA) - 1)
+    for seed in range(50):
+        model = MixedEffectsForecaster().fit(simulate_lmm(seed), ["hippocampus"])
+        fit = model.fits_["hippocampus"]
+        assert fit.converged
+        half = 1.96 * np.sqrt(np.diag(fit.cov_beta))
+        covered += (np.abs(fit.beta - TRUE_BETA) <= half)[1:]
+    assert np.all(covered / 50 >= 0.90), covered / 50
+
+
+def test_mixed_effects_matches_direct_statsmodels():
+    table = simulate_lmm(7)
+    model = MixedEffectsForecaster().fit(table, ["hippocampus"])
+    checked = check_table(table, ["hippocampus"])
+    exog = model._design(checked, checked["years"].to_numpy())
+    direct = sm.MixedLM(
+        checked["hippocampus"],
+        exog,
+        groups=checked["participant_id"],
+        exog_re=np.column_stack([np.ones(len(checked)), checked["years"]]),
+    )
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        result = direct.fit(reml=True, method=["powell"])
+    fit = model.fits_["hippocampus"]
+    np.testing.assert_allclose(fit.beta, result.fe_params, rtol=1e-8)
+    np.testing.assert_allclose(exog @ fit.beta, result.predict(exog), rtol=1e-10)
+    # Our BLUP b = G Z' (Z G Z' + s2 I)^-1 (y - X beta) reproduces statsmodels' random_effects.
+    ours = model.random_effects(table, "hippocampus")
+    for participant, effects in result.random_effects.items():
+        np.testing.assert_allclose(
+            ours.loc[participant].to_numpy(), np.asarray(effects), rtol=1e-6, atol=1e-9
+        )
+
+
+def test_new_participant_forecast_conditions_on_its_baseline():
+    table = simulate_lmm(3)
+    model = MixedEffectsForecaster().fit(table, ["hippocampus"])
+    base = baseline_rows(check_table(table, ["hippocampus"])).head(1)
+    small = model.predict(base.assign(hippocampus=base.hippocampus - 0.5), [2.0])
+    large = model.predict(base.assign(hippocampus=base.hippocampus + 0.5), [2.0])
+    shift = float(large.mean_ml.iloc[0] - small.mean_ml.iloc[0])
+    fit = model.fits_["hippocampus"]
+    g = fit.cov_re
+    expected = (g[0, 0] + 2.0 * g[1, 0]) / (g[0, 0] + fit.residual_var)  # conditional Gaussian
+    assert shift == pytest.approx(expected, rel=1e-9)
+    assert 0.5 < shift < 1.1
+
+
+def test_roundtrip_through_json_types():
+    table = simulate_lmm(4)
+    model = MixedEffectsForecaster().fit(table, ["hippocampus"])
+    import json
+
+    restored = MixedEffectsForecaster.from_dict(json.loads(json.dumps(model.to_dict())))
+    base = baseline_rows(check_table(table, ["hippocampus"]))
+    pd.testing.assert_frame_equal(model.predict(base, [1, 3]), restored.predict(base, [1, 3]))
+
+
+@pytest.fixture(scope="module")
+def phantom_truth():
+    # True volumes of a phantom cohort drawn like the demo's (no images needed), with
+    # 1% measurement noise so that the residual variance is not zero.
+    truth, _ = true_volume_table(Scenario.from_toml(), 240, seed=21)
+    rng = np.random.default_rng(0)
+    regions = ["hippocampus_left", "ventricles", "cortical_gm", "wm"]
+    for region in regions:
+        truth[region] = truth[region] * (1 + 0.01 * rng.normal(size=len(truth)))
+    return truth, regions
+
+
+def test_mixed_effects_recovers_configured_rates(phantom_truth):
+    truth, _ = phantom_truth
+    scenario = Scenario.from_toml()
+    model = MixedEffectsForecaster().fit(truth, ["hippocampus_left", "cortical_gm", "wm"])
+    base = baseline_rows(check_table(truth, ["hippocampus_left"]))
+    for region, rate_region in [
+        ("hippocampus_left", "hippocampus"),
+        ("cortical_gm", "cortical_gm"),
+        ("wm", "wm"),
+    ]:
+        beta = model.fits_[region].beta
+        for index, group in enumerate(model.labels_):
+            slope = beta[5] + (beta[5 + index] if index else 0.0)  # mL per year
+            rate = slope / base.loc[base.diagnosis == group, region].mean()
+            assert rate == pytest.approx(scenario.rates[rate_region][group], rel=0.10), (
+                region,
+                group,
+            )
+
+
+def test_conformal_intervals_cover_held_out_followups(phantom_truth):
+    truth, regions = phantom_truth
+    ids = truth.participant_id.unique()
+    train = truth[truth.participant_id.isin(ids[:160])]
+    test = check_table(truth[truth.participant_id.isin(ids[160:])], regions)
+    base = baseline_rows(test)
+    followups = test[test.years > 0]
+    for forecaster in (
+        SVRForecaster(),
+        RidgeForecaster(),
+        PopulationRateForecaster(),
+        NoChangeForecaster(),
+    ):
+        forecaster.fit(train, regions)
+        hits = []
+        for participant, visits in followups.groupby("participant_id"):
+            prediction = forecaster.predict(
+                base[base.participant_id == participant], visits.years.tolist()
+            )
+            for region in regions:
+                rows = prediction[prediction.region == region]
+                observed = visits[region].to_numpy()
+                hits += list(
+                    (observed >= rows.lower_ml.to_numpy()) & (observed <= rows.upper_ml.to_numpy())
+                )
+        assert 0.85 <= np.mean(hits) <= 0.95, (forecaster.name, np.mean(hits))
+
+
+def test_every_forecaster_returns_the_common_table(phantom_truth):
+    truth, regions = phantom_truth
+    base = baseline_rows(check_table(truth, regions)).head(5)
+    for name, forecaster in all_forecasters().items():
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            forecaster.fit(truth, regions)
+        prediction = forecaster.predict(base, [0, 1, 2.5])
+        assert list(prediction.columns) == [
+            "participant_id",
+            "region",
+            "years",
+            "mean_ml",
+            "sd_ml",
+            "lower_ml",
+            "upper_ml",
+        ], name
+        assert len(prediction) == 5 * 3 * len(regions)
+        assert prediction[["mean_ml", "sd_ml"]].notna().all().all(), name
+        assert (prediction.lower_ml <= prediction.mean_ml).all()
+        zero = prediction[(prediction.years == 0) & (prediction.region == "ventricles")]
+        if not name.startswith("mixed"):  # mixed effects smooths the baseline (BLUP)
+            np.testing.assert_allclose(zero.mean_ml, base.ventricles)
+
+
+def test_trim_removes_exactly_20_percent_never_a_whole_group():
+    groups = np.array(["CN"] * 50 + ["AD"] * 10)
+    residuals = np.r_[np.zeros(50), np.full(10, 100.0)]  # AD has all the largest residuals
+    keep = trim_mask(residuals, groups, 0.2)
+    assert (~keep).sum() == 12
+    assert keep[groups == "AD"].sum() >= 5
+
+
+def test_trimmed_refit_drops_20_percent_of_visits(phantom_truth):
+    truth, _ = phantom_truth
+    checked = check_table(truth, ["wm"])
+    model = MixedEffectsForecaster(trim=0.2).fit(truth, ["wm"])
+    assert model.fits_["wm"].converged
+    untrimmed = MixedEffectsForecaster().fit(truth, ["wm"])
+    assert not np.allclose(model.fits_["wm"].beta, untrimmed.fits_["wm"].beta)
+    assert untrimmed.fits_["wm"].visits_used == len(checked)
+    assert model.fits_["wm"].visits_used == len(checked) - round(0.2 * len(checked))
+
+
+def test_bad_requests_are_clear_errors(phantom_truth):
+    truth, regions = phantom_truth
+    with pytest.raises(DataError, match="lacks column.*'putamen'"):
+        RidgeForecaster().fit(truth, ["putamen"])
+    model = RidgeForecaster().fit(truth, regions)
+    base = baseline_rows(check_table(truth, regions)).head(2)
+    with pytest.raises(DataError, match="horizons must be finite and >= 0"):
+        model.predict(base, [-1])
+    with pytest.raises(DataError, match="diagnosis 'FTD' was never seen"):
+        model.predict(base.assign(diagnosis="FTD"), [1])
+    few = truth[truth.participant_id.isin(truth.participant_id.unique()[:8])]
+    with pytest.raises(DataError, match="too few"):
+        MixedEffectsForecaster().fit(few, ["wm"])
+    gap = truth.copy()
+    gap.loc[3, "wm"] = np.nan
+    with pytest.raises(DataError, match="region 'wm' has a missing"):
+        RidgeForecaster().fit(gap, ["wm"])
+
+
+def test_single_visit_participant_is_a_baseline_only(phantom_truth):
+    truth, regions = phantom_truth
+    single = truth.groupby("participant_id").head(1).iloc[:1].assign(participant_id="solo")
+    model = NoChangeForecaster().fit(pd.concat([truth, single]), regions)
+    prediction = model.predict(single, [2])
+    assert len(prediction) == len(regions)
