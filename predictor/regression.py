@@ -20,6 +20,7 @@ from __future__ import annotations
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -583,6 +584,23 @@ class MixedEffectsForecaster:
         model.age_ref_, model.icv_ref_ = float(raw["age_ref"]), float(raw["icv_ref"])
         model.fits_ = {region: MixedFit.from_dict(fit) for region, fit in raw["fits"].items()}
         return model
+
+
+def save_mixed_model(path, model: MixedEffectsForecaster):
+    """Write a fitted mixed-effects model as JSON (atomic; no pickle), e.g. as a training prior."""
+    from predictor.files import write_json
+
+    return write_json(path, model.to_dict())
+
+
+def load_mixed_model(path) -> MixedEffectsForecaster:
+    """Read :func:`save_mixed_model` output; a malformed file raises DataError naming it."""
+    import json
+
+    try:
+        return MixedEffectsForecaster.from_dict(json.loads(Path(path).read_text()))
+    except (OSError, ValueError, KeyError, TypeError) as error:
+        raise DataError(f"{path}: not a saved mixed-effects model ({error})") from error
 
 
 def all_forecasters(

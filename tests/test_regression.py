@@ -21,6 +21,8 @@ from predictor.regression import (
     all_forecasters,
     baseline_rows,
     check_table,
+    load_mixed_model,
+    save_mixed_model,
     trim_mask,
 )
 
@@ -108,14 +110,16 @@ def test_new_participant_forecast_conditions_on_its_baseline():
     assert 0.5 < shift < 1.1
 
 
-def test_roundtrip_through_json_types():
+def test_saved_prior_roundtrip_and_bad_file(tmp_path):
     table = simulate_lmm(4)
     model = MixedEffectsForecaster().fit(table, ["hippocampus"])
-    import json
-
-    restored = MixedEffectsForecaster.from_dict(json.loads(json.dumps(model.to_dict())))
+    path = save_mixed_model(tmp_path / "prior.json", model)
+    restored = load_mixed_model(path)
     base = baseline_rows(check_table(table, ["hippocampus"]))
     pd.testing.assert_frame_equal(model.predict(base, [1, 3]), restored.predict(base, [1, 3]))
+    path.write_text('{"regions": []}')
+    with pytest.raises(DataError, match="not a saved mixed-effects model"):
+        load_mixed_model(path)
 
 
 @pytest.fixture(scope="module")
@@ -186,15 +190,8 @@ def test_every_forecaster_returns_the_common_table(phantom_truth):
             warnings.simplefilter("ignore")
             forecaster.fit(truth, regions)
         prediction = forecaster.predict(base, [0, 1, 2.5])
-        assert list(prediction.columns) == [
-            "participant_id",
-            "region",
-            "years",
-            "mean_ml",
-            "sd_ml",
-            "lower_ml",
-            "upper_ml",
-        ], name
+        expected = "participant_id region years mean_ml sd_ml lower_ml upper_ml".split()
+        assert list(prediction.columns) == expected, name
         assert len(prediction) == 5 * 3 * len(regions)
         assert prediction[["mean_ml", "sd_ml"]].notna().all().all(), name
         assert (prediction.lower_ml <= prediction.mean_ml).all()
