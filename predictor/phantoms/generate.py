@@ -40,11 +40,11 @@ from predictor.phantoms.anatomy import (
 )
 from predictor.phantoms.imaging import Pose, acquire, render, scanner_grid, tissue_intensities
 from predictor.phantoms.participants import (
-    _rng,
     assign_groups,
     best_forecast_ml,
     build_anatomy,
     draw_participant,
+    seeded_rng,
 )
 from predictor.phantoms.scenario import Scenario
 
@@ -106,7 +106,7 @@ def _make_participant(
     truth_rows, best_rows, session_rows, visits = [], [], [], []
     for number, years in enumerate(draw.visit_years, start=1):
         session = _session(number)
-        rng = _rng(seed, index, 1, number)
+        rng = seeded_rng(seed, index, 1, number)
         pose = Pose.draw(rng, imaging["rotation_degrees"], imaging["translation_mm"])
         true_row, best_row, progression = _visit_truth(scenario, draw, anatomy, number, years)
         clean, labels, _ = render(

@@ -48,7 +48,8 @@ class Draw:
         return asdict(self)
 
 
-def _rng(seed: int, *key: int) -> np.random.Generator:
+def seeded_rng(seed: int, *key: int) -> np.random.Generator:
+    """Independent generator for ``key`` (e.g. participant, purpose, visit) under ``seed``."""
     return np.random.default_rng(np.random.SeedSequence(seed, spawn_key=key))
 
 
@@ -60,7 +61,7 @@ def assign_groups(fractions: dict[str, float], count: int, seed: int) -> list[st
     for index in np.argsort(-(exact - sizes), kind="stable")[: count - sizes.sum()]:
         sizes[index] += 1
     labels = [name for name, size in zip(names, sizes, strict=True) for _ in range(size)]
-    return list(_rng(seed, 1 << 20).permutation(labels))
+    return list(seeded_rng(seed, 1 << 20).permutation(labels))
 
 
 def rate_multiplier(scenario: Scenario, deviation: float, hidden) -> np.ndarray:
@@ -80,7 +81,7 @@ def age_factor(scenario: Scenario, age: float) -> float:
 def population_waves(scenario: Scenario) -> tuple[np.ndarray, np.ndarray]:
     """The population folding pattern: wave directions (J, 3) and phases (J,)."""
     anatomy = scenario.anatomy
-    rng = _rng(int(anatomy["folding_seed"]))
+    rng = seeded_rng(int(anatomy["folding_seed"]))
     directions = rng.normal(size=(int(anatomy["folding_waves"]), 3))
     directions /= np.linalg.norm(directions, axis=1, keepdims=True)
     return directions, rng.uniform(0, 2 * np.pi, len(directions))
@@ -167,7 +168,7 @@ def draw_participant(
     scenario: Scenario, index: int, diagnosis: str, seed: int
 ) -> tuple[Draw, Anatomy]:
     """Draw participant number ``index`` (0-based) of a cohort with ``seed``."""
-    rng = _rng(seed, index, 0)
+    rng = seeded_rng(seed, index, 0)
     cohort, progression = scenario.cohort, scenario.progression
     sex_fractions = cohort["sex_fractions"]
     sex = "F" if rng.random() < sex_fractions["F"] else "M"
