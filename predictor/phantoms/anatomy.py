@@ -43,7 +43,7 @@ LABELS = {
 GM_LABELS = (2, 4, 5)
 WM_LABELS = (3,)
 CSF_LABELS = (1, 6, 7)
-QUADRATURE_POINTS = 200_000
+QUADRATURE_POINTS = 60_000  # relative volume error about 1e-6 (checked against 800,000)
 
 
 def row_norm(points: np.ndarray) -> np.ndarray:
