@@ -107,6 +107,97 @@ def main() -> None:
     app()
 
 
+TemplateOption = Annotated[
+    str,
+    typer.Option(
+        help="'mni152' (nilearn's MNI152 2009a, offline) or a template folder, "
+        "e.g. a phantom cohort's derivatives/phantom-template."
+    ),
+]
+
+
+@app.command()
+@reports_errors
+def prepare(
+    cohort: Annotated[Path, typer.Argument(help="BIDS folder or TSV/CSV cohort table.")],
+    work: Annotated[Path, typer.Argument(help="Workspace folder (created; reused as a cache).")],
+    jobs: Annotated[int, typer.Option(min=1, help="Scans prepared in parallel.")] = 1,
+    grid_mm: Annotated[
+        float | None, typer.Option(help="Working-grid voxel side in mm (2-4) [default: 3].")
+    ] = None,
+    template: TemplateOption = "mni152",
+    shard: Annotated[
+        str | None,
+        typer.Option(help="Prepare only part K of N (e.g. 3/10), for cluster array jobs."),
+    ] = None,
+    allow_outside: Annotated[
+        bool, typer.Option(help="Accept image paths outside the cohort folder.")
+    ] = False,
+    config: Annotated[
+        Path | None, typer.Option(help="Settings TOML [configs/prepare.toml].")
+    ] = None,
+) -> None:
+    """Preprocess, segment and measure every scan of a cohort into WORK.
+
+    Per scan: N4 bias correction, affine registration to the template, brain
+    mask, intensity normalisation (white matter = 1), GM/WM/CSF segmentation in
+    the scan's own space, regional volumes in mL and % of total brain volume,
+    and the scan resampled onto the working grid (mm) for training. Unchanged
+    scans are taken from the cache. Failed scans are listed in WORK/failures.tsv.
+    """
+    from predictor.cohort import read_cohort
+    from predictor.prepare import PrepareSettings, parse_shard, prepare_cohort
+
+    table = read_cohort(cohort, allow_outside=allow_outside)
+    settings = PrepareSettings.from_toml(config, grid_mm=grid_mm)
+    part = parse_shard(shard)
+    progress, advance = progress_bar("preparing scans", len(table) if part[1] == 1 else None)
+    with progress:
+        summary = prepare_cohort(table, work, template, settings, jobs, part, advance)
+    typer.echo(
+        f"{summary['prepared']} prepared, {summary['cached']} from cache, "
+        f"{summary['failed']} failed; volumes in {work / 'volumes.tsv'}"
+    )
+    if summary["failed"]:
+        typer.echo(
+            f"predictor: {summary['failed']} scan(s) failed; reasons in {work / 'failures.tsv'}",
+            err=True,
+        )
+        raise typer.Exit(1)
+
+
+@app.command()
+@reports_errors
+def volumes(
+    source: Annotated[Path, typer.Argument(help="A prepared WORK folder or one NIfTI scan.")],
+    template: TemplateOption = "mni152",
+    as_json: Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")] = False,
+) -> None:
+    """Regional volumes: one row per scan, each region in mL and as % of total brain volume."""
+    import json
+
+    import pandas as pd
+
+    from predictor.prepare import PrepareSettings, prepare_scan, workspace_volumes
+    from predictor.templates import load_template
+    from predictor.volumes import percent_of_brain
+
+    if source.is_dir():
+        table = workspace_volumes(source)
+    else:
+        from predictor.nifti import load_scan
+
+        scan = load_scan(source)
+        measured = prepare_scan(scan, load_template(template), PrepareSettings.from_toml())
+        table = pd.DataFrame(
+            [{"image": scan.name} | measured.volumes | percent_of_brain(measured.volumes)]
+        )
+    if as_json:
+        typer.echo(json.dumps(table.to_dict("records"), indent=2))
+    else:
+        typer.echo(table.round(3).to_string(index=False))
+
+
 @app.command()
 @reports_errors
 def demo(

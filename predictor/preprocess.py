@@ -1,0 +1,179 @@
+"""Preprocessing of one scan: bias field, registration, brain mask, normalisation, resampling.
+
+Pure computation on arrays (RAS voxel order, affines in mm) and SimpleITK
+images; file handling lives in :mod:`predictor.prepare`. The registration
+result is a 4x4 RAS matrix mapping template points to native points
+(``template_to_native``); its inverse takes native points to the template.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import SimpleITK as sitk
+from scipy import ndimage
+
+from predictor.errors import ScanError
+from predictor.spatial import affine_to_matrix, from_sitk, matrix_to_transform, to_sitk
+from predictor.templates import Template
+
+
+def head_mask(array: np.ndarray) -> np.ndarray:
+    """Foreground (head) mask by Otsu's threshold, largest component, holes filled."""
+    threshold = sitk.OtsuThreshold(sitk.GetImageFromArray(array.astype(np.float32)), 0, 1)
+    mask = sitk.GetArrayFromImage(threshold).astype(bool)
+    labels, count = ndimage.label(mask)
+    if count == 0:
+        raise ScanError("no foreground found (empty image)")
+    largest = labels == (np.argmax(np.bincount(labels.ravel())[1:]) + 1)
+    return ndimage.binary_fill_holes(largest)
+
+
+def n4_correct(array: np.ndarray, affine: np.ndarray, mask: np.ndarray, settings: dict):
+    """N4 bias-field correction (SimpleITK) fitted on a shrunk image, applied at full size.
+
+    Returns the corrected array and the estimated multiplicative bias field.
+    """
+    image = to_sitk(np.maximum(array, 0).astype(np.float32), affine)
+    mask_image = to_sitk(mask.astype(np.uint8), affine)
+    shrink = int(settings["shrink_factor"])
+    small = sitk.Shrink(image, [shrink] * 3)
+    small_mask = sitk.Shrink(mask_image, [shrink] * 3)
+    corrector = sitk.N4BiasFieldCorrectionImageFilter()
+    corrector.SetMaximumNumberOfIterations([int(n) for n in settings["iterations"]])
+    corrector.SetConvergenceThreshold(float(settings["convergence"]))
+    corrector.Execute(small, small_mask)
+    log_field, _ = from_sitk(corrector.GetLogBiasFieldAsImage(image))
+    field = np.exp(log_field).astype(np.float32)
+    return (array / field).astype(np.float32), field
+
+
+@dataclass(frozen=True)
+class Registration:
+    """Affine registration result: template point -> native point (RAS mm), and its fit."""
+
+    template_to_native: np.ndarray
+    metric: float
+    iterations: int
+    stop: str
+
+
+def register_affine(
+    array: np.ndarray, affine: np.ndarray, template: Template, settings: dict
+) -> Registration:
+    """Affine registration of a scan to the template (SimpleITK, Mattes mutual information).
+
+    Multi-resolution, moment-based start; the template (fixed) is resampled to
+    ``settings['template_mm']`` and its dilated brain mask limits the metric.
+    """
+    fixed = _resampled_template(template, float(settings["template_mm"]))
+    fixed_mask = _resampled_template(template, float(settings["template_mm"]), mask=True)
+    moving = to_sitk(array.astype(np.float32), affine)
+    initial = sitk.CenteredTransformInitializer(
+        fixed, moving, sitk.AffineTransform(3), sitk.CenteredTransformInitializerFilter.MOMENTS
+    )
+    method = sitk.ImageRegistrationMethod()
+    method.SetMetricAsMattesMutualInformation(int(settings["histogram_bins"]))
+    method.SetMetricSamplingStrategy(method.REGULAR)
+    method.SetMetricSamplingPercentage(float(settings["sampling_fraction"]), 1)
+    method.SetMetricFixedMask(fixed_mask)
+    method.SetInterpolator(sitk.sitkLinear)
+    method.SetOptimizerAsRegularStepGradientDescent(
+        learningRate=float(settings["learning_rate"]),
+        minStep=1e-4,
+        numberOfIterations=int(settings["iterations"]),
+        gradientMagnitudeTolerance=1e-8,
+    )
+    method.SetOptimizerScalesFromPhysicalShift()
+    method.SetShrinkFactorsPerLevel([int(s) for s in settings["shrink_factors"]])
+    method.SetSmoothingSigmasPerLevel([float(s) for s in settings["smoothing_mm"]])
+    method.SmoothingSigmasAreSpecifiedInPhysicalUnitsOn()
+    method.SetInitialTransform(initial, inPlace=False)
+    final = method.Execute(fixed, moving)
+    return Registration(
+        affine_to_matrix(final),
+        float(method.GetMetricValue()),
+        int(method.GetOptimizerIteration()),
+        method.GetOptimizerStopConditionDescription(),
+    )
+
+
+def _resampled_template(template: Template, spacing: float, mask: bool = False) -> sitk.Image:
+    if mask:
+        voxel = template.voxel_mm
+        dilated = ndimage.binary_dilation(template.brain_mask, iterations=max(1, round(4 / voxel)))
+        image = to_sitk(dilated.astype(np.uint8), template.affine)
+        interpolator = sitk.sitkNearestNeighbor
+    else:
+        image = to_sitk(template.t1.astype(np.float32), template.affine)
+        interpolator = sitk.sitkLinear
+    if abs(template.voxel_mm - spacing) < 1e-3:
+        return image
+    size = [
+        int(round(n * s / spacing))
+        for n, s in zip(image.GetSize(), image.GetSpacing(), strict=True)
+    ]
+    return sitk.Resample(
+        image,
+        size,
+        sitk.Transform(),
+        interpolator,
+        image.GetOrigin(),
+        [spacing] * 3,
+        image.GetDirection(),
+        0.0,
+        image.GetPixelID(),
+    )
+
+
+def resample(
+    array: np.ndarray,
+    affine: np.ndarray,
+    target_affine: np.ndarray,
+    target_shape: tuple[int, int, int],
+    target_to_source: np.ndarray,
+    linear: bool = True,
+) -> np.ndarray:
+    """Resample ``array`` onto a target grid; ``target_to_source`` maps target mm to source mm."""
+    source = to_sitk(array.astype(np.float32), affine)
+    reference = to_sitk(np.zeros(target_shape, np.float32), target_affine)
+    interpolator = sitk.sitkLinear if linear else sitk.sitkNearestNeighbor
+    out = sitk.Resample(
+        source,
+        reference,
+        matrix_to_transform(target_to_source),
+        interpolator,
+        0.0,
+        sitk.sitkFloat32,
+    )
+    return from_sitk(out)[0]
+
+
+def refine_brain_mask(
+    carried: np.ndarray, normalised: np.ndarray, voxel_mm: float, settings: dict
+) -> np.ndarray:
+    """Template brain mask carried to the scan, refined on the scan's intensities.
+
+    Keeps voxels brighter than ``threshold_of_wm`` (white matter = 1) inside the
+    carried mask dilated by ``dilate_mm``, then the largest component, holes filled.
+    """
+    iterations = max(1, int(round(float(settings["dilate_mm"]) / voxel_mm)))
+    region = ndimage.binary_dilation(carried > 0.5, iterations=iterations)
+    mask = region & (normalised > float(settings["threshold_of_wm"]))
+    mask = ndimage.binary_opening(mask, iterations=1)
+    labels, count = ndimage.label(mask)
+    if count == 0:
+        raise ScanError("the brain mask is empty")
+    largest = labels == (np.argmax(np.bincount(labels.ravel())[1:]) + 1)
+    return ndimage.binary_fill_holes(largest)
+
+
+def white_matter_scale(array: np.ndarray, wm_prior: np.ndarray, mask: np.ndarray) -> float:
+    """Median intensity where the carried template WM prior exceeds 0.9 (robust WM level)."""
+    core = mask & (wm_prior > 0.9)
+    if core.sum() < 20:
+        core = mask & (wm_prior > 0.5)
+    if core.sum() < 20:
+        raise ScanError("too little white matter found to normalise intensities")
+    return float(np.median(array[core]))
