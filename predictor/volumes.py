@@ -55,15 +55,6 @@ def unmixed_fraction(intensity: np.ndarray, pure: float, other: float) -> np.nda
     return np.clip((intensity - other) / (pure - other), 0.0, 1.0).astype(np.float32)
 
 
-def unmixed_fraction(intensity: np.ndarray, pure: float, other: float) -> np.ndarray:
-    """Two-compartment partial volume: share of the tissue of mean ``pure`` in each voxel.
-
-    A voxel of intensity I between the means of two tissues holds the fraction
-    (I - other) / (pure - other) of the first, clipped to [0, 1].
-    """
-    return np.clip((intensity - other) / (pure - other), 0.0, 1.0).astype(np.float32)
-
-
 def percent_of_brain(volumes: dict[str, float]) -> dict[str, float]:
     """Each region as % of total brain volume (GM + WM)."""
     return {f"{name}_pct_tbv": 100.0 * value / volumes["brain"] for name, value in volumes.items()}
