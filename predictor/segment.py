@@ -4,6 +4,12 @@ In the scan's native space and resolution: each brain voxel's intensity is
 modelled as a mixture of GM, WM and CSF Gaussians whose mixing weights are the
 template's tissue maps carried to the scan (with a small floor). Posteriors
 stay fractional, so a region's volume is a sum of probabilities (partial volume).
+
+After EM on the three pure classes, a final step adds two mixed classes
+(CSF/GM and GM/WM boundary voxels): a mixed voxel's intensity is modelled as
+a uniform blend of its two tissues plus noise, and its share of each tissue is
+read from where its intensity lies between the two means. Without them the
+broad CSF class swallows dark grey-matter boundary voxels.
 """
 
 from __future__ import annotations
@@ -42,6 +48,34 @@ def fit_mixture(
         log_posterior -= log_posterior.max(axis=1, keepdims=True)
         posterior = np.exp(log_posterior)
         posterior /= posterior.sum(axis=1, keepdims=True)
+    fractions = _with_mixed_classes(intensity, weights, means, sds)
     parameters = {f"{tissue}_mean": float(m) for tissue, m in zip(TISSUES, means, strict=True)}
     parameters |= {f"{tissue}_sd": float(s) for tissue, s in zip(TISSUES, sds, strict=True)}
-    return posterior.astype(np.float32), parameters
+    return fractions.astype(np.float32), parameters
+
+
+#: mixed classes as (index of the darker tissue, index of the brighter one) in TISSUES order
+MIXED = ((2, 0), (0, 1))  # CSF/GM, GM/WM
+
+
+def _with_mixed_classes(intensity, weights, means, sds) -> np.ndarray:
+    """Tissue fractions (N, 3) from pure and mixed-class posteriors (see the module docstring)."""
+    columns, likelihoods = [weights[:, k] for k in range(3)], []
+    for k in range(3):
+        likelihoods.append(_gaussian(intensity, means[k], sds[k]))
+    for dark, bright in MIXED:
+        columns.append(np.sqrt(weights[:, dark] * weights[:, bright]))
+        spread = (sds[dark] ** 2 + sds[bright] ** 2) / 2 + (means[bright] - means[dark]) ** 2 / 12
+        likelihoods.append(_gaussian(intensity, (means[dark] + means[bright]) / 2, np.sqrt(spread)))
+    joint = np.stack(columns, axis=1) * np.stack(likelihoods, axis=1)
+    joint /= np.maximum(joint.sum(axis=1, keepdims=True), 1e-30)
+    fractions = joint[:, :3].copy()
+    for column, (dark, bright) in enumerate(MIXED, start=3):
+        share = np.clip((intensity - means[dark]) / (means[bright] - means[dark]), 0.0, 1.0)
+        fractions[:, bright] += joint[:, column] * share
+        fractions[:, dark] += joint[:, column] * (1.0 - share)
+    return fractions
+
+
+def _gaussian(x, mean, sd):
+    return np.exp(-0.5 * ((x - mean) / sd) ** 2) / sd
