@@ -236,3 +236,7 @@ def demo(
     typer.echo("Mean true annual change (% per year) by diagnosis group:")
     typer.echo(summary.round(2).to_string())
     typer.echo(f"cohort: {cohort}")
+
+
+if __name__ == "__main__":
+    main()

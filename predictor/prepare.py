@@ -44,6 +44,7 @@ from predictor.preprocess import (
     refine_brain_mask,
     register_affine,
     resample,
+    single_threaded_itk,
     white_matter_scale,
 )
 from predictor.segment import fit_mixture
@@ -109,6 +110,7 @@ def prepare_scan(
     scan: Scan, template: Template, settings: PrepareSettings, given_mask: np.ndarray | None = None
 ) -> PreparedScan:
     """Bias correction, registration, brain mask, normalisation, segmentation, volumes."""
+    single_threaded_itk()
     data, affine = scan.data, scan.affine
     voxel_mm = float(scan.voxel_size_mm.mean())
     head = head_mask(data) if given_mask is None else given_mask

@@ -4,6 +4,10 @@ Pure computation on arrays (RAS voxel order, affines in mm) and SimpleITK
 images; file handling lives in :mod:`predictor.prepare`. The registration
 result is a 4x4 RAS matrix mapping template points to native points
 (``template_to_native``); its inverse takes native points to the template.
+
+ITK filters run single-threaded here: multi-threaded metric sums differ in the
+last digits from run to run, and a rerun must give identical volumes.
+Parallelism comes from preparing several scans at once (``--jobs``).
 """
 
 from __future__ import annotations
@@ -17,6 +21,11 @@ from scipy import ndimage
 from predictor.errors import ScanError
 from predictor.spatial import affine_to_matrix, from_sitk, matrix_to_transform, to_sitk
 from predictor.templates import Template
+
+
+def single_threaded_itk() -> None:
+    """Make every later SimpleITK filter in this process single-threaded (reproducible sums)."""
+    sitk.ProcessObject.SetGlobalDefaultNumberOfThreads(1)
 
 
 def head_mask(array: np.ndarray) -> np.ndarray:
@@ -65,10 +74,11 @@ def register_affine(
     """Affine registration of a scan to the template (SimpleITK, Mattes mutual information).
 
     Multi-resolution, moment-based start; the template (fixed) is resampled to
-    ``settings['template_mm']`` and its dilated brain mask limits the metric.
+    ``settings['template_mm']`` (when finer) and its dilated brain mask limits the metric.
     """
-    fixed = _resampled_template(template, float(settings["template_mm"]))
-    fixed_mask = _resampled_template(template, float(settings["template_mm"]), mask=True)
+    spacing = max(float(settings["template_mm"]), template.voxel_mm)  # never upsample
+    fixed = _resampled_template(template, spacing)
+    fixed_mask = _resampled_template(template, spacing, mask=True)
     moving = to_sitk(array.astype(np.float32), affine)
     initial = sitk.CenteredTransformInitializer(
         fixed, moving, sitk.AffineTransform(3), sitk.CenteredTransformInitializerFilter.MOMENTS
