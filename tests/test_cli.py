@@ -32,3 +32,35 @@ def test_unknown_size_is_a_clear_error(tmp_path):
     result = runner.invoke(app, ["phantoms", str(tmp_path / "x"), "--size", "huge"])
     assert result.exit_code == 2
     assert "size 'huge' is not one of demo, tiny" in result.output
+
+
+def test_prepare_volumes_and_demo_quick(tmp_path):
+    out = tmp_path / "demo"
+    result = runner.invoke(app, ["demo", str(out), "--quick"])
+    assert result.exit_code == 0, result.output
+    assert "Measured against true volumes" in result.output
+    listing = runner.invoke(app, ["volumes", str(out / "work"), "--json"])
+    assert listing.exit_code == 0
+    import json
+
+    rows = json.loads(listing.output)
+    assert rows and rows[0]["brain"] > 0 and abs(rows[0]["brain_pct_tbv"] - 100) < 1e-9
+    again = runner.invoke(
+        app,
+        [
+            "prepare",
+            str(out / "cohort"),
+            str(out / "work"),
+            "--template",
+            str(out / "cohort" / "derivatives" / "phantom-template"),
+            "--grid-mm",
+            "4",
+        ],
+    )
+    assert again.exit_code == 0, again.output
+    assert f"0 prepared, {len(rows)} from cache" in again.output
+
+
+def test_prepare_bad_shard_and_missing_cohort(tmp_path):
+    result = runner.invoke(app, ["prepare", str(tmp_path / "none"), str(tmp_path / "w")])
+    assert result.exit_code == 2 and "no such cohort" in result.output
