@@ -39,6 +39,7 @@ from predictor.errors import ConfigError, PredictorError, ScanError
 from predictor.files import sha256_file, write_json, write_tsv
 from predictor.nifti import Scan, load_scan, save_array
 from predictor.preprocess import (
+    grow_region,
     head_mask,
     n4_correct,
     refine_brain_mask,
@@ -125,12 +126,9 @@ def prepare_scan(
 
     priors = np.stack([to_native(template.priors[tissue]) for tissue in TISSUES], axis=-1)
     if given_mask is None:
-        rough = corrected / white_matter_scale(
-            corrected, priors[..., 1], to_native(template.brain_mask.astype(np.float32)) > 0.5
-        )
-        brain = refine_brain_mask(
-            to_native(template.brain_mask.astype(np.float32)), rough, voxel_mm, settings.mask
-        )
+        carried = to_native(template.brain_mask.astype(np.float32))
+        rough = corrected / white_matter_scale(corrected, priors[..., 1], carried > 0.5)
+        brain = refine_brain_mask(carried, rough, voxel_mm, settings.mask)
     else:
         brain = given_mask
     if brain.sum() == 0:
@@ -151,7 +149,17 @@ def prepare_scan(
         if spec.unmix_with:
             pure, other = mixture[f"{spec.tissue}_mean"], mixture[f"{spec.unmix_with}_mean"]
             content = np.where(brain, unmixed_fraction(normalised, pure, other), 0.0)
-        regions[spec.name] = (content, to_native(spec.mask.astype(np.float32)))
+        weight = to_native(spec.mask.astype(np.float32))
+        if spec.grow_mm:
+            weight = grow_region(weight > 0.5, content, voxel_mm, spec.grow_mm)
+        regions[spec.name] = (content, weight)
+    grown = [regions[spec.name][1] for spec in template.regions if spec.grow_mm]
+    if grown:  # a grown region (with its partial-volume rim) is not also part of another
+        claimed = np.max(grown, axis=0)
+        for spec in template.regions:
+            if not spec.grow_mm:
+                content, weight = regions[spec.name]
+                regions[spec.name] = (content, weight * (1.0 - claimed))
     volumes = region_volumes(tissue, regions, scan.voxel_volume_ml)
     low, high = settings.checks["brain_ml"]
     if not low <= volumes["brain"] <= high:

@@ -80,9 +80,31 @@ def register_affine(
     fixed = _resampled_template(template, spacing)
     fixed_mask = _resampled_template(template, spacing, mask=True)
     moving = to_sitk(array.astype(np.float32), affine)
-    initial = sitk.CenteredTransformInitializer(
-        fixed, moving, sitk.AffineTransform(3), sitk.CenteredTransformInitializerFilter.MOMENTS
+    # Two stages, as is common practice: a similarity transform (rotation, translation,
+    # isotropic scale) from the moment-based start, then the full affine from there.
+    similarity = sitk.CenteredTransformInitializer(
+        fixed, moving, sitk.Similarity3DTransform(), sitk.CenteredTransformInitializerFilter.MOMENTS
     )
+    first, _ = _run_registration(fixed, fixed_mask, moving, similarity, settings)
+    start = sitk.AffineTransform(3)
+    start.SetCenter(similarity.GetCenter())
+    first_similarity = (
+        sitk.Similarity3DTransform(first.GetNthTransform(0))
+        if isinstance(first, sitk.CompositeTransform)
+        else sitk.Similarity3DTransform(first)
+    )
+    start.SetMatrix(first_similarity.GetMatrix())
+    start.SetTranslation(first_similarity.GetTranslation())
+    final, method = _run_registration(fixed, fixed_mask, moving, start, settings)
+    return Registration(
+        affine_to_matrix(final),
+        float(method.GetMetricValue()),
+        int(method.GetOptimizerIteration()),
+        method.GetOptimizerStopConditionDescription(),
+    )
+
+
+def _run_registration(fixed, fixed_mask, moving, initial, settings):
     method = sitk.ImageRegistrationMethod()
     method.SetMetricAsMattesMutualInformation(int(settings["histogram_bins"]))
     method.SetMetricSamplingStrategy(method.REGULAR)
@@ -100,13 +122,7 @@ def register_affine(
     method.SetSmoothingSigmasPerLevel([float(s) for s in settings["smoothing_mm"]])
     method.SmoothingSigmasAreSpecifiedInPhysicalUnitsOn()
     method.SetInitialTransform(initial, inPlace=False)
-    final = method.Execute(fixed, moving)
-    return Registration(
-        affine_to_matrix(final),
-        float(method.GetMetricValue()),
-        int(method.GetOptimizerIteration()),
-        method.GetOptimizerStopConditionDescription(),
-    )
+    return method.Execute(fixed, moving), method
 
 
 def _resampled_template(template: Template, spacing: float, mask: bool = False) -> sitk.Image:
@@ -187,3 +203,21 @@ def white_matter_scale(array: np.ndarray, wm_prior: np.ndarray, mask: np.ndarray
     if core.sum() < 20:
         raise ScanError("too little white matter found to normalise intensities")
     return float(np.median(array[core]))
+
+
+def grow_region(
+    seed: np.ndarray, content: np.ndarray, voxel_mm: float, grow_mm: float
+) -> np.ndarray:
+    """Region grown from a carried template mask through voxels mostly of its tissue.
+
+    Keeps the connected components of ``content > 0.5`` (within ``grow_mm`` of
+    the seed) that touch the seed, plus one voxel around them for partial
+    volume; returns a float mask. An enlarged structure is thus followed past
+    the template's outline without reaching tissue it is not connected to.
+    """
+    reach = ndimage.binary_dilation(seed, iterations=max(1, int(round(grow_mm / voxel_mm))))
+    candidate = (content > 0.5) & reach
+    labels, _ = ndimage.label(candidate)
+    touching = np.unique(labels[seed & candidate])
+    grown = np.isin(labels, touching[touching > 0])
+    return (ndimage.binary_dilation(grown, iterations=1) & reach).astype(np.float32)

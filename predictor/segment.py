@@ -38,22 +38,29 @@ def fit_mixture(
     weights = weights / np.maximum(weights.sum(axis=1, keepdims=True), 1e-6)
     weights = (1 - floor) * weights + floor / 3
     posterior = weights.copy()
+    # A uniform outlier class (weight OUTLIER_WEIGHT over the intensity range) absorbs voxels
+    # that fit no tissue (e.g. skull left in the mask), so that no class's SD can widen to
+    # swallow its neighbours while the parameters are estimated.
+    outlier = OUTLIER_WEIGHT / max(float(np.ptp(intensity)), 1e-6)
     for _ in range(iterations):
         total = posterior.sum(axis=0) + 1e-9
         means = (posterior * intensity[:, None]).sum(axis=0) / total
         variances = (posterior * (intensity[:, None] - means) ** 2).sum(axis=0) / total
         sds = np.sqrt(np.maximum(variances, 1e-6))
-        log_likelihood = -0.5 * ((intensity[:, None] - means) / sds) ** 2 - np.log(sds)
-        log_posterior = np.log(weights) + log_likelihood
-        log_posterior -= log_posterior.max(axis=1, keepdims=True)
-        posterior = np.exp(log_posterior)
-        posterior /= posterior.sum(axis=1, keepdims=True)
+        joint = (
+            (1 - OUTLIER_WEIGHT)
+            * weights
+            * np.stack([_gaussian(intensity, means[k], sds[k]) for k in range(3)], axis=1)
+        )
+        posterior = joint / (joint.sum(axis=1, keepdims=True) + outlier)
     fractions = _with_mixed_classes(intensity, weights, means, sds)
     parameters = {f"{tissue}_mean": float(m) for tissue, m in zip(TISSUES, means, strict=True)}
     parameters |= {f"{tissue}_sd": float(s) for tissue, s in zip(TISSUES, sds, strict=True)}
     return fractions.astype(np.float32), parameters
 
 
+#: prior weight of the uniform outlier class used while fitting
+OUTLIER_WEIGHT = 0.02
 #: mixed classes as (index of the darker tissue, index of the brighter one) in TISSUES order
 MIXED = ((2, 0), (0, 1))  # CSF/GM, GM/WM
 
@@ -78,4 +85,4 @@ def _with_mixed_classes(intensity, weights, means, sds) -> np.ndarray:
 
 
 def _gaussian(x, mean, sd):
-    return np.exp(-0.5 * ((x - mean) / sd) ** 2) / sd
+    return np.exp(-0.5 * ((x - mean) / sd) ** 2) / (sd * np.sqrt(2 * np.pi))

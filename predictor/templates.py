@@ -39,6 +39,7 @@ class RegionSpec:
     mask: np.ndarray  # bool, template grid
     description: str
     unmix_with: str | None = None  # partial volume against this neighbouring tissue
+    grow_mm: float = 0.0  # grow the region through its tissue up to this far from the mask
 
 
 @dataclass(frozen=True, eq=False)
@@ -108,7 +109,16 @@ def _region_specs(
         unmix = spec.get("unmix_with")
         if unmix is not None and unmix not in TISSUES:
             raise ConfigError(f"{source}: region '{name}' unmix_with must be GM, WM or CSF")
-        specs.append(RegionSpec(name, tissue, mask, spec.get("description", name), unmix))
+        specs.append(
+            RegionSpec(
+                name,
+                tissue,
+                mask,
+                spec.get("description", name),
+                unmix,
+                float(spec.get("grow_mm", 0.0)),
+            )
+        )
     return tuple(specs)
 
 

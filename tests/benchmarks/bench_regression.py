@@ -12,19 +12,10 @@ def all_forecasters_300x9() -> dict:
     from predictor.phantoms.generate import true_volume_table
     from predictor.phantoms.scenario import Scenario
     from predictor.regression import all_forecasters, baseline_rows, check_table
+    from predictor.volumes import REGIONS
 
     truth, _ = true_volume_table(Scenario.from_toml(), 300, seed=1)
-    regions = [
-        "hippocampus_left",
-        "hippocampus_right",
-        "ventricles",
-        "cortical_gm",
-        "total_gm",
-        "wm",
-        "brain",
-        "csf",
-        "icv",
-    ]
+    regions = [*REGIONS, "csf"]
     rng = np.random.default_rng(0)
     for region in regions:  # 1% measurement noise, as a real volume table has
         truth[region] = truth[region] * (1 + 0.01 * rng.normal(size=len(truth)))
