@@ -81,11 +81,16 @@ def register_affine(
     fixed_mask = _resampled_template(template, spacing, mask=True)
     moving = to_sitk(array.astype(np.float32), affine)
     # Two stages, as is common practice: a similarity transform (rotation, translation,
-    # isotropic scale) from the moment-based start, then the full affine from there.
+    # isotropic scale) from the moment-based start on the coarse levels, then the full
+    # affine on all levels from there.
     similarity = sitk.CenteredTransformInitializer(
         fixed, moving, sitk.Similarity3DTransform(), sitk.CenteredTransformInitializerFilter.MOMENTS
     )
-    first, _ = _run_registration(fixed, fixed_mask, moving, similarity, settings)
+    coarse = settings | {
+        "shrink_factors": settings["shrink_factors"][:-1],
+        "smoothing_mm": settings["smoothing_mm"][:-1],
+    }
+    first, _ = _run_registration(fixed, fixed_mask, moving, similarity, coarse)
     start = sitk.AffineTransform(3)
     start.SetCenter(similarity.GetCenter())
     first_similarity = (
