@@ -121,8 +121,8 @@ def prepare_scan(
         raise ScanError(f"registration did not converge (metric {registration.metric:.3f})")
     native_to_template = np.linalg.inv(registration.template_to_native)
 
-    def to_native(array, linear=True):
-        return resample(array, template.affine, affine, data.shape, native_to_template, linear)
+    def to_native(array):
+        return resample(array, template.affine, affine, data.shape, native_to_template)
 
     priors = np.stack([to_native(template.priors[tissue]) for tissue in TISSUES], axis=-1)
     if given_mask is None:
@@ -168,8 +168,8 @@ def prepare_scan(
     grid, shape = working_grid(template, settings)
     to_grid = registration.template_to_native
 
-    def onto_grid(array, linear=True):
-        return resample(array, affine, grid, shape, to_grid, linear)
+    def onto_grid(array):
+        return resample(array, affine, grid, shape, to_grid)
 
     labels = np.zeros(data.shape, np.uint8)
     labels[brain] = np.argmax(posterior, axis=1).astype(np.uint8) + 1

@@ -13,6 +13,7 @@ Parallelism comes from preparing several scans at once (``--jobs``).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 import SimpleITK as sitk
@@ -32,9 +33,17 @@ def head_mask(array: np.ndarray) -> np.ndarray:
     """Foreground (head) mask by Otsu's threshold, largest component, holes filled."""
     threshold = sitk.OtsuThreshold(sitk.GetImageFromArray(array.astype(np.float32)), 0, 1)
     mask = sitk.GetArrayFromImage(threshold).astype(bool)
+    return largest_component_filled(mask, "no foreground found (empty image)")
+
+
+def largest_component_filled(mask: np.ndarray, empty_message: str) -> np.ndarray:
+    """The largest connected component of ``mask`` with its holes filled.
+
+    Raises ScanError(``empty_message``) when the mask has no voxel.
+    """
     labels, count = ndimage.label(mask)
     if count == 0:
-        raise ScanError("no foreground found (empty image)")
+        raise ScanError(empty_message)
     largest = labels == (np.argmax(np.bincount(labels.ravel())[1:]) + 1)
     return ndimage.binary_fill_holes(largest)
 
@@ -130,7 +139,9 @@ def _run_registration(fixed, fixed_mask, moving, initial, settings):
     return method.Execute(fixed, moving), method
 
 
+@lru_cache(maxsize=4)
 def _resampled_template(template: Template, spacing: float, mask: bool = False) -> sitk.Image:
+    """The template T1 (or its brain mask dilated by 4 mm) at ``spacing`` mm; cached per process."""
     if mask:
         voxel = template.voxel_mm
         dilated = ndimage.binary_dilation(template.brain_mask, iterations=max(1, round(4 / voxel)))
@@ -164,17 +175,18 @@ def resample(
     target_affine: np.ndarray,
     target_shape: tuple[int, int, int],
     target_to_source: np.ndarray,
-    linear: bool = True,
 ) -> np.ndarray:
-    """Resample ``array`` onto a target grid; ``target_to_source`` maps target mm to source mm."""
+    """Linearly resample ``array`` onto a target grid.
+
+    ``target_to_source`` maps target points (mm) to source points (mm).
+    """
     source = to_sitk(array.astype(np.float32), affine)
     reference = to_sitk(np.zeros(target_shape, np.float32), target_affine)
-    interpolator = sitk.sitkLinear if linear else sitk.sitkNearestNeighbor
     out = sitk.Resample(
         source,
         reference,
         matrix_to_transform(target_to_source),
-        interpolator,
+        sitk.sitkLinear,
         0.0,
         sitk.sitkFloat32,
     )
@@ -193,11 +205,7 @@ def refine_brain_mask(
     region = ndimage.binary_dilation(carried > 0.5, iterations=iterations)
     mask = region & (normalised > float(settings["threshold_of_wm"]))
     mask = ndimage.binary_opening(mask, iterations=1)
-    labels, count = ndimage.label(mask)
-    if count == 0:
-        raise ScanError("the brain mask is empty")
-    largest = labels == (np.argmax(np.bincount(labels.ravel())[1:]) + 1)
-    return ndimage.binary_fill_holes(largest)
+    return largest_component_filled(mask, "the brain mask is empty")
 
 
 def white_matter_scale(array: np.ndarray, wm_prior: np.ndarray, mask: np.ndarray) -> float:
