@@ -195,6 +195,67 @@ def volumes(
 
 @app.command()
 @reports_errors
+def train(
+    work: Annotated[Path, typer.Argument(help="A prepared workspace (predictor prepare).")],
+    model: Annotated[Path, typer.Argument(help="Model folder to write (weights, model.json).")],
+    config: Annotated[
+        Path | None,
+        typer.Option(help="Training TOML [configs/train.toml]; configs/train-tiny.toml for tests."),
+    ] = None,
+    epochs: Annotated[
+        int | None, typer.Option(min=1, help="Total epochs [default: the config's].")
+    ] = None,
+    resume: Annotated[
+        bool, typer.Option(help="Continue from MODEL's last checkpoint (same seed, same result).")
+    ] = False,
+    seed: Annotated[int | None, typer.Option(help="Seed [default: the config's].")] = None,
+    force: Annotated[bool, typer.Option(help="Start over in a MODEL folder holding one.")] = False,
+) -> None:
+    """Train the conditional velocity-field network on a CPU.
+
+    Participants are split 80/10/10 (train/validation/test, seeded; every test
+    participant has a follow-up 2 years or more after baseline). Every
+    earlier -> later visit pair of the training participants is a sample; the
+    network predicts an annualised velocity field (working-grid voxels per
+    year) whose exponential over the interval (years) warps the baseline.
+    A checkpoint is written every epoch; the best epoch's weights are kept.
+    Under torchrun (gloo backend) the work is shared by the processes.
+    """
+    from predictor.training import TrainConfig
+    from predictor.training import train as run_training
+
+    settings = TrainConfig.from_toml(config)
+    total = epochs or settings.training.epochs
+    progress, _ = progress_bar("training", None)
+    task = progress.task_ids[0]
+
+    def on_step(epoch, step, steps, terms):
+        progress.update(
+            task,
+            total=total * steps,
+            completed=epoch * steps + step,
+            description=f"epoch {epoch + 1}/{total} loss {terms['total']:.3g} "
+            f"(sim {terms['similarity']:.2g}, prior {terms['prior']:.2g})",
+        )
+
+    def on_epoch(row):
+        if "val_volume_error" in row:
+            progress.console.print(
+                f"epoch {row['epoch']}: validation loss {row['val_total']:.4g}, volume error "
+                f"{row['val_volume_error']:.3f} % of brain (no change: "
+                f"{row['val_volume_error_no_change']:.3f}), {row['seconds']:.0f} s"
+            )
+
+    with progress:
+        last = run_training(work, model, settings, epochs, resume, seed, force, on_step, on_epoch)
+    typer.echo(f"model in {model} (weights.pt, model.json, log.tsv, loss_curves.png)")
+    if last:
+        typer.echo(f"last epoch {last['epoch']}: training loss {last['train_total']:.4g}")
+    typer.echo(CAUTION)
+
+
+@app.command()
+@reports_errors
 def demo(
     out: Annotated[Path, typer.Argument(help="Folder for everything the demo writes.")] = Path(
         "demo-output"

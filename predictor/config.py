@@ -108,3 +108,39 @@ class CohortSettings:
     def sex(self, value: str) -> str | None:
         """The configured sex code for ``value`` (case-insensitive, aliases allowed), else None."""
         return self._match(value, self.sex_codes, self.sex_aliases)
+
+
+def settings_from_table(cls, table: dict[str, Any], source: str):
+    """Build the frozen dataclass ``cls`` from a TOML table, naming unknown and missing keys.
+
+    Lists become tuples; each value is checked against the field's default type
+    (a float field accepts an int).
+    """
+    from dataclasses import MISSING, fields
+
+    known = {item.name: item for item in fields(cls)}
+    unknown = sorted(set(table) - set(known))
+    if unknown:
+        raise ConfigError(f"{source}: unknown key(s) {', '.join(unknown)}")
+    values = {}
+    for name, item in known.items():
+        if name not in table:
+            if item.default is MISSING:
+                raise ConfigError(f"{source}: missing key '{name}'")
+            continue
+        value = table[name]
+        default = item.default
+        if isinstance(value, list):
+            value = tuple(value)
+        if default is not MISSING and default is not None:
+            expected = float if isinstance(default, float) else type(default)
+            accepted = (int, float) if expected is float else expected
+            if isinstance(value, bool) and expected is not bool or not isinstance(value, accepted):
+                raise ConfigError(f"{source}: '{name}' must be {expected.__name__}, got {value!r}")
+            if expected is float:
+                value = float(value)
+        values[name] = value
+    try:
+        return cls(**values)
+    except (TypeError, ValueError) as error:
+        raise ConfigError(f"{source}: {error}") from error

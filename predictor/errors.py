@@ -30,3 +30,7 @@ class OutputError(PredictorError, OSError):
 
 class DataError(PredictorError, ValueError):
     """A volume table or forecast request cannot be used; the message names the value."""
+
+
+class ModelError(PredictorError, ValueError):
+    """A model folder or checkpoint cannot be used; the message names the file and the reason."""

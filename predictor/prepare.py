@@ -9,6 +9,8 @@ Workspace layout (WORK)::
         grid_T1w.nii.gz      normalised T1 on the working grid (template space)
         grid_mask.nii.gz     brain mask on the working grid
         grid_probseg.nii.gz  GM, WM, CSF probabilities on the working grid (4D)
+        grid_regions.nii.gz  left and right hippocampus and ventricles (their tissue
+                             fraction inside the region) on the working grid (4D)
         native_dseg.nii.gz   most likely tissue in the scan's own space (1 GM, 2 WM, 3 CSF)
         result.json          volumes, native<->template transforms, fit diagnostics
     volumes.tsv          one row per scan: regions in mL and % of total brain volume
@@ -92,6 +94,7 @@ class PreparedScan:
     grid_t1: np.ndarray
     grid_mask: np.ndarray
     grid_tissue: np.ndarray  # (X, Y, Z, 3) GM, WM, CSF
+    grid_regions: np.ndarray  # (X, Y, Z, 3) templates.DEEP_REGIONS
     native_labels: np.ndarray  # uint8, the scan's RAS grid
     native_affine: np.ndarray
     diagnostics: dict
@@ -179,6 +182,9 @@ def prepare_scan(
         grid_t1=onto_grid(normalised),
         grid_mask=onto_grid(brain.astype(np.float32)) > 0.5,
         grid_tissue=np.stack([onto_grid(tissue[name]) for name in TISSUES], axis=-1),
+        grid_regions=np.stack(
+            [onto_grid(content * weight) for content, weight in regions.values()], axis=-1
+        ),
         native_labels=labels,
         native_affine=affine,
         diagnostics={
@@ -196,6 +202,8 @@ def prepare_scan(
 SCANS = "scans"
 RESULT = "result.json"
 TSV_ID = ("participant_id", "session_id", "age", "sex", "diagnosis")
+#: bumped whenever a cache entry gains or changes a file, so older entries are redone
+CACHE_FORMAT = 2
 
 
 def scan_key(row, settings: PrepareSettings, template: Template) -> str:
@@ -206,7 +214,7 @@ def scan_key(row, settings: PrepareSettings, template: Template) -> str:
         digest.update(sha256_file(row["brain_mask"]).encode())
     digest.update(settings.fingerprint().encode())
     digest.update(template.checksum.encode())
-    digest.update(__version__.encode())
+    digest.update(f"{__version__}/{CACHE_FORMAT}".encode())
     return digest.hexdigest()[:20]
 
 
@@ -253,6 +261,7 @@ def _run_scan(row: dict, folder: str, template_spec: str, settings: PrepareSetti
     save_array(prepared.grid_t1, grid, folder / "grid_T1w.nii.gz")
     save_array(prepared.grid_mask.astype(np.uint8), grid, folder / "grid_mask.nii.gz", np.uint8)
     save_array(prepared.grid_tissue, grid, folder / "grid_probseg.nii.gz")
+    save_array(prepared.grid_regions, grid, folder / "grid_regions.nii.gz")
     save_array(
         prepared.native_labels, prepared.native_affine, folder / "native_dseg.nii.gz", np.uint8
     )

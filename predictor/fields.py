@@ -1,0 +1,134 @@
+"""Deformation conventions, written once: warping, scaling and squaring, Jacobians.
+
+Conventions (every stage uses these):
+
+* Images on the working grid are tensors ``(B, C, D, H, W)``; array axis
+  ``k`` of ``(D, H, W)`` is spatial axis ``k`` (RAS voxel order on the grid).
+* A displacement field ``u`` is ``(B, 3, D, H, W)`` in voxels, channel ``k``
+  along array axis ``k``. Warping *pulls back*: ``out(x) = in(x + u(x))``
+  (the convention of MONAI's ``Warp`` and of SimpleITK's resampling through a
+  ``DisplacementFieldTransform``).
+* The network predicts a stationary velocity field ``v`` (same layout, voxels
+  per year) that moves *tissue forward*: a baseline point ``y`` is at
+  ``exp(t v)(y)`` after ``t`` years. Hence
+
+  - the forecast image at horizon ``t`` is the baseline pulled back through
+    ``exp(-t v)``: ``forecast(x) = baseline(x + u_back(x))`` with
+    ``u_back = displacement of exp(-t v)``;
+  - a baseline region ``R`` occupies ``sum_{y in R} det D exp(t v)(y)``
+    voxels at horizon ``t``: the Jacobian determinant of the *forward* map,
+    evaluated on the baseline grid, is the local volume ratio
+    (follow-up / baseline), and its logarithm is the log-Jacobian atrophy map
+    (negative where tissue shrinks).
+
+* ``exp`` is integrated by scaling and squaring (Arsigny et al. 2006, MICCAI):
+  ``u = t v / 2**N``, then ``N`` times ``u <- u + u o (id + u)``. Values
+  outside the grid are taken from its border (zero padding would pull the
+  field towards zero at the edges).
+"""
+
+from __future__ import annotations
+
+import torch
+import torch.nn.functional as F
+
+
+def identity_grid(shape: tuple[int, int, int], dtype=torch.float32) -> torch.Tensor:
+    """Voxel coordinates of a grid, ``(1, 3, D, H, W)``."""
+    axes = [torch.arange(n, dtype=dtype) for n in shape]
+    return torch.stack(torch.meshgrid(*axes, indexing="ij"), dim=0)[None]
+
+
+def warp(
+    image: torch.Tensor,
+    displacement: torch.Tensor,
+    mode: str = "bilinear",
+    padding: str = "border",
+) -> torch.Tensor:
+    """Pull ``image`` (B, C, D, H, W) back through ``displacement`` (B, 3, D, H, W) in voxels.
+
+    ``out(x) = image(x + displacement(x))`` with trilinear interpolation
+    (``mode='bilinear'``, PyTorch's name for it in 3D) or ``'nearest'``.
+    """
+    if displacement.ndim != 5 or displacement.shape[1] != 3:
+        raise ValueError(f"displacement must be (B, 3, D, H, W), got {tuple(displacement.shape)}")
+    if image.shape[2:] != displacement.shape[2:]:
+        raise ValueError(
+            f"image grid {tuple(image.shape[2:])} != displacement grid "
+            f"{tuple(displacement.shape[2:])}"
+        )
+    location = identity_grid(tuple(displacement.shape[2:]), displacement.dtype) + displacement
+    return _grid_sample(image, location, mode, padding)
+
+
+def compose(first: torch.Tensor, second: torch.Tensor) -> torch.Tensor:
+    """Displacement of ``x -> first(second(x))``: ``u2(x) + u1(x + u2(x))``, voxels."""
+    return second + warp(first, second)
+
+
+def exp_velocity(velocity: torch.Tensor, years: float | torch.Tensor, steps: int = 7):
+    """Displacement (B, 3, D, H, W) of ``exp(years * velocity)`` by scaling and squaring.
+
+    ``years`` is a number or a tensor of shape (B,) (one horizon per sample);
+    negative horizons give the inverse map.
+    """
+    if isinstance(years, torch.Tensor):
+        scale = years.to(velocity.dtype).view(-1, 1, 1, 1, 1)
+    else:
+        scale = float(years)
+    displacement = velocity * scale / (2**steps)
+    for _ in range(steps):
+        displacement = compose(displacement, displacement)
+    return displacement
+
+
+def jacobian_determinant(displacement: torch.Tensor) -> torch.Tensor:
+    """det(I + grad u) of a displacement (B, 3, D, H, W) in voxels; returns (B, D, H, W).
+
+    Derivatives by central differences (one-sided at the border), as
+    ``numpy.gradient``; isotropic voxels are assumed (the working grid is).
+    """
+    rows = []
+    for k in range(3):
+        gradients = torch.gradient(displacement[:, k], dim=(1, 2, 3))
+        rows.append([g + (1.0 if j == k else 0.0) for j, g in enumerate(gradients)])
+    (a, b, c), (d, e, f), (g, h, i) = rows
+    return a * (e * i - f * h) - b * (d * i - f * g) + c * (d * h - e * g)
+
+
+def log_jacobian(displacement: torch.Tensor, floor: float = 1e-3) -> torch.Tensor:
+    """log det(I + grad u), (B, D, H, W); determinants below ``floor`` are clamped to it."""
+    return torch.log(torch.clamp(jacobian_determinant(displacement), min=floor))
+
+
+def region_volume_ratio(weights: torch.Tensor, determinant: torch.Tensor) -> torch.Tensor:
+    """Follow-up / baseline volume of regions: ``sum(w det) / sum(w)``.
+
+    ``weights`` (B, R, D, H, W) are fractional region memberships on the
+    baseline grid, ``determinant`` (B, D, H, W) that of the forward map;
+    returns (B, R).
+    """
+    total = weights.sum(dim=(2, 3, 4)).clamp(min=1e-6)
+    return (weights * determinant[:, None]).sum(dim=(2, 3, 4)) / total
+
+
+def _grid_sample(image, location, mode="bilinear", padding="border") -> torch.Tensor:
+    """Samples of ``image`` (B, C, D, H, W) at voxel coordinates ``location`` (B, 3, d, h, w)."""
+    # grid_sample wants (x, y, z) = (W, H, D) order, normalised to [-1, 1] (align_corners=True)
+    scale = torch.tensor([max(n - 1, 1) for n in image.shape[2:]], dtype=location.dtype)
+    normalised = 2.0 * location / scale.view(1, 3, 1, 1, 1) - 1.0
+    grid = normalised.permute(0, 2, 3, 4, 1).flip(-1)
+    return F.grid_sample(image, grid, mode=mode, padding_mode=padding, align_corners=True)
+
+
+def upsample_displacement(
+    displacement: torch.Tensor, shape: tuple[int, int, int], factor: int = 2
+) -> torch.Tensor:
+    """A displacement on a grid ``factor`` times coarser, on the fine grid of ``shape``.
+
+    Fine voxel ``x`` lies at coarse voxel ``x / factor`` (the grid of a
+    stride-``factor`` convolution), and one coarse voxel is ``factor`` fine
+    voxels. Input (B, 3, d, h, w), output (B, 3, *shape), both in their own voxels.
+    """
+    location = identity_grid(shape, displacement.dtype) / factor
+    return factor * _grid_sample(displacement, location.expand(len(displacement), -1, -1, -1, -1))

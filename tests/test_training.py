@@ -1,0 +1,257 @@
+"""Network, losses and trainer (predictor.network, losses, pairs, training, modelstore)."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import torch
+from typer.testing import CliRunner
+
+from predictor.cli import app
+from predictor.config import CONFIG_DIR
+from predictor.errors import ConfigError, DataError, OutputError
+from predictor.fields import identity_grid, jacobian_determinant, region_volume_ratio
+from predictor.losses import (
+    LossSettings,
+    masked_lncc,
+    masked_mse,
+    monotone_regions,
+    monotone_voxels,
+    prior_z2,
+    smoothness,
+)
+from predictor.modelstore import CHECKPOINT, WEIGHTS, load_model, load_tensors
+from predictor.network import NetworkSettings, VelocityNet, encode_condition
+from predictor.pairs import (
+    PRIOR_REGIONS,
+    ScanStore,
+    read_workspace,
+    split_participants,
+    visit_pairs,
+)
+from predictor.training import TrainConfig, train
+
+TINY = CONFIG_DIR / "train-tiny.toml"
+
+
+# --- configuration --------------------------------------------------------------------------
+def test_default_and_tiny_configs_read():
+    default, tiny = TrainConfig.from_toml(), TrainConfig.from_toml(TINY)
+    assert default.network.channels == (8, 16, 24, 32) and tiny.network.channels == (4, 8, 8)
+    assert TrainConfig.from_dict(default.to_dict()) == default
+
+
+@pytest.mark.parametrize(
+    ("raw", "message"),
+    [
+        ({"network": {"chanels": [4, 8]}}, "unknown key"),
+        ({"loss": {"similarity": "ssd"}}, "'ssd' was given"),
+        ({"training": {"split": [0.5, 0.1, 0.1]}}, "summing to 1"),
+        ({"training": {"epochs": "ten"}}, "'epochs' must be int"),
+        ({"optimiser": {}}, "unknown table"),
+    ],
+)
+def test_bad_config_is_a_clear_error(raw, message):
+    with pytest.raises(ConfigError, match=message):
+        TrainConfig.from_dict(raw, "test.toml")
+
+
+# --- network --------------------------------------------------------------------------------
+def test_untrained_network_forecasts_no_change_and_checks_shapes():
+    network = VelocityNet(NetworkSettings(channels=(4, 8, 8)), condition_size=5)
+    image = torch.randn(2, 4, 13, 15, 11)  # odd sides are padded internally
+    condition = encode_condition([70, 80], [0, 1], [0, 2], 75.0, 5.0, 3)
+    velocity = network(image, condition)
+    assert velocity.shape == (2, 3, 8, 8, 6)  # half of the sides padded to a multiple of 4
+    assert torch.count_nonzero(velocity) == 0  # zero-initialised output layer
+    displacement = network.displacement(velocity, 3.0, (13, 15, 11))
+    assert displacement.shape == (2, 3, 13, 15, 11) and torch.count_nonzero(displacement) == 0
+    with pytest.raises(ValueError, match=r"image must be \(B, 4, D, H, W\)"):
+        network(torch.randn(2, 1, 8, 8, 8), condition)
+    with pytest.raises(ValueError, match=r"condition must be \(2, 5\)"):
+        network(image, condition[:, :4])
+
+
+def test_condition_encoding_is_standardised_and_one_hot():
+    condition = encode_condition([70.0, 80.0], [False, True], [2, 0], 75.0, 5.0, 3).numpy()
+    np.testing.assert_allclose(condition, [[-1, -0.5, 0, 0, 1], [1, 0.5, 1, 0, 0]])
+
+
+# --- losses (hand-computed values) -------------------------------------------------------------
+def test_loss_terms_on_hand_checkable_inputs(rng):
+    a = torch.zeros(1, 1, 4, 5, 6)
+    b = torch.full((1, 1, 4, 5, 6), 2.0)
+    mask = torch.zeros_like(a)
+    mask[..., :2] = 1.0
+    assert float(masked_mse(a, b, mask)) == pytest.approx(4.0)
+    image = torch.tensor(rng.normal(size=(1, 1, 7, 8, 9)), dtype=torch.float32)
+    ones = torch.ones_like(image)
+    # identical images (and any affine change of intensity) correlate perfectly
+    assert float(masked_lncc(image, image, ones, 3)) == pytest.approx(0.0, abs=1e-3)
+    assert float(masked_lncc(image, 2 * image + 1, ones, 3)) == pytest.approx(0.0, abs=1e-3)
+    # a linear field v = 0.1 x along axis 0 has forward differences 0.1 on one of 3 axes
+    linear = 0.1 * identity_grid((5, 6, 7))[:, :1].repeat(1, 3, 1, 1, 1)
+    assert float(smoothness(linear)) == pytest.approx(0.01 / 3, rel=1e-5)
+    log_j = torch.tensor([[0.2, -0.1, 0.3, -0.4]]).view(1, 1, 2, 2)
+    tissue = torch.tensor([[1.0, 1.0, 0.0, 0.0]]).view(1, 1, 2, 2)
+    ventricles = 1.0 - tissue
+    # tissue grows by 0.2 at one of its 2 voxels; ventricles shrink by 0.4 at one of 2
+    assert float(monotone_voxels(log_j, tissue, ventricles)) == pytest.approx(0.1 + 0.2)
+    earlier = torch.tensor([[0.98, 1.05]])
+    later = torch.tensor([[0.99, 1.03]])  # shrinking region grew, growing region shrank
+    direction = torch.tensor([-1.0, 1.0])
+    assert float(monotone_regions(earlier, later, direction)) == pytest.approx(0.01 + 0.02)
+    forecast, prior = torch.tensor([[0.97, 1.1]]), torch.tensor([[0.95, 1.1]])
+    spread = torch.tensor([[0.01, 1.0]])
+    assert float(prior_z2(forecast, prior, spread)) == pytest.approx((2.0**2 + 0.0) / 2, rel=1e-5)
+
+
+def test_similarity_warm_up_ramps_linearly():
+    settings = LossSettings(similarity_weight=2.0, similarity_warmup_epochs=3)
+    assert [settings.weights(e)["similarity"] for e in range(5)] == [0.5, 1.0, 1.5, 2.0, 2.0]
+
+
+# --- split and pairs ------------------------------------------------------------------------------
+def test_split_is_participant_level_and_test_has_two_year_follow_up(tiny_workspace):
+    volumes = read_workspace(tiny_workspace).volumes
+    split = split_participants(volumes, (0.8, 0.1, 0.1), 2.0, seed=1)
+    sets = [set(split[name]) for name in ("train", "validation", "test")]
+    assert sum(map(len, sets)) == volumes.participant_id.nunique() == 20
+    assert not (sets[0] & sets[1] or sets[0] & sets[2] or sets[1] & sets[2])
+    assert len(sets[2]) == len(sets[1]) == 2
+    span = volumes.groupby("participant_id").age.agg(lambda a: a.max() - a.min())
+    assert all(span[p] >= 2.0 for p in sets[2])
+    assert split == split_participants(volumes, (0.8, 0.1, 0.1), 2.0, seed=1)  # seeded
+    with pytest.raises(DataError, match="follow-up 30 years"):
+        split_participants(volumes, (0.8, 0.1, 0.1), 30.0, seed=1)
+
+
+def test_visit_pairs_are_every_earlier_later_pair(tiny_workspace):
+    volumes = read_workspace(tiny_workspace).volumes
+    participants = sorted(volumes.participant_id.unique())[:5]
+    pairs = visit_pairs(volumes, participants)
+    visits = volumes[volumes.participant_id.isin(participants)].groupby("participant_id").size()
+    assert len(pairs) == int((visits * (visits - 1) // 2).sum())
+    assert (pairs.years > 0).all() and (pairs.base_key != pairs.follow_key).all()
+
+
+# --- training ---------------------------------------------------------------------------------
+def forecast_percent_change(model_dir: Path, work: Path, years: float = 2.0) -> pd.DataFrame:
+    """Each participant's baseline forecast on the grid: % volume change of PRIOR_REGIONS."""
+    model = load_model(model_dir)
+    store, condition = ScanStore(work), model.info["condition"]
+    labels = condition["labels"]
+    rows = []
+    for row in read_workspace(work).volumes.groupby("participant_id").head(1).itertuples():
+        arrays = store[row.key]
+        code = encode_condition(
+            [row.age], [row.sex == "M"], [labels.index(row.diagnosis)],
+            condition["age_mean"], condition["age_sd"], len(labels),
+        )  # fmt: skip
+        with torch.no_grad():
+            velocity = model.network(torch.cat([arrays[:1], arrays[2:5]])[None], code)
+            forward = model.network.displacement(velocity, years, tuple(arrays.shape[1:]))
+        regions = torch.stack([arrays[5], arrays[6], arrays[7], arrays[2], arrays[3]])[None]
+        ratio = region_volume_ratio(regions, jacobian_determinant(forward))[0].numpy()
+        percent = dict(zip(PRIOR_REGIONS, 100 * (ratio - 1), strict=True))
+        rows.append({"diagnosis": row.diagnosis} | percent)
+    return pd.DataFrame(rows)
+
+
+@pytest.mark.slow
+def test_tiny_model_learns_group_differences_and_beats_no_change(tiny_model, tiny_workspace):
+    change = forecast_percent_change(tiny_model, tiny_workspace).groupby("diagnosis").mean()
+    # Published group differences built into the phantoms (synthetic_phantoms/memory_clinic.toml):
+    # ventricles expand and hippocampi shrink faster in AD than in controls.
+    assert change.loc["AD", "ventricles"] > change.loc["CN", "ventricles"] > 0
+    for side in ("hippocampus_left", "hippocampus_right"):
+        assert change.loc["AD", side] < change.loc["CN", side] < 0
+    log = pd.read_csv(tiny_model / "log.tsv", sep="\t")
+    best = log.loc[log.val_total.idxmin()]
+    assert best.val_volume_error < best.val_volume_error_no_change
+    assert best.val_image_mse < best.val_image_mse_no_change
+    assert (tiny_model / "loss_curves.png").stat().st_size > 10_000
+
+
+QUICK = TrainConfig.from_dict(
+    TrainConfig.from_toml(TINY).to_dict()
+    | {"training": TrainConfig.from_toml(TINY).to_dict()["training"] | {"max_pairs_per_epoch": 8}}
+)
+
+
+def test_resume_gives_bitwise_equal_weights(tiny_workspace, tmp_path):
+    straight, resumed = tmp_path / "straight", tmp_path / "resumed"
+    train(tiny_workspace, straight, QUICK, epochs=3)
+    train(tiny_workspace, resumed, QUICK, epochs=2)
+    with pytest.raises(OutputError, match="--resume"):
+        train(tiny_workspace, resumed, QUICK, epochs=3)
+    train(tiny_workspace, resumed, QUICK, epochs=3, resume=True)
+    for name in (CHECKPOINT, WEIGHTS):
+        a, b = load_tensors(straight / name), load_tensors(resumed / name)
+        a, b = (x["model"] if name == CHECKPOINT else x for x in (a, b))
+        assert a.keys() == b.keys()
+        assert all(torch.equal(a[key], b[key]) for key in a)
+    pd.testing.assert_frame_equal(
+        pd.read_csv(straight / "log.tsv", sep="\t").drop(columns="seconds"),
+        pd.read_csv(resumed / "log.tsv", sep="\t").drop(columns="seconds"),
+    )
+    with pytest.raises(OutputError, match="another workspace, config or seed"):
+        train(tiny_workspace, resumed, QUICK, epochs=4, resume=True, seed=9)
+
+
+@pytest.mark.slow
+def test_torchrun_two_processes_match_a_single_process(tiny_workspace, tmp_path):
+    torchrun = shutil.which("torchrun", path=str(Path(sys.executable).parent))
+    config = tmp_path / "quick.toml"
+    raw = QUICK.to_dict()
+    raw["training"]["max_pairs_per_epoch"] = 16
+    config.write_text(_toml(raw))
+    single = tmp_path / "single"
+    train(tiny_workspace, single, TrainConfig.from_toml(config), epochs=2)
+    environment = os.environ | {"OMP_NUM_THREADS": "1"}
+    command = [torchrun, "--standalone", "--nproc_per_node", "2", "-m", "predictor.cli", "train"]
+    command += [str(tiny_workspace), str(tmp_path / "ddp"), "--config", str(config)]
+    command += ["--epochs", "2"]
+    done = subprocess.run(command, capture_output=True, text=True, env=environment, timeout=600)
+    assert done.returncode == 0, done.stderr[-2000:]
+    one = pd.read_csv(single / "log.tsv", sep="\t").val_total.iloc[-1]
+    two = pd.read_csv(tmp_path / "ddp" / "log.tsv", sep="\t").val_total.iloc[-1]
+    assert two == pytest.approx(one, rel=0.10)
+
+
+def _toml(raw: dict) -> str:
+    """Minimal TOML writer for a two-level table of numbers, strings, booleans and lists."""
+
+    def value(v):
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, str):
+            return f'"{v}"'
+        if isinstance(v, list | tuple):
+            return "[" + ", ".join(value(x) for x in v) + "]"
+        return repr(v)
+
+    return "".join(
+        f"[{name}]\n" + "".join(f"{key} = {value(v)}\n" for key, v in table.items())
+        for name, table in raw.items()
+    )
+
+
+def test_train_command_refuses_to_overwrite(tiny_workspace, tmp_path):
+    runner = CliRunner()
+    model = tmp_path / "model"
+    arguments = ["train", str(tiny_workspace), str(model), "--config", str(TINY), "--epochs", "1"]
+    first = runner.invoke(app, arguments)
+    assert first.exit_code == 0, first.output
+    assert "Research use only" in first.output
+    again = runner.invoke(app, arguments)
+    assert again.exit_code == 2 and "--resume" in again.output and "Traceback" not in again.output
+    missing = runner.invoke(app, ["train", str(tmp_path / "nowhere"), str(model)])
+    assert missing.exit_code == 2 and "not a prepared workspace" in missing.output
