@@ -13,13 +13,8 @@ from typing import Annotated
 
 import typer
 
+from predictor.cautions import CAUTION
 from predictor.errors import PredictorError
-
-CAUTION = (
-    "Research use only: not for diagnosis or treatment decisions. Forecasts are model "
-    "estimates with stated uncertainty; clinical judgement and local regulations govern "
-    "any use with patients."
-)
 
 app = typer.Typer(
     help="Forecast longitudinal brain-MRI change on a CPU. " + CAUTION,
@@ -254,6 +249,98 @@ def train(
     typer.echo(CAUTION)
 
 
+YearsOption = Annotated[
+    list[float],
+    typer.Option(help="Forecast horizons in years after the baseline scan, e.g. --years 1 2 5."),
+]
+
+
+@app.command()
+@reports_errors
+def forecast(
+    model: Annotated[Path, typer.Argument(help="A trained model folder (predictor train).")],
+    scan: Annotated[
+        Path | None, typer.Argument(help="One baseline T1w NIfTI (or use --cohort).")
+    ] = None,
+    out: Annotated[Path, typer.Option(help="Output folder (BIDS derivatives layout).")] = Path(
+        "forecasts"
+    ),
+    years: YearsOption = [1.0, 2.0, 5.0],  # noqa: B006 (typer needs a list default)
+    age: Annotated[float | None, typer.Option(help="Age at the scan, years.")] = None,
+    sex: Annotated[str | None, typer.Option(help="Sex code (configs/cohort.toml).")] = None,
+    diagnosis: Annotated[
+        str | None, typer.Option(help="Diagnosis label (configs/cohort.toml), e.g. CN, MCI, AD.")
+    ] = None,
+    cohort: Annotated[
+        Path | None, typer.Option(help="BIDS folder or cohort table: forecast every participant.")
+    ] = None,
+    session: Annotated[
+        str | None, typer.Option(help="With --cohort: this session instead of each baseline.")
+    ] = None,
+    jobs: Annotated[int, typer.Option(min=1, help="Scans forecast in parallel.")] = 1,
+    allow_outside: Annotated[
+        bool, typer.Option(help="Accept image paths outside the cohort folder.")
+    ] = False,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the volumes as JSON.")] = False,
+) -> None:
+    """Forecast follow-up scans, log-Jacobian atrophy maps and regional volumes (mL).
+
+    For each horizon (years): the forecast scan in the input's own space and
+    resolution, its log-Jacobian map (log volume ratio, < 0 = shrinkage), the
+    displacement field (RAS mm), an overview PNG, and a table of regional
+    volumes (mL; change in mL and % per year) from the network and from the
+    mixed-effects prior with its 90% interval. A rerun skips complete scans.
+    """
+    import json
+
+    import pandas as pd
+
+    from predictor.forecast_io import VOLUMES, forecast_cohort, forecast_one, scan_stem
+
+    if cohort is not None:
+        from predictor.cohort import read_cohort
+
+        table = read_cohort(cohort, allow_outside=allow_outside)
+        count = table["participant_id"].nunique() if session is None else None
+        progress, advance = progress_bar("forecasting", count)
+        with progress:
+            summary = forecast_cohort(model, table, out, years, session, jobs, advance)
+        typer.echo(
+            f"{summary['forecast']} forecast, {summary['skipped']} already complete, "
+            f"{summary['failed']} failed; volumes of all in {out / 'forecasts.tsv'}"
+        )
+        typer.echo(CAUTION)
+        if summary["failed"]:
+            typer.echo(
+                f"predictor: {summary['failed']} scan(s) failed; reasons in "
+                f"{out / 'failures.tsv'}",
+                err=True,
+            )
+            raise typer.Exit(1)
+        return
+    missing = [name for name, v in (("--age", age), ("--sex", sex), ("--diagnosis", diagnosis))
+               if v is None]  # fmt: skip
+    if scan is None or missing:
+        raise typer.BadParameter(
+            "give SCAN with --age, --sex and --diagnosis, or --cohort"
+            + (f" (missing {', '.join(missing)})" if scan is not None else "")
+        )
+    provenance, skipped = forecast_one(model, scan, age, sex, diagnosis, years, out)
+    table = pd.read_csv(out / f"{scan_stem(scan.name)}_{VOLUMES}", sep="\t")
+    if as_json:
+        typer.echo(json.dumps(table.to_dict("records"), indent=2))
+    else:
+        shown = table[table["years"] > 0][
+            ["region", "years", "baseline_ml", "network_ml", "network_percent_per_year",
+             "prior_lower_ml", "prior_upper_ml"]
+        ]  # fmt: skip
+        typer.echo(shown.round(2).to_string(index=False))
+        typer.echo(f"{'already complete; ' if skipped else ''}outputs in {out}")
+    for warning in provenance["warnings"]:
+        typer.echo(f"warning: {warning}", err=True)
+    typer.echo(CAUTION, err=as_json)
+
+
 @app.command()
 @reports_errors
 def demo(
@@ -316,9 +403,40 @@ def demo(
     typer.echo("Synthetic phantoms: invented anatomy, not images of any person.")
 
 
-def main() -> None:
+#: options that take several values after one flag (``--years 1 2 5``)
+LIST_OPTIONS = ("--years", "--enrich")
+
+
+def expand_lists(args: list[str]) -> list[str]:
+    """Rewrite ``--years 1 2 5`` as ``--years 1 --years 2 --years 5`` (what typer reads)."""
+    expanded, index = [], 0
+    while index < len(args):
+        token = args[index]
+        expanded.append(token)
+        index += 1
+        if token in LIST_OPTIONS:
+            values = []
+            while index < len(args) and _is_number(args[index]):
+                values.append(args[index])
+                index += 1
+            for position, value in enumerate(values):
+                expanded += [value] if position == 0 else [token, value]
+    return expanded
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def main(args: list[str] | None = None) -> None:
     """Console-script entry point."""
-    app()
+    import sys
+
+    app(args=expand_lists(sys.argv[1:] if args is None else list(args)))
 
 
 if __name__ == "__main__":

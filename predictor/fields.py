@@ -58,7 +58,7 @@ def warp(
             f"{tuple(displacement.shape[2:])}"
         )
     location = identity_grid(tuple(displacement.shape[2:]), displacement.dtype) + displacement
-    return _grid_sample(image, location, mode, padding)
+    return sample_at(image, location, mode, padding)
 
 
 def compose(first: torch.Tensor, second: torch.Tensor) -> torch.Tensor:
@@ -112,8 +112,12 @@ def region_volume_ratio(weights: torch.Tensor, determinant: torch.Tensor) -> tor
     return (weights * determinant[:, None]).sum(dim=(2, 3, 4)) / total
 
 
-def _grid_sample(image, location, mode="bilinear", padding="border") -> torch.Tensor:
-    """Samples of ``image`` (B, C, D, H, W) at voxel coordinates ``location`` (B, 3, d, h, w)."""
+def sample_at(image, location, mode="bilinear", padding="border") -> torch.Tensor:
+    """Samples of ``image`` (B, C, D, H, W) at voxel coordinates ``location`` (B, 3, d, h, w).
+
+    Trilinear (``mode='bilinear'``) or nearest; outside the grid the border
+    value (``padding='border'``) or zero (``'zeros'``). Returns (B, C, d, h, w).
+    """
     # grid_sample wants (x, y, z) = (W, H, D) order, normalised to [-1, 1] (align_corners=True)
     scale = torch.tensor([max(n - 1, 1) for n in image.shape[2:]], dtype=location.dtype)
     normalised = 2.0 * location / scale.view(1, 3, 1, 1, 1) - 1.0
@@ -131,4 +135,4 @@ def upsample_displacement(
     voxels. Input (B, 3, d, h, w), output (B, 3, *shape), both in their own voxels.
     """
     location = identity_grid(shape, displacement.dtype) / factor
-    return factor * _grid_sample(displacement, location.expand(len(displacement), -1, -1, -1, -1))
+    return factor * sample_at(displacement, location.expand(len(displacement), -1, -1, -1, -1))

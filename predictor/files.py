@@ -96,3 +96,16 @@ def write_tsv(destination: str | os.PathLike[str], frame, float_format: str = "%
             path, sep="\t", index=False, float_format=float_format, lineterminator="\n"
         ),
     )
+
+
+def redact_folders(text: str, *paths: str | os.PathLike[str]) -> str:
+    """``text`` with the folders of ``paths`` removed, keeping only file names.
+
+    Failure tables name the file without leaking where it lives (a folder name
+    may identify a participant or a site).
+    """
+    for path in paths:
+        if path:
+            folder = str(Path(path).parent)
+            text = text.replace(folder + os.sep, "")
+    return text

@@ -29,6 +29,7 @@ import torch
 
 from predictor.errors import DataError
 from predictor.prepare import RESULT, SCANS
+from predictor.volumes import REGIONS
 
 #: regions whose volume the network's Jacobian forecasts and the prior constrains
 PRIOR_REGIONS = ("hippocampus_left", "hippocampus_right", "ventricles", "total_gm", "wm")
@@ -125,8 +126,8 @@ def visit_pairs(volumes: pd.DataFrame, participants) -> pd.DataFrame:
     """Every (earlier -> later) visit pair of the given participants.
 
     Columns: participant_id, sex, diagnosis, age (baseline of the pair,
-    years), years (interval), base_key, follow_key, and for every region in
-    :data:`PRIOR_REGIONS` plus ``brain``: ``<region>`` (baseline mL) and
+    years), years (interval), base_key, follow_key, and for every region of
+    :data:`~predictor.volumes.REGIONS`: ``<region>`` (baseline mL) and
     ``<region>_follow`` (follow-up mL).
     """
     rows = []
@@ -146,7 +147,7 @@ def visit_pairs(volumes: pd.DataFrame, participants) -> pd.DataFrame:
                     "base_key": base["key"],
                     "follow_key": follow["key"],
                 }
-                for region in (*PRIOR_REGIONS, "brain"):
+                for region in REGIONS:
                     row[region] = float(base[region])
                     row[f"{region}_follow"] = float(follow[region])
                 rows.append(row)
@@ -154,13 +155,17 @@ def visit_pairs(volumes: pd.DataFrame, participants) -> pd.DataFrame:
 
 
 def fit_prior(volumes: pd.DataFrame, participants):
-    """Mixed-effects prior fitted on ``participants`` only; returns (model, warnings)."""
+    """Mixed-effects model of every region fitted on ``participants`` only.
+
+    Returns (model, warnings). Training constrains :data:`PRIOR_REGIONS` with
+    it; forecasts report it beside the network for every region.
+    """
     from predictor.regression import MixedEffectsForecaster
 
     table = volumes[volumes["participant_id"].isin(set(participants))]
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", RuntimeWarning)
-        model = MixedEffectsForecaster().fit(table, list(PRIOR_REGIONS))
+        model = MixedEffectsForecaster().fit(table, list(REGIONS))
     return model, [str(w.message) for w in caught if issubclass(w.category, RuntimeWarning)]
 
 

@@ -38,9 +38,10 @@ import pandas as pd
 from predictor import __version__
 from predictor.config import CONFIG_DIR, read_toml
 from predictor.errors import ConfigError, PredictorError, ScanError
-from predictor.files import sha256_file, write_json, write_tsv
+from predictor.files import redact_folders, sha256_file, write_json, write_tsv
 from predictor.nifti import Scan, load_scan, save_array
 from predictor.preprocess import (
+    Registration,
     grow_region,
     head_mask,
     n4_correct,
@@ -52,8 +53,14 @@ from predictor.preprocess import (
 )
 from predictor.segment import fit_mixture
 from predictor.spatial import grid_affine
-from predictor.templates import TISSUES, Template, load_template
-from predictor.volumes import REGIONS, percent_of_brain, region_volumes, unmixed_fraction
+from predictor.templates import DEEP_REGIONS, TISSUES, Template, load_template
+from predictor.volumes import (
+    REGIONS,
+    integrate,
+    percent_of_brain,
+    region_weights,
+    unmixed_fraction,
+)
 
 
 @dataclass(frozen=True)
@@ -95,6 +102,8 @@ class PreparedScan:
     grid_mask: np.ndarray
     grid_tissue: np.ndarray  # (X, Y, Z, 3) GM, WM, CSF
     grid_regions: np.ndarray  # (X, Y, Z, 3) templates.DEEP_REGIONS
+    native_tissue: dict[str, np.ndarray]  # GM, WM, CSF probabilities, the scan's RAS grid
+    native_deep: dict[str, np.ndarray]  # each deep region's tissue fraction, same grid
     native_labels: np.ndarray  # uint8, the scan's RAS grid
     native_affine: np.ndarray
     diagnostics: dict
@@ -111,15 +120,23 @@ def working_grid(template: Template, settings: PrepareSettings):
 
 
 def prepare_scan(
-    scan: Scan, template: Template, settings: PrepareSettings, given_mask: np.ndarray | None = None
+    scan: Scan,
+    template: Template,
+    settings: PrepareSettings,
+    given_mask: np.ndarray | None = None,
+    registration: Registration | None = None,
 ) -> PreparedScan:
-    """Bias correction, registration, brain mask, normalisation, segmentation, volumes."""
+    """Bias correction, registration, brain mask, normalisation, segmentation, volumes.
+
+    A known ``registration`` (template -> native) skips the registration step.
+    """
     single_threaded_itk()
     data, affine = scan.data, scan.affine
     voxel_mm = float(scan.voxel_size_mm.mean())
     head = head_mask(data) if given_mask is None else given_mask
     corrected, _ = n4_correct(data, affine, head, settings.n4)
-    registration = register_affine(corrected, affine, template, settings.registration)
+    if registration is None:
+        registration = register_affine(corrected, affine, template, settings.registration)
     if registration.metric > float(settings.registration["max_metric"]):
         raise ScanError(f"registration did not converge (metric {registration.metric:.3f})")
     native_to_template = np.linalg.inv(registration.template_to_native)
@@ -163,7 +180,8 @@ def prepare_scan(
             if not spec.grow_mm:
                 content, weight = regions[spec.name]
                 regions[spec.name] = (content, weight * (1.0 - claimed))
-    volumes = region_volumes(tissue, regions, scan.voxel_volume_ml)
+    deep = {name: content * weight for name, (content, weight) in regions.items()}
+    volumes = integrate(region_weights(tissue, deep), scan.voxel_volume_ml)
     low, high = settings.checks["brain_ml"]
     if not low <= volumes["brain"] <= high:
         raise ScanError(f"brain volume {volumes['brain']:.0f} mL is outside {low:g}-{high:g} mL")
@@ -182,9 +200,9 @@ def prepare_scan(
         grid_t1=onto_grid(normalised),
         grid_mask=onto_grid(brain.astype(np.float32)) > 0.5,
         grid_tissue=np.stack([onto_grid(tissue[name]) for name in TISSUES], axis=-1),
-        grid_regions=np.stack(
-            [onto_grid(content * weight) for content, weight in regions.values()], axis=-1
-        ),
+        grid_regions=np.stack([onto_grid(deep[name]) for name in DEEP_REGIONS], axis=-1),
+        native_tissue=tissue,
+        native_deep=deep,
         native_labels=labels,
         native_affine=affine,
         diagnostics={
@@ -219,7 +237,8 @@ def scan_key(row, settings: PrepareSettings, template: Template) -> str:
 
 
 @lru_cache(maxsize=2)
-def _template(spec: str) -> Template:
+def cached_template(spec: str) -> Template:
+    """:func:`~predictor.templates.load_template`, kept for the process (two at most)."""
     return load_template(spec)
 
 
@@ -254,9 +273,9 @@ def _run_scan(row: dict, folder: str, template_spec: str, settings: PrepareSetti
                     f"{mask_scan.data.shape} differs from the scan's {scan.data.shape}"
                 )
             mask = mask_scan.data > 0.5
-        prepared = prepare_scan(scan, _template(template_spec), settings, mask)
+        prepared = prepare_scan(scan, cached_template(template_spec), settings, mask)
     except PredictorError as error:
-        return {"failed": str(error)}
+        return {"failed": redact_folders(str(error), row["image"], row.get("brain_mask"))}
     grid = np.asarray(prepared.diagnostics["grid_affine"])
     save_array(prepared.grid_t1, grid, folder / "grid_T1w.nii.gz")
     save_array(prepared.grid_mask.astype(np.uint8), grid, folder / "grid_mask.nii.gz", np.uint8)
@@ -293,7 +312,7 @@ def prepare_cohort(
     settings = settings or PrepareSettings.from_toml()
     work = Path(work)
     template_spec = str(template) if str(template) == "mni152" else str(Path(template).resolve())
-    loaded = _template(template_spec)
+    loaded = cached_template(template_spec)
     rows = cohort.to_dict("records")
     keys = [scan_key(row, settings, loaded) for row in rows]
     part, parts = shard

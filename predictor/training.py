@@ -459,14 +459,9 @@ def _write_epoch(model_dir, network, optimiser, state, history, run, improved, c
 
 def plot_loss_curves(log: pd.DataFrame, path: Path) -> None:
     """Loss terms per epoch and validation volume error against no change (PNG)."""
-    import matplotlib
+    from predictor.figures import pyplot, save_figure
 
-    matplotlib.use("Agg")
-    from matplotlib import pyplot as plt
-
-    from predictor.files import atomic_write
-
-    figure, axes = plt.subplots(1, 2, figsize=(10, 4), constrained_layout=True)
+    figure, axes = pyplot().subplots(1, 2, figsize=(10, 4), constrained_layout=True)
     for name in (*TERMS, "total"):
         axes[0].plot(log["epoch"], log[f"train_{name}"], marker="o", label=f"train {name}")
     if "val_total" in log:
@@ -485,5 +480,4 @@ def plot_loss_curves(log: pd.DataFrame, path: Path) -> None:
         axis.legend(fontsize=7)
         axis.grid(alpha=0.3)
     figure.suptitle("predictor training log (research use only)", fontsize=10)
-    atomic_write(path, lambda temporary: figure.savefig(temporary, dpi=90, format="png"))
-    plt.close(figure)
+    save_figure(figure, path)

@@ -17,32 +17,42 @@ REGIONS = (
 )
 
 
-def region_volumes(
-    tissue: dict[str, np.ndarray],
-    region_masks: dict[str, tuple[np.ndarray, np.ndarray]],
-    voxel_ml: float,
-) -> dict[str, float]:
-    """Volumes (mL) of :data:`REGIONS`.
+def region_weights(tissue: dict[str, np.ndarray], deep: dict[str, np.ndarray]) -> dict:
+    """Voxel-wise share (0-1) of each of :data:`REGIONS` in every voxel.
 
     ``tissue`` maps GM/WM/CSF to probability arrays (zero outside the brain
-    mask); ``region_masks`` maps each deep region to (content, weight): the
-    voxel-wise fraction of the region's tissue and the region mask in [0, 1],
-    both on the same grid.
+    mask); ``deep`` maps each deep region (hippocampi, ventricles) to its
+    tissue fraction inside the region mask. All arrays share one grid.
     """
-    total = {name: float(values.sum()) * voxel_ml for name, values in tissue.items()}
-    deep = {
-        name: float((content * weight).sum()) * voxel_ml
-        for name, (content, weight) in region_masks.items()
-    }
+    gm, wm, csf = tissue["GM"], tissue["WM"], tissue["CSF"]
+    left, right = deep["hippocampus_left"], deep["hippocampus_right"]
     return {
-        "hippocampus_left": deep["hippocampus_left"],
-        "hippocampus_right": deep["hippocampus_right"],
+        "hippocampus_left": left,
+        "hippocampus_right": right,
         "ventricles": deep["ventricles"],
-        "cortical_gm": total["GM"] - deep["hippocampus_left"] - deep["hippocampus_right"],
-        "total_gm": total["GM"],
-        "wm": total["WM"],
-        "brain": total["GM"] + total["WM"],
-        "icv": total["GM"] + total["WM"] + total["CSF"],
+        "cortical_gm": gm - left - right,
+        "total_gm": gm,
+        "wm": wm,
+        "brain": gm + wm,
+        "icv": gm + wm + csf,
+    }
+
+
+def integrate(
+    weights: dict[str, np.ndarray], voxel_ml: float, factor: np.ndarray | None = None
+) -> dict[str, float]:
+    """Volumes (mL): each region's share summed over voxels, optionally times a voxel factor.
+
+    With ``factor`` the Jacobian determinant of a forward deformation, the
+    result is the regions' volumes after the deformation.
+    """
+    if factor is None:
+        return {
+            name: float(values.sum(dtype=np.float64)) * voxel_ml for name, values in weights.items()
+        }
+    return {
+        name: float((values * factor).sum(dtype=np.float64)) * voxel_ml
+        for name, values in weights.items()
     }
 
 

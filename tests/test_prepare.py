@@ -252,5 +252,6 @@ def test_failed_scan_is_listed_and_others_go_on(tiny_cohort, small, tmp_path):
     failures = pd.read_csv(tmp_path / "work" / "failures.tsv", sep="\t")
     assert failures.loc[0, "image"] == "broken.nii.gz"
     assert "not a readable NIfTI" in failures.loc[0, "reason"]
+    assert str(tmp_path) not in failures.loc[0, "reason"]  # file name only
     result = json.loads(next((tmp_path / "work" / "scans").glob("*/result.json")).read_text())
     assert str(tmp_path) not in json.dumps(result)  # no absolute input paths in outputs

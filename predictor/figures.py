@@ -1,0 +1,152 @@
+"""Figures (PNG, matplotlib's Agg backend): forecast overviews and volume trajectories.
+
+Every figure carries the research-use caution in its caption and states the
+units on its colour bars and axes. Planes are drawn in RAS order with the
+subject's left on the left of each panel (marked), superior or anterior up.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from predictor.cautions import CAPTION, CAUTION
+from predictor.files import atomic_write
+
+#: our own colour choices: greys for scans, a brown-teal diverging map for differences,
+#: a purple-green diverging map for the log-Jacobian
+SCAN_MAP, DIFFERENCE_MAP, JACOBIAN_MAP = "gray", "BrBG", "PRGn"
+NETWORK_COLOUR, PRIOR_COLOUR = "#1b7f79", "#b8651b"
+
+
+def pyplot():
+    """matplotlib's pyplot on the Agg backend (no screen needed)."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    from matplotlib import pyplot as plt
+
+    return plt
+
+
+def save_figure(figure, path: str | Path) -> Path:
+    """Write a matplotlib figure as PNG atomically (the caution in its metadata) and close it."""
+    plt = pyplot()
+    metadata = {"Description": CAUTION, "Software": "predictor"}
+    atomic_write(
+        path,
+        lambda temporary: figure.savefig(temporary, dpi=100, format="png", metadata=metadata),
+    )
+    plt.close(figure)
+    return Path(path)
+
+
+def planes(volume: np.ndarray, centre) -> list[np.ndarray]:
+    """Axial, coronal and sagittal slices through ``centre`` (voxel indices), display-ready."""
+    i, j, k = (int(round(c)) for c in centre)
+    return [volume[:, :, k].T, volume[:, j, :].T, volume[i, :, :].T]
+
+
+def forecast_overview(
+    baseline: np.ndarray,
+    forecast: np.ndarray,
+    log_jacobian: np.ndarray,
+    brain: np.ndarray,
+    voxel_mm: np.ndarray,
+    title: str,
+):
+    """Baseline, forecast, difference and log-Jacobian in three planes (a matplotlib Figure).
+
+    Arrays are (X, Y, Z) in RAS order; ``brain`` is a boolean mask that
+    chooses the slices (its centre) and the intensity window.
+    """
+    plt = pyplot()
+    centre = np.argwhere(brain).mean(axis=0) if brain.any() else np.array(brain.shape) / 2
+    inside = baseline[brain] if brain.any() else baseline.ravel()
+    top = float(np.percentile(inside, 99.5))
+    difference = forecast - baseline
+    spread = float(np.percentile(np.abs(difference[brain]), 99.5)) if brain.any() else 1.0
+    spread = max(spread, 1e-6 * max(top, 1.0))
+    jacobian_limit = max(float(np.percentile(np.abs(log_jacobian[brain]), 99.5)), 1e-4)
+    log_jacobian = np.where(brain, log_jacobian, np.nan)  # the map is meaningful in the brain
+    columns = [
+        ("baseline", baseline, SCAN_MAP, (0, top), "intensity (scanner units)"),
+        ("forecast", forecast, SCAN_MAP, (0, top), "intensity (scanner units)"),
+        ("forecast - baseline", difference, DIFFERENCE_MAP, (-spread, spread), "scanner units"),
+        (
+            "log-Jacobian",
+            log_jacobian,
+            JACOBIAN_MAP,
+            (-jacobian_limit, jacobian_limit),
+            "log volume ratio (< 0: shrinkage)",
+        ),
+    ]
+    # displayed rows over columns: axial y/x, coronal z/x, sagittal z/y
+    aspects = [voxel_mm[1] / voxel_mm[0], voxel_mm[2] / voxel_mm[0], voxel_mm[2] / voxel_mm[1]]
+    figure = plt.figure(figsize=(13, 10.5))
+    layout = figure.add_gridspec(4, 4, height_ratios=[1, 1, 1, 0.06], hspace=0.08, wspace=0.05)
+    for column, (name, volume, colour_map, limits, unit) in enumerate(columns):
+        for row, (plane, aspect) in enumerate(zip(planes(volume, centre), aspects, strict=True)):
+            axis = figure.add_subplot(layout[row, column])
+            shown = axis.imshow(
+                plane, origin="lower", cmap=colour_map, vmin=limits[0], vmax=limits[1],
+                aspect=aspect, interpolation="nearest",
+            )  # fmt: skip
+            axis.set_xticks([])
+            axis.set_yticks([])
+            if row == 0:
+                axis.set_title(name, fontsize=11)
+            if column == 0:
+                axis.set_ylabel(("axial", "coronal", "sagittal")[row], fontsize=10)
+            if row < 2:
+                axis.text(0.02, 0.03, "L", transform=axis.transAxes, color="#e0e0e0", fontsize=9)
+        colour_bar = figure.colorbar(
+            shown, cax=figure.add_subplot(layout[3, column]), orientation="horizontal"
+        )
+        colour_bar.set_label(unit, fontsize=9)
+    figure.suptitle(title, fontsize=12)
+    figure.text(0.5, 0.01, CAPTION, ha="center", va="bottom", fontsize=9, color="#8a1c1c")
+    figure.subplots_adjust(left=0.04, right=0.98, top=0.93, bottom=0.1)
+    return figure
+
+
+def trajectories(
+    table: pd.DataFrame, prior_band: pd.DataFrame | None, baseline_age: float, title: str
+):
+    """Each region's forecast volume (mL) against age: network points, prior mean and 90% band.
+
+    ``table`` is a forecast volume table (region, years, network_ml, ...);
+    ``prior_band`` has region, years, mean_ml, lower_ml, upper_ml on a fine
+    grid of horizons (or None when there is no prior forecast).
+    """
+    plt = pyplot()
+    regions = list(dict.fromkeys(table["region"]))
+    columns = 4
+    rows = int(np.ceil(len(regions) / columns))
+    figure, axes = plt.subplots(rows, columns, figsize=(3.4 * columns, 3.0 * rows + 0.8))
+    for axis, region in zip(np.ravel(axes), regions, strict=False):
+        own = table[table["region"] == region].sort_values("years")
+        start = own.iloc[:1].assign(years=0.0, network_ml=own["baseline_ml"].iloc[0])
+        own = pd.concat([start, own[own["years"] > 0]])
+        if prior_band is not None:
+            band = prior_band[prior_band["region"] == region].sort_values("years")
+            ages = baseline_age + band["years"]
+            axis.fill_between(ages, band["lower_ml"], band["upper_ml"], color=PRIOR_COLOUR,
+                              alpha=0.2, label="prior 90% interval")  # fmt: skip
+            axis.plot(ages, band["mean_ml"], color=PRIOR_COLOUR, label="mixed-effects prior")
+        axis.plot(baseline_age + own["years"], own["network_ml"], "o-", color=NETWORK_COLOUR,
+                  label="network")  # fmt: skip
+        axis.set_title(region.replace("_", " "), fontsize=10)
+        axis.set_xlabel("age (years)", fontsize=8)
+        axis.set_ylabel("volume (mL)", fontsize=8)
+        axis.tick_params(labelsize=7)
+        axis.grid(alpha=0.3)
+    for axis in np.ravel(axes)[len(regions) :]:
+        axis.axis("off")
+    np.ravel(axes)[0].legend(fontsize=7)
+    figure.suptitle(title, fontsize=12)
+    figure.text(0.5, 0.005, CAPTION, ha="center", va="bottom", fontsize=8, color="#8a1c1c")
+    figure.tight_layout(rect=(0, 0.06, 1, 0.95))
+    return figure

@@ -1,0 +1,278 @@
+"""Forecast follow-up scans, atrophy maps and volumes in the scan's own space.
+
+For a baseline scan, its age (years), sex and diagnosis, and horizons ``t``
+(years), :func:`forecast`:
+
+1. prepares the scan with the model's template and settings (or takes a
+   :class:`~predictor.prepare.PreparedScan`);
+2. runs the network once on the working grid (velocity ``v``);
+3. for each horizon integrates ``exp(t v)`` and ``exp(-t v)`` on the grid
+   and carries them to the scan's native grid through the native-to-template
+   affine: the forecast is the *full-resolution* baseline pulled back through
+   the inverse map, so it keeps the scan's shape, affine, resolution and
+   anatomy;
+4. integrates the Jacobian determinant over the baseline's native region
+   maps: the network's forecast volumes (mL); beside them, the mixed-effects
+   prior's forecast with its 90% interval.
+
+Native-space geometry: with ``M`` the native-voxel -> grid-voxel affine, a
+grid displacement ``d`` (grid voxels) at ``M x`` is the native displacement
+``M_lin^-1 d`` (native voxels), i.e. ``A_lin G_lin d`` mm (RAS), where ``A``
+maps template to native mm and ``G`` is the grid affine. A Jacobian
+determinant is unchanged by this change of coordinates.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from functools import lru_cache
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import torch
+
+from predictor.config import CohortSettings
+from predictor.errors import DataError, ModelError
+from predictor.fields import jacobian_determinant, region_volume_ratio, sample_at
+from predictor.modelstore import TrainedModel, load_model
+from predictor.network import encode_condition
+from predictor.nifti import Scan, load_scan
+from predictor.pairs import PRIOR_REGIONS
+from predictor.prepare import PreparedScan, PrepareSettings, cached_template, prepare_scan
+from predictor.regression import Z90
+from predictor.volumes import REGIONS, integrate, region_weights
+
+Z95 = 1.959963984540054
+
+
+@dataclass(frozen=True, eq=False)
+class HorizonForecast:
+    """One horizon's native-space outputs (arrays in the scan's RAS voxel order)."""
+
+    years: float
+    image: np.ndarray  # (X, Y, Z) float32, the input's own intensities, warped
+    log_jacobian: np.ndarray  # (X, Y, Z) log volume ratio of the forward map (< 0: shrinkage)
+    displacement_mm: np.ndarray  # (X, Y, Z, 3) RAS mm: forecast(p) = baseline(p + u(p))
+    grid_ratio: dict[str, float]  # PRIOR_REGIONS volume ratios from the working grid
+
+
+@dataclass(frozen=True, eq=False)
+class ForecastResult:
+    """Everything :func:`forecast` computes for one scan."""
+
+    scan: Scan
+    prepared: PreparedScan
+    horizons: list[HorizonForecast]
+    volumes: pd.DataFrame  # one row per region and horizon (see volume_table)
+    warnings: list[str]
+    condition: dict  # age (years), sex, diagnosis as used
+
+
+@lru_cache(maxsize=2)
+def _cached_model(folder: str) -> TrainedModel:
+    return load_model(folder)
+
+
+def as_model(model: TrainedModel | str | os.PathLike[str]) -> TrainedModel:
+    """A loaded model, or the model folder at ``model`` (cached per process)."""
+    return model if isinstance(model, TrainedModel) else _cached_model(str(Path(model).resolve()))
+
+
+def check_request(
+    model: TrainedModel, age: float, sex: str, diagnosis: str, years
+) -> tuple[str, str, list[float], list[str]]:
+    """Validate a request; returns (sex code, diagnosis label, horizons, warnings).
+
+    Unknown codes and negative or non-finite horizons are errors; values the
+    model never saw in training are warnings.
+    """
+    settings = CohortSettings.from_toml()
+    sex_code, label = settings.sex(str(sex)), settings.diagnosis(str(diagnosis))
+    if sex_code is None:
+        raise DataError(f"sex '{sex}' is not one of {', '.join(settings.sex_codes)}")
+    if label is None or label not in model.labels:
+        raise DataError(f"diagnosis '{diagnosis}' is not one of {', '.join(model.labels)}")
+    horizons = [float(t) for t in years]
+    if not horizons or any(not np.isfinite(t) or t < 0 for t in horizons):
+        raise DataError(f"horizons must be finite and >= 0 years, got {list(years)}")
+    if not np.isfinite(age):
+        raise DataError(f"age must be a finite number of years, got {age}")
+    seen = model.info["training_range"]
+    notes = []
+    low, high = seen["age_years"]
+    if not low <= age <= high:
+        notes.append(f"age {age:g} years is outside the training range {low:g}-{high:g}")
+    if max(horizons) > seen["max_horizon_years"]:
+        notes.append(
+            f"horizon {max(horizons):g} years is beyond the longest interval seen in "
+            f"training ({seen['max_horizon_years']:.1f} years)"
+        )
+    if label not in seen["diagnoses"]:
+        notes.append(f"diagnosis '{label}' was never seen in training")
+    if sex_code not in seen["sexes"]:
+        notes.append(f"sex '{sex_code}' was never seen in training")
+    return sex_code, label, horizons, notes
+
+
+def prepare_for(model: TrainedModel, scan: Scan) -> PreparedScan:
+    """Prepare a scan with the model's template and settings, checking the working grid."""
+    settings = PrepareSettings(**model.info["prepare_settings"])
+    prepared = prepare_scan(scan, cached_template(model.info["template"]), settings)
+    check_grid(model, prepared)
+    return prepared
+
+
+def check_grid(model: TrainedModel, prepared: PreparedScan) -> None:
+    grid = model.info["grid"]
+    same_shape = list(prepared.diagnostics["grid_shape"]) == list(grid["shape"])
+    if not same_shape or not np.allclose(prepared.diagnostics["grid_affine"], grid["affine"]):
+        raise ModelError(
+            f"the model was trained on another working grid ({grid['shape']}); prepare the "
+            "scan with the model's template and grid"
+        )
+
+
+def native_to_grid(prepared: PreparedScan, grid_affine: np.ndarray) -> np.ndarray:
+    """4x4 matrix taking native voxel indices (RAS order) to working-grid voxel indices."""
+    native_to_template = np.linalg.inv(prepared.template_to_native)
+    return np.linalg.inv(grid_affine) @ native_to_template @ prepared.native_affine
+
+
+def forecast(
+    model: TrainedModel | str | os.PathLike[str],
+    image: Scan | str | os.PathLike[str],
+    age: float,
+    sex: str,
+    diagnosis: str,
+    years,
+    prepared: PreparedScan | None = None,
+) -> ForecastResult:
+    """Forecast ``image`` at each horizon in ``years`` (see the module docstring).
+
+    ``age`` is the baseline age in years; ``sex`` and ``diagnosis`` use the
+    codes of ``configs/cohort.toml``. Returns arrays in the scan's RAS order
+    and the volume table.
+    """
+    model = as_model(model)
+    scan = image if isinstance(image, Scan) else load_scan(image)
+    sex_code, label, horizons, notes = check_request(model, float(age), sex, diagnosis, years)
+    prepared = prepared if prepared is not None else prepare_for(model, scan)
+    check_grid(model, prepared)
+    grid_affine = np.asarray(model.info["grid"]["affine"])
+    grid_shape = tuple(model.info["grid"]["shape"])
+    info = model.info["condition"]
+    condition = encode_condition(
+        [age],
+        [sex_code == "M"],
+        [model.labels.index(label)],
+        info["age_mean"],
+        info["age_sd"],
+        len(model.labels),
+    )
+    tissue = prepared.grid_tissue
+    channels = [prepared.grid_t1[None]]
+    if model.network.settings.tissue_channels:
+        channels.append(np.moveaxis(tissue, -1, 0))
+    inputs = torch.from_numpy(np.concatenate(channels).astype(np.float32))[None]
+    grid_regions = np.concatenate([prepared.grid_regions, tissue[..., :2]], axis=-1)
+    grid_weights = torch.from_numpy(np.moveaxis(grid_regions, -1, 0).astype(np.float32))[None]
+    mapping = native_to_grid(prepared, grid_affine)
+    native_shape = scan.data.shape
+    index = np.indices(native_shape, dtype=np.float32).reshape(3, -1)
+    grid_points = (mapping[:3, :3] @ index + mapping[:3, 3:]).astype(np.float32)
+    grid_points = torch.from_numpy(grid_points.reshape(1, 3, *native_shape))
+    to_native = torch.from_numpy(np.linalg.inv(mapping[:3, :3]).astype(np.float32))
+    to_mm = torch.from_numpy(prepared.template_to_native[:3, :3] @ grid_affine[:3, :3])
+    baseline = torch.from_numpy(scan.data)[None, None]
+    weights = region_weights(prepared.native_tissue, prepared.native_deep)
+    outputs, network_ml = [], {}
+    with torch.no_grad():
+        velocity = model.network(inputs, condition)
+        for t in horizons:
+            forward = model.network.displacement(velocity, t, grid_shape)
+            backward = model.network.displacement(velocity, -t, grid_shape)
+            determinant = jacobian_determinant(forward)
+            ratio = region_volume_ratio(grid_weights, determinant)[0].tolist()
+            back_native = sample_at(backward, grid_points)[0]  # grid voxels at native points
+            source = torch.from_numpy(index.reshape(3, *native_shape)) + torch.einsum(
+                "ij,jxyz->ixyz", to_native, back_native
+            )
+            warped = sample_at(baseline, source[None])[0, 0].numpy()
+            native_det = sample_at(determinant[:, None], grid_points)[0, 0].numpy()
+            displacement = torch.einsum("ij,jxyz->xyzi", to_mm.float(), back_native).numpy()
+            outputs.append(
+                HorizonForecast(
+                    t,
+                    warped.astype(np.float32),
+                    np.log(np.maximum(native_det, 1e-3)).astype(np.float32),
+                    displacement.astype(np.float32),
+                    dict(zip(PRIOR_REGIONS, ratio, strict=True)),
+                )
+            )
+            network_ml[t] = integrate(weights, scan.voxel_volume_ml, native_det)
+    table, prior_notes = volume_table(model, prepared.volumes, network_ml, age, sex_code, label)
+    return ForecastResult(
+        scan,
+        prepared,
+        outputs,
+        table,
+        notes + prior_notes,
+        {"age": float(age), "sex": sex_code, "diagnosis": label},
+    )
+
+
+def volume_table(
+    model: TrainedModel,
+    baseline_ml: dict[str, float],
+    network_ml: dict[float, dict[str, float]],
+    age: float,
+    sex: str,
+    diagnosis: str,
+) -> tuple[pd.DataFrame, list[str]]:
+    """Baseline, network and prior volumes per region and horizon, and prior warnings.
+
+    Columns: region, years, baseline_ml, network_ml, network_change_ml,
+    network_percent_per_year, prior_mean_ml, prior_sd_ml, prior_lower_ml,
+    prior_upper_ml (90% interval), prior_percent_per_year, outside_prior_95.
+    """
+    horizons = sorted(network_ml)
+    request = pd.DataFrame(
+        [{"participant_id": "scan", "age": age, "sex": sex, "diagnosis": diagnosis} | baseline_ml]
+    )
+    notes = []
+    try:
+        prior = model.prior.predict(request, horizons).set_index(["region", "years"])
+    except DataError as error:
+        prior, notes = None, [f"no prior forecast: {error}"]
+    rows = []
+    for region in REGIONS:
+        for t in horizons:
+            base, net = baseline_ml[region], network_ml[t][region]
+            row = {
+                "region": region,
+                "years": t,
+                "baseline_ml": base,
+                "network_ml": net,
+                "network_change_ml": net - base,
+                "network_percent_per_year": 100 * (net / base - 1) / t if t > 0 else np.nan,
+            }
+            if prior is not None and (region, t) in prior.index:
+                mean, sd = prior.loc[(region, t), ["mean_ml", "sd_ml"]]
+                outside = bool(abs(net - mean) > Z95 * sd) if t > 0 else False
+                row |= {
+                    "prior_mean_ml": mean,
+                    "prior_sd_ml": sd,
+                    "prior_lower_ml": mean - Z90 * sd,
+                    "prior_upper_ml": mean + Z90 * sd,
+                    "prior_percent_per_year": 100 * (mean / base - 1) / t if t > 0 else np.nan,
+                    "outside_prior_95": outside,
+                }
+                if outside:
+                    notes.append(
+                        f"{region} at {t:g} years: network forecast {net:.2f} mL is outside the "
+                        f"prior's 95% interval {mean - Z95 * sd:.2f}-{mean + Z95 * sd:.2f} mL"
+                    )
+            rows.append(row)
+    return pd.DataFrame(rows), notes

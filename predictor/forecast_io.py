@@ -1,0 +1,312 @@
+"""Forecast outputs on disk: one scan or a whole cohort, BIDS-derivatives layout, resumable.
+
+For a scan with stem ``S`` (``sub-001_ses-01`` in a cohort, else the file
+name without ``.nii[.gz]`` and ``_T1w``) and horizon label ``H``
+(``forecast24mo`` for 2 years)::
+
+    DIR/dataset_description.json
+    DIR/[sub-001/ses-01/anat/]
+        S_desc-H_T1w.nii.gz            forecast scan: the input's shape, affine, orientation
+        S_desc-H_logjacobian.nii.gz    log volume ratio of the forward map (< 0: shrinkage)
+        S_desc-H_displacement.nii.gz   vector image, RAS mm: forecast(p) = baseline(p + u(p))
+        S_desc-H_overview.png          baseline, forecast, difference, log-Jacobian
+        S_desc-forecast_volumes.tsv    regions x horizons: baseline, network, prior, change
+        S_desc-forecast_trajectories.png
+        S_desc-forecast_provenance.json    written last: marks the forecast complete
+    DIR/forecasts.tsv, DIR/failures.tsv    (cohort runs) every participant's volumes; failures
+
+Every file is written atomically; a rerun skips a scan whose provenance
+matches (same model, input bytes, horizons and covariates) and redoes the rest.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from predictor.cautions import CAUTION
+from predictor.errors import DataError, PredictorError
+from predictor.files import redact_folders, sha256_file, write_json, write_tsv
+from predictor.forecast import ForecastResult, as_model, forecast
+from predictor.modelstore import TrainedModel, package_versions
+from predictor.nifti import save_like
+
+PROVENANCE = "desc-forecast_provenance.json"
+VOLUMES = "desc-forecast_volumes.tsv"
+TRAJECTORIES = "desc-forecast_trajectories.png"
+IDENTIFIERS = ("participant_id", "session_id", "age", "sex", "diagnosis")
+
+
+def horizon_label(years: float) -> str:
+    """BIDS ``desc`` label of a horizon, in whole months: 2 years -> ``forecast24mo``."""
+    return f"forecast{int(round(years * 12))}mo"
+
+
+def check_horizons(years) -> list[float]:
+    """Sorted unique horizons (years); two horizons in the same month are an error."""
+    horizons = sorted({float(t) for t in years})
+    labels = [horizon_label(t) for t in horizons]
+    if len(set(labels)) != len(labels):
+        raise DataError(f"horizons {horizons} years must differ by at least one month")
+    return horizons
+
+
+def scan_stem(name: str) -> str:
+    """``sub-01_ses-02_T1w.nii.gz`` -> ``sub-01_ses-02``; ``scan.nii`` -> ``scan``."""
+    stem = name.removesuffix(".gz").removesuffix(".nii")
+    return stem.removesuffix("_T1w")
+
+
+def prior_band(model: TrainedModel, result: ForecastResult, points: int = 25) -> pd.DataFrame:
+    """The prior's mean and 90% interval on a fine grid of horizons (for the trajectories)."""
+    longest = max(h.years for h in result.horizons)
+    request = pd.DataFrame(
+        [{"participant_id": "scan"} | result.condition | result.prepared.volumes]
+    )
+    try:
+        return model.prior.predict(request, np.linspace(0.0, max(longest, 0.5), points))
+    except DataError:
+        return None
+
+
+def write_forecast(
+    result: ForecastResult,
+    model: TrainedModel,
+    folder: str | os.PathLike[str],
+    stem: str,
+    input_checksum: str,
+    identifiers: dict | None = None,
+) -> dict:
+    """Write every output of one scan's forecast (see the module docstring); returns provenance."""
+    from predictor.figures import forecast_overview, save_figure, trajectories
+
+    folder = Path(folder)
+    scan = result.scan
+    brain = sum(result.prepared.native_tissue.values()) > 0.5
+    outputs = []
+    for horizon in result.horizons:
+        base = f"{stem}_desc-{horizon_label(horizon.years)}"
+        for suffix, array in (
+            ("T1w", horizon.image),
+            ("logjacobian", horizon.log_jacobian),
+            ("displacement", horizon.displacement_mm),
+        ):
+            save_like(array, scan, folder / f"{base}_{suffix}.nii.gz")
+            outputs.append(f"{base}_{suffix}.nii.gz")
+        figure = forecast_overview(
+            scan.data,
+            horizon.image,
+            horizon.log_jacobian,
+            brain,
+            scan.voxel_size_mm,
+            f"{stem}: forecast at +{horizon.years:g} years (age {result.condition['age']:g}, "
+            f"{result.condition['diagnosis']})",
+        )
+        save_figure(figure, folder / f"{base}_overview.png")
+        outputs.append(f"{base}_overview.png")
+    write_tsv(folder / f"{stem}_{VOLUMES}", result.volumes)
+    figure = trajectories(
+        result.volumes,
+        prior_band(model, result),
+        result.condition["age"],
+        f"{stem}: forecast regional volumes (network and mixed-effects prior)",
+    )
+    save_figure(figure, folder / f"{stem}_{TRAJECTORIES}")
+    outputs += [f"{stem}_{VOLUMES}", f"{stem}_{TRAJECTORIES}"]
+    provenance = _provenance(result, model, input_checksum, identifiers, outputs)
+    write_json(folder / f"{stem}_{PROVENANCE}", provenance)
+    return provenance
+
+
+def _provenance(result, model, input_checksum, identifiers, outputs) -> dict:
+    return {
+        "kind": "predictor forecast",
+        "cautions": CAUTION,
+        "model": {
+            "folder": model.folder.name,
+            "weights_sha256": model.checksum,
+            "template": Path(model.info["template"]).name,
+            "epochs_run": model.info.get("epochs_run"),
+            "best_epoch": model.info.get("best_epoch"),
+        },
+        "input": {"file": result.scan.name, "sha256": input_checksum},
+        "participant": (identifiers or {}) | result.condition,
+        "horizons_years": [h.years for h in result.horizons],
+        "warnings": result.warnings,
+        "settings": {
+            "prepare": model.info["prepare_settings"],
+            "grid": model.info["grid"],
+        },
+        "registration": {
+            key: value
+            for key, value in result.prepared.diagnostics.items()
+            if key.startswith("registration")
+        },
+        "conventions": {
+            "displacement": "RAS millimetres; forecast(p) = baseline(p + u(p))",
+            "log_jacobian": "log of the forward map's Jacobian determinant; < 0 means shrinkage",
+            "volumes": "mL; prior interval 90%; percent per year = linear annualised change",
+        },
+        "outputs": outputs,
+        "versions": package_versions(),
+    }
+
+
+def is_complete(path: Path, checksum: str, input_checksum: str, horizons, condition) -> bool:
+    """Whether a provenance file records the same forecast (so a rerun can skip it)."""
+    if not path.is_file():
+        return False
+    try:
+        saved = json.loads(path.read_text())
+        return (
+            saved["model"]["weights_sha256"] == checksum
+            and saved["input"]["sha256"] == input_checksum
+            and saved["horizons_years"] == list(horizons)
+            and all(saved["participant"].get(k) == v for k, v in condition.items())
+            and all((path.parent / name).is_file() for name in saved["outputs"])
+        )
+    except (ValueError, KeyError, TypeError):
+        return False
+
+
+def write_description(out: Path) -> None:
+    """BIDS ``dataset_description.json`` of a forecast folder (once)."""
+    path = out / "dataset_description.json"
+    if not path.is_file():
+        write_json(
+            path,
+            {
+                "Name": "predictor forecasts",
+                "BIDSVersion": "1.9.0",
+                "DatasetType": "derivative",
+                "GeneratedBy": [{"Name": "predictor", "Version": package_versions()["predictor"]}],
+                "HowToAcknowledge": CAUTION,
+            },
+        )
+
+
+def forecast_one(
+    model: TrainedModel | str | os.PathLike[str],
+    image: str | os.PathLike[str],
+    age: float,
+    sex: str,
+    diagnosis: str,
+    years,
+    out: str | os.PathLike[str],
+    identifiers: dict | None = None,
+) -> tuple[dict, bool]:
+    """Forecast one scan file into ``out``; returns (provenance, skipped because complete)."""
+    model = as_model(model)
+    horizons = check_horizons(years)
+    out, image = Path(out), Path(image)
+    identifiers = identifiers or {}
+    if "participant_id" in identifiers:
+        folder = out / identifiers["participant_id"] / identifiers["session_id"] / "anat"
+        stem = f"{identifiers['participant_id']}_{identifiers['session_id']}"
+    else:
+        folder, stem = out, scan_stem(image.name)
+    checksum = sha256_file(image) if image.is_file() else ""
+    path = folder / f"{stem}_{PROVENANCE}"
+    condition = {"age": float(age), "diagnosis": diagnosis}
+    if checksum and is_complete(path, model.checksum, checksum, horizons, condition):
+        return json.loads(path.read_text()), True
+    result = forecast(model, image, age, sex, diagnosis, horizons)
+    write_description(out)
+    return write_forecast(result, model, folder, stem, checksum, identifiers), False
+
+
+def _cohort_task(model_dir: str, row: dict, horizons, out: str, threads: int) -> dict:
+    """Worker: one participant's forecast; returns its status instead of raising."""
+    import torch
+
+    if threads:
+        torch.set_num_threads(threads)
+    identifiers = {key: row[key] for key in ("participant_id", "session_id")}
+    try:
+        _, skipped = forecast_one(
+            model_dir,
+            row["image"],
+            row["age"],
+            row["sex"],
+            row["diagnosis"],
+            horizons,
+            out,
+            identifiers,
+        )
+    except PredictorError as error:
+        return identifiers | {"failed": redact_folders(str(error), row["image"])}
+    return identifiers | {"skipped": skipped}
+
+
+def forecast_cohort(
+    model_dir: str | os.PathLike[str],
+    cohort: pd.DataFrame,
+    out: str | os.PathLike[str],
+    years,
+    session: str | None = None,
+    jobs: int = 1,
+    progress=None,
+) -> dict:
+    """Forecast every participant's baseline (or ``session``) scan of a validated cohort.
+
+    Failed scans are listed in ``out/failures.tsv`` and the others go on;
+    ``out/forecasts.tsv`` collects every complete forecast's volume table.
+    Returns counts: forecast, skipped, failed.
+    """
+    as_model(model_dir)  # fail early on a bad model folder
+    horizons = check_horizons(years)
+    out = Path(out)
+    if session is None:
+        chosen = cohort.groupby("participant_id", sort=True).head(1)
+    else:
+        chosen = cohort[cohort["session_id"] == session]
+        if chosen.empty:
+            raise DataError(f"no scan of session '{session}' in the cohort")
+    rows = chosen.to_dict("records")
+    arguments = [(str(model_dir), row, horizons, str(out), 1 if jobs > 1 else 0) for row in rows]
+    results = []
+    if jobs > 1 and len(rows) > 1:
+        with ProcessPoolExecutor(max_workers=jobs) as pool:
+            for status in pool.map(_cohort_task, *zip(*arguments, strict=True)):
+                results.append(status)
+                if progress:
+                    progress()
+    else:
+        for argument in arguments:
+            results.append(_cohort_task(*argument))
+            if progress:
+                progress()
+    failures = [r for r in results if "failed" in r]
+    write_tsv(
+        out / "failures.tsv",
+        pd.DataFrame(failures, columns=["participant_id", "session_id", "failed"]).rename(
+            columns={"failed": "reason"}
+        ),
+    )
+    write_tsv(out / "forecasts.tsv", collect_forecasts(out, rows))
+    return {
+        "forecast": sum(r.get("skipped") is False for r in results),
+        "skipped": sum(r.get("skipped") is True for r in results),
+        "failed": len(failures),
+    }
+
+
+def collect_forecasts(out: Path, rows: list[dict]) -> pd.DataFrame:
+    """One table of the volume tables of every complete forecast among ``rows``."""
+    frames = []
+    for row in rows:
+        pid, session = row["participant_id"], row["session_id"]
+        stem = f"{pid}_{session}"
+        folder = out / pid / session / "anat"
+        if (folder / f"{stem}_{PROVENANCE}").is_file():
+            table = pd.read_csv(folder / f"{stem}_{VOLUMES}", sep="\t")
+            frames.append(table.assign(**{key: row[key] for key in IDENTIFIERS}))
+    if not frames:
+        return pd.DataFrame(columns=[*IDENTIFIERS, "region", "years"])
+    table = pd.concat(frames, ignore_index=True)
+    return table[[*IDENTIFIERS, *[c for c in table.columns if c not in IDENTIFIERS]]]
