@@ -19,6 +19,7 @@ from predictor.files import atomic_write
 #: a purple-green diverging map for the log-Jacobian
 SCAN_MAP, DIFFERENCE_MAP, JACOBIAN_MAP = "gray", "BrBG", "PRGn"
 NETWORK_COLOUR, PRIOR_COLOUR = "#1b7f79", "#b8651b"
+DPI = 80
 
 
 def pyplot():
@@ -37,7 +38,7 @@ def save_figure(figure, path: str | Path) -> Path:
     metadata = {"Description": CAUTION, "Software": "predictor"}
     atomic_write(
         path,
-        lambda temporary: figure.savefig(temporary, dpi=100, format="png", metadata=metadata),
+        lambda temporary: figure.savefig(temporary, dpi=DPI, format="png", metadata=metadata),
     )
     plt.close(figure)
     return Path(path)
@@ -64,20 +65,26 @@ def forecast_overview(
     """
     plt = pyplot()
     centre = np.argwhere(brain).mean(axis=0) if brain.any() else np.array(brain.shape) / 2
-    inside = baseline[brain] if brain.any() else baseline.ravel()
-    top = float(np.percentile(inside, 99.5))
-    difference = forecast - baseline
-    spread = float(np.percentile(np.abs(difference[brain]), 99.5)) if brain.any() else 1.0
-    spread = max(spread, 1e-6 * max(top, 1.0))
-    jacobian_limit = max(float(np.percentile(np.abs(log_jacobian[brain]), 99.5)), 1e-4)
-    log_jacobian = np.where(brain, log_jacobian, np.nan)  # the map is meaningful in the brain
+    base, ahead, jacobian, inside = (
+        planes(volume, centre) for volume in (baseline, forecast, log_jacobian, brain)
+    )
+    difference = [a - b for a, b in zip(ahead, base, strict=True)]
+
+    def limit(shown, floor):
+        values = np.concatenate([np.abs(p[m]) for p, m in zip(shown, inside, strict=True)])
+        return max(float(np.percentile(values, 99.5)) if values.size else floor, floor)
+
+    top = limit(base, 1e-6)
+    spread = limit(difference, 1e-6 * top)
+    jacobian_limit = limit(jacobian, 1e-4)
+    jacobian = [np.where(m, p, np.nan) for p, m in zip(jacobian, inside, strict=True)]
     columns = [
-        ("baseline", baseline, SCAN_MAP, (0, top), "intensity (scanner units)"),
-        ("forecast", forecast, SCAN_MAP, (0, top), "intensity (scanner units)"),
+        ("baseline", base, SCAN_MAP, (0, top), "intensity (scanner units)"),
+        ("forecast", ahead, SCAN_MAP, (0, top), "intensity (scanner units)"),
         ("forecast - baseline", difference, DIFFERENCE_MAP, (-spread, spread), "scanner units"),
         (
             "log-Jacobian",
-            log_jacobian,
+            jacobian,
             JACOBIAN_MAP,
             (-jacobian_limit, jacobian_limit),
             "log volume ratio (< 0: shrinkage)",
@@ -87,8 +94,8 @@ def forecast_overview(
     aspects = [voxel_mm[1] / voxel_mm[0], voxel_mm[2] / voxel_mm[0], voxel_mm[2] / voxel_mm[1]]
     figure = plt.figure(figsize=(13, 10.5))
     layout = figure.add_gridspec(4, 4, height_ratios=[1, 1, 1, 0.06], hspace=0.08, wspace=0.05)
-    for column, (name, volume, colour_map, limits, unit) in enumerate(columns):
-        for row, (plane, aspect) in enumerate(zip(planes(volume, centre), aspects, strict=True)):
+    for column, (name, shown_planes, colour_map, limits, unit) in enumerate(columns):
+        for row, (plane, aspect) in enumerate(zip(shown_planes, aspects, strict=True)):
             axis = figure.add_subplot(layout[row, column])
             shown = axis.imshow(
                 plane, origin="lower", cmap=colour_map, vmin=limits[0], vmax=limits[1],

@@ -56,9 +56,8 @@ from predictor.spatial import grid_affine
 from predictor.templates import DEEP_REGIONS, TISSUES, Template, load_template
 from predictor.volumes import (
     REGIONS,
-    integrate,
     percent_of_brain,
-    region_weights,
+    region_volumes,
     unmixed_fraction,
 )
 
@@ -181,7 +180,7 @@ def prepare_scan(
                 content, weight = regions[spec.name]
                 regions[spec.name] = (content, weight * (1.0 - claimed))
     deep = {name: content * weight for name, (content, weight) in regions.items()}
-    volumes = integrate(region_weights(tissue, deep), scan.voxel_volume_ml)
+    volumes = region_volumes(tissue, deep, scan.voxel_volume_ml)
     low, high = settings.checks["brain_ml"]
     if not low <= volumes["brain"] <= high:
         raise ScanError(f"brain volume {volumes['brain']:.0f} mL is outside {low:g}-{high:g} mL")

@@ -17,42 +17,40 @@ REGIONS = (
 )
 
 
-def region_weights(tissue: dict[str, np.ndarray], deep: dict[str, np.ndarray]) -> dict:
-    """Voxel-wise share (0-1) of each of :data:`REGIONS` in every voxel.
+def region_volumes(
+    tissue: dict[str, np.ndarray],
+    deep: dict[str, np.ndarray],
+    voxel_ml: float,
+    factor: np.ndarray | None = None,
+) -> dict[str, float]:
+    """Volumes (mL) of :data:`REGIONS`, optionally weighted voxel by voxel by ``factor``.
 
     ``tissue`` maps GM/WM/CSF to probability arrays (zero outside the brain
     mask); ``deep`` maps each deep region (hippocampi, ventricles) to its
-    tissue fraction inside the region mask. All arrays share one grid.
+    tissue fraction inside the region mask; all on one grid. With ``factor``
+    the Jacobian determinant of a forward deformation, the result is the
+    regions' volumes after it (``factor - 1`` gives the change). Volumes are
+    linear in the maps, so the derived regions (cortical GM, brain, ICV) are
+    sums and differences of six integrals.
     """
-    gm, wm, csf = tissue["GM"], tissue["WM"], tissue["CSF"]
-    left, right = deep["hippocampus_left"], deep["hippocampus_right"]
+
+    def total(values):
+        product = values if factor is None else values * factor
+        return float(product.sum(dtype=np.float64)) * voxel_ml
+
+    gm, wm, csf = (total(tissue[name]) for name in ("GM", "WM", "CSF"))
+    left, right, ventricles = (
+        total(deep[name]) for name in ("hippocampus_left", "hippocampus_right", "ventricles")
+    )
     return {
         "hippocampus_left": left,
         "hippocampus_right": right,
-        "ventricles": deep["ventricles"],
+        "ventricles": ventricles,
         "cortical_gm": gm - left - right,
         "total_gm": gm,
         "wm": wm,
         "brain": gm + wm,
         "icv": gm + wm + csf,
-    }
-
-
-def integrate(
-    weights: dict[str, np.ndarray], voxel_ml: float, factor: np.ndarray | None = None
-) -> dict[str, float]:
-    """Volumes (mL): each region's share summed over voxels, optionally times a voxel factor.
-
-    With ``factor`` the Jacobian determinant of a forward deformation, the
-    result is the regions' volumes after the deformation.
-    """
-    if factor is None:
-        return {
-            name: float(values.sum(dtype=np.float64)) * voxel_ml for name, values in weights.items()
-        }
-    return {
-        name: float((values * factor).sum(dtype=np.float64)) * voxel_ml
-        for name, values in weights.items()
     }
 
 

@@ -1,0 +1,55 @@
+"""One forecast of the 1 mm MNI152 T1: from the raw scan (preparation included) and prepared."""
+
+from __future__ import annotations
+
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))  # tests/helpers.py
+
+
+def _setup(folder: Path):
+    import nibabel as nib
+    from helpers import constant_velocity_model
+    from nilearn import datasets
+
+    image = folder / "mni.nii.gz"
+    nib.save(datasets.load_mni152_template(resolution=1), image)
+    return constant_velocity_model(velocity=(0.2, -0.1, 0.1)), image
+
+
+def forecast_raw_1mm() -> dict:
+    """Preparation, network, native-space warps and every output file, two horizons."""
+    from predictor.forecast_io import forecast_one
+
+    with tempfile.TemporaryDirectory() as folder:
+        model, image = _setup(Path(folder))
+        started = time.perf_counter()
+        forecast_one(model, image, 70.0, "F", "MCI", [1, 3], Path(folder) / "out")
+        return {"horizons": 2, "s_total": round(time.perf_counter() - started, 2)}
+
+
+def forecast_prepared_1mm() -> dict:
+    """Network and native-space warps and volumes for a prepared scan, then the output files."""
+    from predictor.forecast import forecast, prepare_for
+    from predictor.forecast_io import write_forecast
+    from predictor.nifti import load_scan
+
+    with tempfile.TemporaryDirectory() as folder:
+        model, image = _setup(Path(folder))
+        scan = load_scan(image)
+        prepared = prepare_for(model, scan)
+        started = time.perf_counter()
+        result = forecast(model, scan, 70.0, "F", "MCI", [1, 3], prepared=prepared)
+        computed = time.perf_counter() - started
+        write_forecast(result, model, Path(folder) / "out", "mni", "")
+        return {
+            "horizons": 2,
+            "s_compute": round(computed, 2),
+            "s_with_outputs": round(time.perf_counter() - started, 2),
+        }
+
+
+BENCHMARKS = {"forecast_raw_1mm": forecast_raw_1mm, "forecast_prepared_1mm": forecast_prepared_1mm}

@@ -1,0 +1,86 @@
+"""Training-step time and pairs per second at the default config and grid; one network pass."""
+
+from __future__ import annotations
+
+import time
+
+
+def _default_batch(pairs: int):
+    import torch
+
+    from predictor.config import CohortSettings
+    from predictor.network import encode_condition
+    from predictor.pairs import PRIOR_REGIONS, Batch
+    from predictor.prepare import PrepareSettings, cached_template, working_grid
+
+    _, shape = working_grid(cached_template("mni152"), PrepareSettings.from_toml())
+    generator = torch.Generator().manual_seed(0)
+    labels = len(CohortSettings.from_toml().diagnosis_labels)
+
+    def field(channels):
+        return torch.rand(pairs, channels, *shape, generator=generator)
+
+    condition = encode_condition([70.0] * pairs, [0] * pairs, [0] * pairs, 75.0, 8.0, labels)
+    regions = len(PRIOR_REGIONS)
+    batch = Batch(
+        field(4), field(1), field(1), torch.ones(pairs, 1, *shape), field(1)[:, 0],
+        field(regions), condition, torch.full((pairs,), 2.0),
+        torch.ones(pairs, regions), torch.full((pairs, regions), 0.01),
+    )  # fmt: skip
+    return batch, shape
+
+
+def default_training_step() -> dict:
+    """Seconds per optimiser step of ``batch_pairs`` pairs (configs/train.toml, 3 mm grid)."""
+    import torch
+
+    from predictor.modelstore import build_network
+    from predictor.training import TrainConfig, batch_terms, weighted_total
+
+    config = TrainConfig.from_toml()
+    pairs = config.training.batch_pairs
+    batch, shape = _default_batch(pairs)
+    network = build_network({"config": config.to_dict(), "condition": {"labels": [0, 1, 2]}})
+    optimiser = torch.optim.Adam(network.parameters(), lr=1e-3)
+    weights = config.loss.weights(100)
+    steps, started = 6, None
+    for step in range(steps + 1):
+        if step == 1:
+            started = time.perf_counter()
+        terms, _, _ = batch_terms(network, batch, config.loss)
+        optimiser.zero_grad()
+        weighted_total(terms, weights).backward()
+        optimiser.step()
+    seconds = (time.perf_counter() - started) / steps
+    return {
+        "grid": "x".join(map(str, shape)),
+        "batch_pairs": pairs,
+        "s_per_step": round(seconds, 3),
+        "pairs_per_s": round(pairs / seconds, 2),
+        "threads": torch.get_num_threads(),
+    }
+
+
+def network_pass() -> dict:
+    """One forward pass and a 2-year integration (no gradients), default config and grid."""
+    import torch
+
+    from predictor.modelstore import build_network
+    from predictor.training import TrainConfig
+
+    config = TrainConfig.from_toml()
+    batch, shape = _default_batch(1)
+    network = build_network({"config": config.to_dict(), "condition": {"labels": [0, 1, 2]}})
+    network.eval()
+    times = []
+    with torch.no_grad():
+        for _ in range(4):
+            started = time.perf_counter()
+            velocity = network(batch.inputs, batch.condition)
+            network.displacement(velocity, 2.0, shape)
+            network.displacement(velocity, -2.0, shape)
+            times.append(time.perf_counter() - started)
+    return {"grid": "x".join(map(str, shape)), "s_per_pass": round(min(times[1:]), 3)}
+
+
+BENCHMARKS = {"default_training_step": default_training_step, "network_pass": network_pass}
