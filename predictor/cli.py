@@ -343,64 +343,159 @@ def forecast(
 
 @app.command()
 @reports_errors
+def compare(
+    model: Annotated[Path, typer.Argument(help="A trained model folder (predictor train).")],
+    work: Annotated[Path, typer.Argument(help="The prepared workspace the model was trained on.")],
+    out: Annotated[Path, typer.Argument(help="Report folder (HTML, TSV, PNG).")],
+    jobs: Annotated[int, typer.Option(min=1, help="Participants processed in parallel.")] = 1,
+    seed: Annotated[int, typer.Option(help="Seed of the bootstrap and conformal splits.")] = 0,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the verdicts as JSON.")] = False,
+) -> None:
+    """Compare the network with the regression forecasters on held-out participants.
+
+    The model's test participants (its saved split) are forecast from their
+    baseline to every follow-up; the regressions are refitted on the training
+    participants only. Errors are in % of total brain volume (headline), % of
+    the region and mL; the report (report.html, TSVs, PNGs) goes to OUT.
+    """
+    import json
+
+    from predictor.compare import compare as run_comparison
+    from predictor.report import write_report
+
+    progress, advance = progress_bar("test participants", None)
+    with progress:
+        comparison = run_comparison(model, work, jobs, seed, advance)
+    page = write_report(comparison, out)
+    tests = comparison.tests
+    if as_json:
+        typer.echo(json.dumps(tests.to_dict("records"), indent=2))
+        return
+    shown = tests[["region", "network", "network_mean_pct_tbv", "best_regression",
+                   "best_regression_mean_pct_tbv", "p_value", "winner"]]  # fmt: skip
+    typer.echo("mean |error| in % of total brain volume, held-out test pairs:")
+    typer.echo(shown.round(4).to_string(index=False))
+    typer.echo(f"report: {page}")
+    typer.echo(CAUTION)
+
+
+@app.command("trial-size")
+@reports_errors
+def trial_size(
+    source: Annotated[
+        Path,
+        typer.Option(
+            "--from", help="A compare report folder or a forecast --cohort folder."
+        ),
+    ],
+    region: Annotated[str, typer.Option(help="Region, e.g. hippocampus_left, ventricles.")],
+    effect: Annotated[
+        float, typer.Option(help="Fractional slowing of the mean annual rate to detect (0-1].")
+    ] = 0.25,
+    power: Annotated[float, typer.Option(help="Power, within (0, 1).")] = 0.8,
+    alpha: Annotated[float, typer.Option(help="Two-sided significance level, (0, 0.5].")] = 0.05,
+    years: Annotated[float, typer.Option(help="Trial duration (rates over it), years.")] = 2.0,
+    enrich: Annotated[
+        list[float],
+        typer.Option(help="Enrolled fractions of top forecast atrophy, e.g. --enrich 0.5 0.3."),
+    ] = [0.5, 0.3],  # noqa: B006 (typer needs a list default)
+    method: Annotated[
+        str | None,
+        typer.Option(help="Forecast: network-jacobian|network (compare), network|prior."),
+    ] = None,
+    observed: Annotated[
+        Path | None, typer.Option(help="With forecasts: a workspace to take observed changes from.")
+    ] = None,
+    out: Annotated[
+        Path | None, typer.Option(help="Output folder [default: FROM/trial-size].")
+    ] = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the result as JSON.")] = False,
+) -> None:
+    """Participants per arm to detect a slowing of atrophy, and enrichment by forecast.
+
+    Rates are annualised changes (% per year) of the region over the trial's
+    duration; n per arm is for a two-arm, two-sided comparison (exact t-test,
+    normal approximation beside it) with a bootstrap 95% CI. Enrichment keeps
+    the top fraction of forecast atrophy; 1/q are screened per enrolled.
+    """
+    import json
+
+    from predictor.trials import Design, trial_report
+
+    design = Design(effect=effect, power=power, alpha=alpha, years=years)
+    summary = trial_report(
+        source, out or source / "trial-size", region, design, enrich, method, observed
+    )
+    if as_json:
+        typer.echo(json.dumps(summary, indent=2))
+        return
+    import pandas as pd
+
+    table = pd.DataFrame(summary["enrichment"])
+    wanted = ("fraction", "screened_per_enrolled", "forecast_n_per_arm", "forecast_n_ci_low",
+              "forecast_n_ci_high", "observed_n_per_arm")  # fmt: skip
+    columns = [c for c in wanted if c in table]
+    typer.echo(f"{region}, {summary['source']}:")
+    typer.echo(table[columns].round(1).to_string(index=False))
+    typer.echo(summary["caution"])
+
+
+@app.command()
+@reports_errors
 def demo(
     out: Annotated[Path, typer.Argument(help="Folder for everything the demo writes.")] = Path(
         "demo-output"
     ),
-    quick: Annotated[bool, typer.Option(help="Tiny phantoms (4 mm), about a minute.")] = False,
+    quick: Annotated[
+        bool, typer.Option(help="4 mm phantoms and the tiny network: a few minutes.")
+    ] = False,
     jobs: Annotated[int, typer.Option(min=1, help="Parallel worker processes.")] = 2,
 ) -> None:
-    """Run the pipeline on a fictional memory clinic's phantom cohort.
+    """Run every stage on a fictional memory clinic's phantom cohort.
 
-    Stages built so far: the phantom cohort (BIDS, ground truth, template),
-    then prepare (bias correction, registration, segmentation, volumes in mL)
-    and a comparison of measured with true volumes (% error).
+    Phantom cohort (BIDS with ground truth) -> prepare (volumes in mL) ->
+    train (CPU) -> forecast (test participants; 1, 2, 5 years) -> compare
+    (held-out report) -> trial-size (participants per arm). Settings in
+    configs/demo.toml; about 15-20 minutes on 2 cores, --quick a few minutes.
     """
-    import pandas as pd
+    from rich.console import Console
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeElapsedColumn
 
-    from predictor.cohort import read_cohort
-    from predictor.phantoms.generate import TEMPLATE, TRUTH, generate_cohort
-    from predictor.prepare import PrepareSettings, prepare_cohort
-    from predictor.volumes import REGIONS
+    from predictor.demo import STAGES, run_demo
 
-    cohort, work = out / "cohort", out / "work"
-    participants = 12 if quick else 40
-    progress, advance = progress_bar("phantom participants", participants)
-    with progress:
-        generate_cohort(
-            cohort,
-            participants,
-            "tiny" if quick else "demo",
-            seed=0,
-            jobs=jobs,
-            force=True,
-            progress=advance,
-        )
-    table = read_cohort(cohort)
-    settings = PrepareSettings.from_toml(grid_mm=4.0 if quick else None)
-    progress, advance = progress_bar("preparing scans", len(table))
-    with progress:
-        summary = prepare_cohort(table, work, cohort / TEMPLATE, settings, jobs, progress=advance)
-    measured = pd.read_csv(work / "volumes.tsv", sep="\t")
-    truth = pd.read_csv(cohort / TRUTH / "true_volumes.tsv", sep="\t")
-    both = measured.merge(truth, on=["participant_id", "session_id"], suffixes=("", "_true"))
-    errors = {
-        region: 100 * ((both[region] - both[f"{region}_true"]) / both[f"{region}_true"])
-        for region in REGIONS
-    }
-    report = pd.DataFrame(
-        {
-            "mean_error_pct": {r: e.mean() for r, e in errors.items()},
-            "max_abs_error_pct": {r: e.abs().max() for r, e in errors.items()},
-        }
+    progress = Progress(
+        "[progress.description]{task.description}",
+        BarColumn(),
+        MofNCompleteColumn(),
+        TimeElapsedColumn(),
+        console=Console(stderr=True),
     )
+    overall = progress.add_task("demo", total=len(STAGES))
+    current = {}
+
+    def on_stage(name, items):
+        if current:
+            progress.update(current["task"], completed=progress.tasks[current["task"]].total)
+            progress.advance(overall)
+        current["task"] = progress.add_task(f"  {name}", total=items)
+        progress.update(overall, description=f"demo: {name}")
+        return lambda: progress.advance(current["task"])
+
+    with progress:
+        result = run_demo(out, quick, jobs, on_stage)
+        progress.advance(overall)
+    typer.echo("Prepare: measured against true volumes (% error):")
+    typer.echo(result["prepare_accuracy"].round(2).to_string(index=False))
+    tests = result["tests"]
+    typer.echo("Held-out test pairs, mean |error| in % of total brain volume:")
     typer.echo(
-        f"{summary['prepared'] + summary['cached']} scans prepared, "
-        f"{summary['failed']} failed. Measured against true volumes:"
-    )
-    typer.echo(report.round(2).to_string())
-    typer.echo(f"cohort: {cohort}\nworkspace: {work}  (volumes.tsv, failures.tsv)")
-    typer.echo("Synthetic phantoms: invented anatomy, not images of any person.")
+        tests[["region", "network", "network_mean_pct_tbv", "best_regression",
+               "best_regression_mean_pct_tbv", "winner"]].round(4).to_string(index=False)
+    )  # fmt: skip
+    for key, folder in result["folders"].items():
+        typer.echo(f"{key:>10}: {folder}")
+    typer.echo(f"report: {result['report']}")
+    typer.echo("Synthetic phantoms: invented anatomy, not images of any person. " + CAUTION)
 
 
 #: options that take several values after one flag (``--years 1 2 5``)

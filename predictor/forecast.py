@@ -33,8 +33,9 @@ import numpy as np
 import pandas as pd
 import torch
 import torch.nn.functional as F
+from scipy import ndimage
 
-from predictor.config import CohortSettings
+from predictor.config import CONFIG_DIR, CohortSettings, read_toml
 from predictor.errors import DataError, ModelError
 from predictor.fields import identity_grid, jacobian_determinant, region_volume_ratio, sample_at
 from predictor.modelstore import TrainedModel, load_model
@@ -46,6 +47,7 @@ from predictor.regression import Z90
 from predictor.volumes import REGIONS, region_volumes
 
 Z95 = 1.959963984540054
+INTERPOLATIONS = ("cubic", "linear")
 
 
 @dataclass(frozen=True, eq=False)
@@ -141,6 +143,25 @@ def native_to_grid(prepared: PreparedScan, grid_affine: np.ndarray) -> np.ndarra
     return np.linalg.inv(grid_affine) @ native_to_template @ prepared.native_affine
 
 
+def baseline_resampler(data: np.ndarray, interpolation: str):
+    """A function: native voxel coordinates (3, X, Y, Z) -> the baseline sampled there.
+
+    'cubic' is a cubic B-spline (the coefficients computed once), 'linear'
+    trilinear; outside the field of view the nearest edge value is used.
+    """
+    if interpolation == "linear":
+        baseline = torch.from_numpy(data)[None, None]
+        return lambda source: sample_at(baseline, source[None])[0, 0].numpy()
+    coefficients = ndimage.spline_filter(data, order=3, mode="nearest")
+
+    def resample(source):
+        return ndimage.map_coordinates(
+            coefficients, source.numpy(), order=3, mode="nearest", prefilter=False
+        ).astype(np.float32)
+
+    return resample
+
+
 def network_inputs(model: TrainedModel, prepared: PreparedScan):
     """Network input (1, C, D, H, W) and grid region weights (1, R, D, H, W) of a prepared scan.
 
@@ -193,13 +214,20 @@ def forecast(
     diagnosis: str,
     years,
     prepared: PreparedScan | None = None,
+    interpolation: str | None = None,
 ) -> ForecastResult:
     """Forecast ``image`` at each horizon in ``years`` (see the module docstring).
 
     ``age`` is the baseline age in years; ``sex`` and ``diagnosis`` use the
-    codes of ``configs/cohort.toml``. Returns arrays in the scan's RAS order
-    and the volume table.
+    codes of ``configs/cohort.toml``; ``interpolation`` ('cubic' or 'linear')
+    defaults to ``configs/forecast.toml``. Returns arrays in the scan's RAS
+    order and the volume table.
     """
+    interpolation = interpolation or read_toml(CONFIG_DIR / "forecast.toml")["interpolation"]
+    if interpolation not in INTERPOLATIONS:
+        raise DataError(
+            f"interpolation must be one of {list(INTERPOLATIONS)}; '{interpolation}' was given"
+        )
     model = as_model(model)
     scan = image if isinstance(image, Scan) else load_scan(image)
     sex_code, label, horizons, notes = check_request(model, float(age), sex, diagnosis, years)
@@ -222,7 +250,7 @@ def forecast(
     to_mm = torch.from_numpy(
         (prepared.template_to_native[:3, :3] @ grid_affine[:3, :3]).astype(np.float32)
     )
-    baseline = torch.from_numpy(scan.data)[None, None]
+    resample = baseline_resampler(scan.data, interpolation)
     index = identity_grid(scan.data.shape)[0]
     outputs, network_ml = [], {}
     with torch.no_grad():
@@ -236,7 +264,7 @@ def forecast(
             both = sampler(torch.cat([backward, determinant[:, None]], 1))
             back_native, native_det = both[:3], both[3].numpy()
             source = index + torch.einsum("ij,jxyz->ixyz", to_native, back_native)
-            warped = sample_at(baseline, source[None])[0, 0].numpy()
+            warped = resample(source)
             outputs.append(
                 HorizonForecast(
                     t,

@@ -23,7 +23,6 @@ from __future__ import annotations
 
 import json
 import os
-from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -35,6 +34,7 @@ from predictor.files import redact_folders, sha256_file, write_json, write_tsv
 from predictor.forecast import ForecastResult, as_model, forecast
 from predictor.modelstore import TrainedModel, package_versions
 from predictor.nifti import save_like
+from predictor.parallel import run_all
 
 PROVENANCE = "desc-forecast_provenance.json"
 VOLUMES = "desc-forecast_volumes.tsv"
@@ -269,18 +269,7 @@ def forecast_cohort(
             raise DataError(f"no scan of session '{session}' in the cohort")
     rows = chosen.to_dict("records")
     arguments = [(str(model_dir), row, horizons, str(out), 1 if jobs > 1 else 0) for row in rows]
-    results = []
-    if jobs > 1 and len(rows) > 1:
-        with ProcessPoolExecutor(max_workers=jobs) as pool:
-            for status in pool.map(_cohort_task, *zip(*arguments, strict=True)):
-                results.append(status)
-                if progress:
-                    progress()
-    else:
-        for argument in arguments:
-            results.append(_cohort_task(*argument))
-            if progress:
-                progress()
+    results = run_all(_cohort_task, arguments, jobs, progress)
     failures = [r for r in results if "failed" in r]
     write_tsv(
         out / "failures.tsv",

@@ -27,7 +27,6 @@ import hashlib
 import json
 import os
 import shutil
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import asdict, dataclass, field
 from functools import lru_cache
 from pathlib import Path
@@ -40,6 +39,7 @@ from predictor.config import CONFIG_DIR, read_toml
 from predictor.errors import ConfigError, PredictorError, ScanError
 from predictor.files import redact_folders, sha256_file, write_json, write_tsv
 from predictor.nifti import Scan, load_scan, save_array
+from predictor.parallel import run_all
 from predictor.preprocess import (
     Registration,
     grow_region,
@@ -322,19 +322,7 @@ def prepare_cohort(
     )
     write_tsv(work / "cohort.tsv", cohort.assign(key=keys))
     arguments = [(rows[i], str(work / SCANS / keys[i]), template_spec, settings) for i in mine]
-    results = {}
-    if jobs > 1 and len(arguments) > 1:
-        with ProcessPoolExecutor(max_workers=jobs) as pool:
-            futures = {pool.submit(_run_scan, *a): i for a, i in zip(arguments, mine, strict=True)}
-            for future in futures:
-                results[futures[future]] = future.result()
-                if progress:
-                    progress()
-    else:
-        for argument, index in zip(arguments, mine, strict=True):
-            results[index] = _run_scan(*argument)
-            if progress:
-                progress()
+    results = dict(zip(mine, run_all(_run_scan, arguments, jobs, progress), strict=True))
     summary = {
         "prepared": sum(not r.get("cached") and "failed" not in r for r in results.values()),
         "cached": sum(bool(r.get("cached")) for r in results.values()),

@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import os
 from collections.abc import Callable
-from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -30,6 +29,7 @@ from predictor import __version__
 from predictor.errors import OutputError
 from predictor.files import write_json, write_tsv
 from predictor.nifti import save_array
+from predictor.parallel import run_all
 from predictor.phantoms.anatomy import (
     CSF_LABELS,
     GM_LABELS,
@@ -204,19 +204,7 @@ def generate_cohort(
         raise ValueError(f"participants must be at least 1, got {count}")
     groups = assign_groups(scenario.cohort["diagnosis_fractions"], count, seed)
     arguments = [(scenario.source, size, k, groups[k], seed, str(out)) for k in range(count)]
-    results = []
-    if jobs > 1:
-        with ProcessPoolExecutor(max_workers=jobs) as pool:
-            futures = [pool.submit(_make_participant, *argument) for argument in arguments]
-            for future in futures:
-                results.append(future.result())
-                if progress:
-                    progress()
-    else:
-        for argument in arguments:
-            results.append(_make_participant(*argument))
-            if progress:
-                progress()
+    results = run_all(_make_participant, arguments, jobs, progress)
     _write_tables(out, scenario, size, seed, results)
     write_template(scenario, size, out)
     return out

@@ -1,0 +1,435 @@
+"""``predictor compare``: the network against the regression forecasters on held-out participants.
+
+On the model's test participants (its saved split), every baseline ->
+follow-up pair is forecast by
+
+* the network: the forecast scan is measured by the same volume measurement
+  as the real follow-up (``prepare_scan``), with the Jacobian-integral volume
+  kept beside it as a consistency check;
+* every regression forecaster of :mod:`predictor.regression`, refitted here
+  on the model's training participants only;
+* on phantom cohorts, the generator's best observable forecast (its ratio
+  applied to the measured baseline): the irreducible error, a floor.
+
+Errors are forecast minus observed follow-up volume, reported in mL, as % of
+the participant's total brain volume at baseline (the headline measure) and
+as % of the region's observed volume. Image agreement (MAE and SSIM inside
+the brain, Dice of tissue labels) is measured on the working grid, in
+template space and normalised intensities, for the network and no change.
+"""
+
+from __future__ import annotations
+
+import os
+import warnings
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+from scipy import ndimage, stats
+
+from predictor.errors import DataError
+from predictor.forecast import as_model, forecast, prepare_for
+from predictor.nifti import load_scan
+from predictor.pairs import SETS, read_workspace, visit_pairs
+from predictor.parallel import run_all
+from predictor.phantoms.participants import seeded_rng
+from predictor.prepare import SCANS
+from predictor.regression import all_forecasters, baseline_rows, check_table
+from predictor.volumes import REGIONS
+
+#: the network's volumes measured on its forecast scans, and its own Jacobian-integral volumes
+NETWORK, JACOBIAN = "network", "network-jacobian"
+FLOOR = "floor (best possible)"
+NETWORKS = (NETWORK, JACOBIAN)
+LARGE_REGIONS = ("total_gm", "wm", "cortical_gm", "ventricles")
+BOOTSTRAP = 2000
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """Every table of a comparison (all pandas DataFrames)."""
+
+    errors: pd.DataFrame  # one row per pair, region and method
+    summary: pd.DataFrame  # region x method: n, mean, SD, median, 95% CI (% of brain volume)
+    tests: pd.DataFrame  # region: network against the best regression (Wilcoxon)
+    images: pd.DataFrame  # one row per pair and method: MAE, SSIM, Dice
+    by_horizon: pd.DataFrame
+    by_diagnosis: pd.DataFrame
+    consistency: pd.DataFrame  # measured vs Jacobian-integral network volumes
+    data: dict  # counts describing the data and the split
+    examples: list  # (title, baseline, follow-up, forecast) working-grid T1 (X, Y, Z)
+
+
+def check_split(split: dict) -> None:
+    """Raise DataError naming any participant that is in two sets of a split."""
+    for i, first in enumerate(SETS):
+        for second in SETS[i + 1 :]:
+            shared = sorted(set(split.get(first, [])) & set(split.get(second, [])))
+            if shared:
+                raise DataError(
+                    f"leaked split: participant(s) {', '.join(shared)} are in both the "
+                    f"{first} and {second} sets; the comparison would be biased"
+                )
+
+
+# --- image agreement ----------------------------------------------------------------------
+def ssim_map(a: np.ndarray, b: np.ndarray, data_range: float, sigma: float = 1.5) -> np.ndarray:
+    """Structural similarity map (Wang et al. 2004, IEEE TIP): Gaussian window, K1 .01, K2 .03.
+
+    Population (not sample) covariances, window truncated at 3.5 sigma, as
+    scikit-image's ``structural_similarity(gaussian_weights=True)``.
+    """
+    c1, c2 = (0.01 * data_range) ** 2, (0.03 * data_range) ** 2
+
+    def blur(x):
+        return ndimage.gaussian_filter(x, sigma, truncate=3.5, mode="reflect")
+
+    a, b = a.astype(np.float64), b.astype(np.float64)
+    mean_a, mean_b = blur(a), blur(b)
+    var_a = blur(a * a) - mean_a**2
+    var_b = blur(b * b) - mean_b**2
+    covariance = blur(a * b) - mean_a * mean_b
+    numerator = (2 * mean_a * mean_b + c1) * (2 * covariance + c2)
+    return numerator / ((mean_a**2 + mean_b**2 + c1) * (var_a + var_b + c2))
+
+
+def image_agreement(
+    forecast_t1, forecast_tissue, observed_t1, observed_tissue, mask
+) -> dict[str, float]:
+    """MAE and mean SSIM inside ``mask``, and Dice of the most likely tissue (GM, WM, CSF).
+
+    Arrays are on the working grid: T1 (X, Y, Z) normalised (white matter
+    = 1), tissue (X, Y, Z, 3) probabilities, mask boolean.
+    """
+    mae = float(np.abs(forecast_t1 - observed_t1)[mask].mean())
+    ssim = float(ssim_map(forecast_t1, observed_t1, data_range=1.5)[mask].mean())
+    labels_a = np.argmax(forecast_tissue, axis=-1)
+    labels_b = np.argmax(observed_tissue, axis=-1)
+    scores = {"mae": mae, "ssim": ssim}
+    for index, tissue in enumerate(("gm", "wm", "csf")):
+        a, b = (labels_a == index) & mask, (labels_b == index) & mask
+        scores[f"dice_{tissue}"] = float(2 * (a & b).sum() / max(a.sum() + b.sum(), 1))
+    return scores
+
+
+# --- the network's forecasts of one test participant -----------------------------------
+def _grid_arrays(folder: Path):
+    t1 = np.asarray(nib.load(folder / "grid_T1w.nii.gz").dataobj, dtype=np.float32)
+    mask = np.asarray(nib.load(folder / "grid_mask.nii.gz").dataobj) > 0
+    tissue = np.asarray(nib.load(folder / "grid_probseg.nii.gz").dataobj, dtype=np.float32)
+    return t1, mask, tissue
+
+
+def network_pairs(model_dir: str, work: str, pairs: pd.DataFrame) -> list[dict]:
+    """Network forecasts of one participant's pairs (same baseline), measured like real scans.
+
+    Returns one dict per pair: measured and Jacobian volumes (mL) and the
+    image agreement of the forecast and of no change with the real follow-up;
+    the longest-horizon pair also carries its working-grid images (``example``).
+    """
+    model = as_model(model_dir)
+    first = pairs.iloc[0]
+    cohort = pd.read_csv(Path(work) / "cohort.tsv", sep="\t", dtype={"key": str})
+    image = cohort.set_index("key").loc[first.base_key, "image"]
+    scan = load_scan(image)
+    prepared = prepare_for(model, scan)
+    horizons = pairs["years"].tolist()
+    result = forecast(
+        model, scan, first.age, first.sex, first.diagnosis, horizons, prepared=prepared
+    )
+    jacobian = result.volumes.set_index(["region", "years"])["network_ml"]
+    scans = Path(work) / SCANS
+    base_t1, base_mask, base_tissue = _grid_arrays(scans / first.base_key)
+    rows = []
+    for horizon, pair in zip(result.horizons, pairs.itertuples(index=False), strict=True):
+        measured = prepare_for(model, replace(scan, data=horizon.image))
+        follow_t1, follow_mask, follow_tissue = _grid_arrays(scans / pair.follow_key)
+        mask = base_mask | follow_mask
+        row = {"base_key": pair.base_key, "follow_key": pair.follow_key}
+        for region in REGIONS:
+            row[f"measured_{region}"] = measured.volumes[region]
+            row[f"jacobian_{region}"] = float(jacobian.loc[(region, horizon.years)])
+        network = image_agreement(
+            measured.grid_t1, measured.grid_tissue, follow_t1, follow_tissue, mask
+        )
+        still = image_agreement(base_t1, base_tissue, follow_t1, follow_tissue, mask)
+        row |= {f"network_{k}": v for k, v in network.items()}
+        row |= {f"no_change_{k}": v for k, v in still.items()}
+        if horizon.years == max(horizons):
+            title = f"{first.participant_id} ({first.diagnosis}), +{horizon.years:.1f} y"
+            row["example"] = (title, base_t1, follow_t1, measured.grid_t1)
+        rows.append(row)
+    return rows
+
+
+# --- the comparison ------------------------------------------------------------------------
+def baseline_pairs(volumes: pd.DataFrame, participants) -> pd.DataFrame:
+    """Pairs from each participant's first visit to every later visit."""
+    pairs = visit_pairs(volumes, participants)
+    first = volumes.groupby("participant_id")["key"].first()
+    pairs = pairs[pairs["base_key"].to_numpy() == first.loc[pairs["participant_id"]].to_numpy()]
+    sessions = volumes.set_index("key")["session_id"]
+    return pairs.assign(session_id=sessions.loc[pairs["follow_key"]].to_numpy()).reset_index(
+        drop=True
+    )
+
+
+def regression_forecasts(volumes, train, pairs, seed: int, jobs: int) -> dict[str, np.ndarray]:
+    """Every regression forecaster fitted on ``train`` participants: (P, R) mL per method."""
+    table = volumes[volumes["participant_id"].isin(set(train))]
+    starts = baseline_rows(check_table(volumes[volumes["key"].isin(pairs["base_key"])], REGIONS))
+    horizons = sorted(set(pairs["years"]))
+    out = {}
+    for name, forecaster in all_forecasters(seed=seed, jobs=jobs).items():
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            forecaster.fit(table, list(REGIONS))
+        predicted = forecaster.predict(starts, horizons).set_index(
+            ["region", "participant_id", "years"]
+        )["mean_ml"]
+        keys = list(zip(pairs["participant_id"], pairs["years"], strict=True))
+        out[name] = np.stack([predicted.loc[region].loc[keys].to_numpy() for region in REGIONS], 1)
+    return out
+
+
+def phantom_floor(work: Path, pairs: pd.DataFrame) -> np.ndarray | None:
+    """The generator's best forecast ratio applied to the measured baseline, (P, R) mL.
+
+    None unless the cohort is a phantom cohort with its ground truth beside it.
+    """
+    cohort = pd.read_csv(work / "cohort.tsv", sep="\t", dtype={"key": str})
+    truth_folder = _phantom_truth(Path(cohort["image"].iloc[0]))
+    if truth_folder is None:
+        return None
+    truth = pd.read_csv(truth_folder / "true_volumes.tsv", sep="\t")
+    best = pd.read_csv(truth_folder / "best_forecast_volumes.tsv", sep="\t")
+    truth = truth.set_index(["participant_id", "session_id"])
+    best = best.set_index(["participant_id", "session_id"])
+    first = truth.groupby(level="participant_id").head(1).droplevel("session_id")
+    rows = []
+    for pair in pairs.itertuples(index=False):
+        ratio = best.loc[(pair.participant_id, pair.session_id), list(REGIONS)].to_numpy(float)
+        ratio = ratio / first.loc[pair.participant_id, list(REGIONS)].to_numpy(float)
+        rows.append(ratio * np.array([getattr(pair, r) for r in REGIONS]))
+    return np.array(rows)
+
+
+def _phantom_truth(image: Path) -> Path | None:
+    for folder in image.parents:
+        candidate = folder / "derivatives" / "phantom-truth"
+        if (candidate / "best_forecast_volumes.tsv").is_file():
+            return candidate
+    return None
+
+
+def compare(
+    model_dir: str | os.PathLike[str],
+    work: str | os.PathLike[str],
+    jobs: int = 1,
+    seed: int = 0,
+    progress=None,
+) -> Comparison:
+    """Compare the model with every regression forecaster on its test participants."""
+    model = as_model(model_dir)
+    split = model.info["split"]
+    check_split(split)
+    workspace = read_workspace(work)
+    volumes = workspace.volumes
+    known = set(volumes["participant_id"])
+    missing = sorted((set(split["test"]) | set(split["train"])) - known)
+    if missing:
+        raise DataError(f"{work}: the model's participants {', '.join(missing[:5])} are not here")
+    pairs = baseline_pairs(volumes, split["test"])
+    if pairs.empty:
+        raise DataError("the test participants have no follow-up visits to compare")
+    groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
+    arguments = [(str(Path(model_dir).resolve()), str(Path(work).resolve()), g) for g in groups]
+    measured = [row for rows in run_all(network_pairs, arguments, jobs, progress) for row in rows]
+    examples = [row.pop("example") for row in measured if "example" in row][:3]
+    measured = pd.DataFrame(measured)
+    pairs = pairs.merge(measured, on=["base_key", "follow_key"], validate="one_to_one")
+    methods = {
+        NETWORK: pairs[[f"measured_{r}" for r in REGIONS]].to_numpy(),
+        JACOBIAN: pairs[[f"jacobian_{r}" for r in REGIONS]].to_numpy(),
+    }
+    methods |= regression_forecasts(volumes, split["train"], pairs, seed, jobs)
+    floor = phantom_floor(Path(work), pairs)
+    if floor is not None:
+        methods[FLOOR] = floor
+    errors = error_table(pairs, methods)
+    summary = summarise(errors, seed)
+    return Comparison(
+        errors=errors,
+        summary=summary,
+        tests=paired_tests(errors, summary),
+        images=image_table(pairs),
+        by_horizon=grouped(errors.assign(horizon=horizon_bins(errors["years"])), "horizon"),
+        by_diagnosis=grouped(errors, "diagnosis"),
+        consistency=consistency_table(pairs),
+        data={
+            "participants": {name: len(split[name]) for name in SETS},
+            "test_pairs": len(pairs),
+            "scans": len(volumes),
+            "horizon_years": [float(pairs["years"].min()), float(pairs["years"].max())],
+            "phantom_floor": floor is not None,
+            "model": Path(model_dir).name,
+        },
+        examples=examples,
+    )
+
+
+def error_table(pairs: pd.DataFrame, methods: dict[str, np.ndarray]) -> pd.DataFrame:
+    """Long table of forecast errors: pair x region x method (mL and percentages)."""
+    frames = []
+    observed = pairs[[f"{r}_follow" for r in REGIONS]].to_numpy()
+    baseline = pairs[list(REGIONS)].to_numpy()
+    brain = pairs["brain"].to_numpy()[:, None]
+    for method, values in methods.items():
+        error = values - observed
+        for j, region in enumerate(REGIONS):
+            frames.append(
+                pd.DataFrame(
+                    {
+                        "participant_id": pairs["participant_id"],
+                        "session_id": pairs["session_id"],
+                        "diagnosis": pairs["diagnosis"],
+                        "years": pairs["years"],
+                        "region": region,
+                        "method": method,
+                        "baseline_ml": baseline[:, j],
+                        "observed_ml": observed[:, j],
+                        "forecast_ml": values[:, j],
+                        "error_ml": error[:, j],
+                        "abs_error_pct_tbv": 100 * np.abs(error[:, j]) / brain[:, 0],
+                        "abs_error_pct_region": 100 * np.abs(error[:, j]) / observed[:, j],
+                    }
+                )
+            )
+    return pd.concat(frames, ignore_index=True)
+
+
+def bootstrap_ci(values: np.ndarray, clusters: np.ndarray, rng, level: float = 0.95):
+    """Percentile bootstrap CI of the mean, resampling whole participants (clusters)."""
+    unique = np.unique(clusters)
+    if len(unique) < 2:
+        return float("nan"), float("nan")
+    groups = [values[clusters == c] for c in unique]
+    sums = np.array([g.sum() for g in groups])
+    counts = np.array([len(g) for g in groups])
+    draws = rng.integers(0, len(unique), size=(BOOTSTRAP, len(unique)))
+    means = sums[draws].sum(axis=1) / counts[draws].sum(axis=1)
+    tail = (1 - level) / 2
+    return float(np.quantile(means, tail)), float(np.quantile(means, 1 - tail))
+
+
+def summarise(errors: pd.DataFrame, seed: int) -> pd.DataFrame:
+    """Per region and method: n, mean, SD, median and bootstrap 95% CI of |error| (% TBV)."""
+    rng = seeded_rng(seed, 17)
+    rows = []
+    for (region, method), group in errors.groupby(["region", "method"], sort=False):
+        values = group["abs_error_pct_tbv"].to_numpy()
+        low, high = bootstrap_ci(values, group["participant_id"].to_numpy(), rng)
+        rows.append(
+            {
+                "region": region,
+                "method": method,
+                "n": len(values),
+                "mean_pct_tbv": values.mean(),
+                "sd_pct_tbv": values.std(ddof=1) if len(values) > 1 else float("nan"),
+                "median_pct_tbv": float(np.median(values)),
+                "ci_low_pct_tbv": low,
+                "ci_high_pct_tbv": high,
+                "mean_pct_region": group["abs_error_pct_region"].mean(),
+                "mean_abs_ml": group["error_ml"].abs().mean(),
+            }
+        )
+    return pd.DataFrame(rows)
+
+
+def paired_tests(errors: pd.DataFrame, summary: pd.DataFrame) -> pd.DataFrame:
+    """Per region and network variant: against the best regression (Wilcoxon signed-rank).
+
+    The best regression is the one with the lowest mean |error| (% TBV) in
+    that region; the test pairs the two methods' absolute errors pair by pair.
+    """
+    rows = []
+    regressions = summary[~summary["method"].isin([*NETWORKS, FLOOR])]
+    for region in REGIONS:
+        candidates = regressions[regressions["region"] == region]
+        best = candidates.loc[candidates["mean_pct_tbv"].idxmin()]
+        own = errors[errors["region"] == region].sort_values(["participant_id", "session_id"])
+        for variant in NETWORKS:
+            network = summary[(summary["region"] == region) & (summary["method"] == variant)]
+            network_mean = float(network["mean_pct_tbv"].iloc[0])
+            a, b = (
+                own.loc[own["method"] == method, "abs_error_pct_tbv"].to_numpy()
+                for method in (variant, best["method"])
+            )
+            if len(a) >= 2 and np.any(a != b):
+                statistic, p_value = stats.wilcoxon(a, b)
+            else:
+                statistic, p_value = float("nan"), float("nan")
+            rows.append(
+                {
+                    "region": region,
+                    "network": variant,
+                    "network_mean_pct_tbv": network_mean,
+                    "best_regression": best["method"],
+                    "best_regression_mean_pct_tbv": best["mean_pct_tbv"],
+                    "relative_difference_pct": 100 * (network_mean / best["mean_pct_tbv"] - 1),
+                    "wilcoxon_statistic": float(statistic),
+                    "p_value": float(p_value),
+                    "n_pairs": len(a),
+                    "winner": variant if network_mean <= best["mean_pct_tbv"] else best["method"],
+                }
+            )
+    return pd.DataFrame(rows)
+
+
+def image_table(pairs: pd.DataFrame) -> pd.DataFrame:
+    """Image agreement with the real follow-up: one row per pair and method."""
+    rows = []
+    for pair in pairs.to_dict("records"):
+        for method, prefix in ((NETWORK, "network_"), ("no-change", "no_change_")):
+            rows.append(
+                {
+                    "participant_id": pair["participant_id"],
+                    "session_id": pair["session_id"],
+                    "years": pair["years"],
+                    "method": method,
+                }
+                | {k: pair[prefix + k] for k in ("mae", "ssim", "dice_gm", "dice_wm", "dice_csf")}
+            )
+    return pd.DataFrame(rows)
+
+
+def horizon_bins(years: pd.Series) -> pd.Series:
+    """Horizons rounded to whole years, as labels ('1 y', '2 y', ...)."""
+    return years.round().astype(int).clip(lower=1).astype(str) + " y"
+
+
+def grouped(errors: pd.DataFrame, by: str) -> pd.DataFrame:
+    """Mean |error| (% TBV) and pair count per group, region and method."""
+    table = errors.groupby([by, "region", "method"], sort=True)["abs_error_pct_tbv"]
+    return table.agg(["count", "mean"]).reset_index().rename(
+        columns={"count": "n", "mean": "mean_pct_tbv"}
+    )
+
+
+def consistency_table(pairs: pd.DataFrame) -> pd.DataFrame:
+    """Network volumes measured on the forecast scan against the Jacobian integral (mL)."""
+    rows = []
+    for region in REGIONS:
+        measured, jacobian = pairs[f"measured_{region}"], pairs[f"jacobian_{region}"]
+        rows.append(
+            {
+                "region": region,
+                "mean_measured_ml": measured.mean(),
+                "mean_jacobian_ml": jacobian.mean(),
+                "mean_abs_difference_pct": (100 * (measured - jacobian).abs() / jacobian).mean(),
+            }
+        )
+    return pd.DataFrame(rows)

@@ -1,0 +1,163 @@
+"""``predictor demo``: every stage on a fictional memory clinic's phantom cohort.
+
+phantoms -> prepare -> train -> forecast -> compare -> trial-size, into one
+folder (settings in ``configs/demo.toml``)::
+
+    OUT/cohort/      BIDS phantom cohort with its ground truth and template
+    OUT/work/        prepared workspace (volumes.tsv)
+    OUT/model/       trained model, training log and loss curves
+    OUT/forecasts/   forecasts of every participant's baseline scan
+    OUT/report/      held-out comparison (report.html, TSVs, PNGs)
+    OUT/trial/       sample size per arm against enrichment (TSV, JSON, PNG)
+    OUT/prepare_accuracy.tsv   measured against true volumes (% error)
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+import pandas as pd
+
+from predictor.config import CONFIG_DIR, read_toml, settings_from_table
+
+STAGES = ("phantoms", "prepare", "train", "forecast", "compare", "trial-size")
+
+
+@dataclass(frozen=True)
+class DemoSettings:
+    """One demo size (a table of ``configs/demo.toml``)."""
+
+    participants: int = 40
+    size: str = "demo"
+    grid_mm: float = 3.0
+    train_config: str = "train.toml"
+    epochs: int = 8
+    max_pairs_per_epoch: int = 120
+    forecast_years: tuple[float, ...] = (1.0, 2.0, 5.0)
+    trial_region: str = "hippocampus_left"
+    trial_years: float = 2.0
+    trial_enrich: tuple[float, ...] = (0.5, 0.3)
+    seed: int = 0
+
+    @classmethod
+    def from_toml(cls, quick: bool) -> DemoSettings:
+        path = CONFIG_DIR / "demo.toml"
+        name = "quick" if quick else "full"
+        return settings_from_table(cls, read_toml(path)[name], f"{path} [{name}]")
+
+
+def prepare_accuracy(work: Path, cohort: Path) -> pd.DataFrame:
+    """Measured against true volumes per region: mean and largest absolute error (%)."""
+    from predictor.phantoms.generate import TRUTH
+    from predictor.volumes import REGIONS
+
+    measured = pd.read_csv(work / "volumes.tsv", sep="\t")
+    truth = pd.read_csv(cohort / TRUTH / "true_volumes.tsv", sep="\t")
+    both = measured.merge(truth, on=["participant_id", "session_id"], suffixes=("", "_true"))
+    rows = []
+    for region in REGIONS:
+        error = 100 * (both[region] - both[f"{region}_true"]) / both[f"{region}_true"]
+        rows.append(
+            {
+                "region": region,
+                "mean_error_pct": error.mean(),
+                "max_abs_error_pct": error.abs().max(),
+            }
+        )
+    return pd.DataFrame(rows)
+
+
+def run_demo(
+    out: str | os.PathLike[str],
+    quick: bool = False,
+    jobs: int = 2,
+    on_stage: Callable[[str, int | None], Callable[[], None]] | None = None,
+) -> dict:
+    """Run every stage into ``out``; returns paths and the stages' main tables.
+
+    ``on_stage(name, items)`` is called as each stage starts and returns a
+    function called after each item of that stage (participant, scan, epoch).
+    """
+    from predictor.cohort import read_cohort
+    from predictor.compare import compare
+    from predictor.files import write_tsv
+    from predictor.forecast import as_model
+    from predictor.forecast_io import forecast_cohort
+    from predictor.phantoms.generate import TEMPLATE, generate_cohort
+    from predictor.prepare import PrepareSettings, prepare_cohort
+    from predictor.report import write_report
+    from predictor.training import TrainConfig, train
+    from predictor.trials import Design, trial_report
+
+    settings = DemoSettings.from_toml(quick)
+    out = Path(out)
+    folders = {name: out / name for name in ("cohort", "work", "model", "forecasts", "report")}
+    folders["trial"] = out / "trial"
+
+    def stage(name, items):
+        return on_stage(name, items) if on_stage else None
+
+    generate_cohort(
+        folders["cohort"],
+        settings.participants,
+        settings.size,
+        settings.seed,
+        jobs=jobs,
+        force=True,
+        progress=stage("phantoms", settings.participants),
+    )
+    table = read_cohort(folders["cohort"])
+    prepare_cohort(
+        table,
+        folders["work"],
+        folders["cohort"] / TEMPLATE,
+        PrepareSettings.from_toml(grid_mm=settings.grid_mm),
+        jobs,
+        progress=stage("prepare", len(table)),
+    )
+    accuracy = prepare_accuracy(folders["work"], folders["cohort"])
+    write_tsv(out / "prepare_accuracy.tsv", accuracy)
+
+    raw = TrainConfig.from_toml(CONFIG_DIR / settings.train_config).to_dict()
+    raw["training"]["max_pairs_per_epoch"] = settings.max_pairs_per_epoch
+    epoch_done = stage("train", settings.epochs)
+    train(
+        folders["work"],
+        folders["model"],
+        TrainConfig.from_dict(raw, "demo"),
+        epochs=settings.epochs,
+        seed=settings.seed,
+        force=True,
+        on_epoch=(lambda row: epoch_done()) if epoch_done else None,
+    )
+    forecast_cohort(
+        folders["model"],
+        table,
+        folders["forecasts"],
+        settings.forecast_years,
+        jobs=jobs,
+        progress=stage("forecast", settings.participants),
+    )
+    test = as_model(folders["model"]).info["split"]["test"]
+    progress = stage("compare", len(test))
+    comparison = compare(folders["model"], folders["work"], jobs, progress=progress)
+    page = write_report(comparison, folders["report"])
+    stage("trial-size", None)
+    trial = trial_report(
+        folders["forecasts"],
+        folders["trial"],
+        settings.trial_region,
+        Design(years=settings.trial_years),
+        settings.trial_enrich,
+        observed=folders["work"],
+    )
+    return {
+        "folders": folders,
+        "report": page,
+        "prepare_accuracy": accuracy,
+        "tests": comparison.tests,
+        "trial": trial,
+    }

@@ -1,0 +1,306 @@
+"""The comparison report: TSVs of every number, PNG figures and one self-contained HTML page.
+
+The page is built from the TSVs as written (read back), and every number in
+it carries ``data-source``, ``data-row`` and ``data-column`` attributes
+naming the TSV cell it shows, so a reader (or a test) can trace it. Figures
+are embedded as base64 PNG: the page opens offline and makes no request.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from predictor.cautions import CAUTION
+from predictor.compare import FLOOR, JACOBIAN, NETWORK, NETWORKS, Comparison
+from predictor.figures import NETWORK_COLOUR, pyplot, save_figure
+from predictor.files import write_json, write_text, write_tsv
+from predictor.volumes import REGIONS
+
+TABLES = (
+    "summary",
+    "tests",
+    "errors",
+    "images",
+    "by_horizon",
+    "by_diagnosis",
+    "consistency",
+)
+FIGURES = {
+    "error_by_region.png": "Mean absolute forecast error by region and method (bars: bootstrap "
+    "95% CI over participants).",
+    "error_by_horizon.png": "Mean absolute error against the forecast horizon.",
+    "forecast_vs_observed.png": "Forecast against observed volume change (mL) per pair; the "
+    "diagonal is a perfect forecast.",
+    "examples.png": "Example test participants on the working grid (template space, white "
+    "matter = 1): baseline, real follow-up, network forecast and their difference.",
+}
+#: method colours: the network in teal, the floor in grey, regressions from a muted palette
+PALETTE = ["#b8651b", "#6b4c9a", "#c2a83e", "#4c7fb8", "#9a4c6b", "#7a9a4c", "#5c5c5c"]
+
+
+def method_colours(methods) -> dict[str, str]:
+    others = [m for m in methods if m not in (*NETWORKS, FLOOR)]
+    colours = {NETWORK: NETWORK_COLOUR, JACOBIAN: "#2fb3a8", FLOOR: "#a0a0a0"}
+    colours |= {m: PALETTE[i % len(PALETTE)] for i, m in enumerate(others)}
+    return colours
+
+
+def write_report(comparison: Comparison, out: str | Path) -> Path:
+    """Write TSVs, figures, ``data.json`` and ``report.html`` into ``out``; returns the page."""
+    out = Path(out)
+    for name in TABLES:
+        write_tsv(out / f"{name}.tsv", getattr(comparison, name))
+    write_json(out / "data.json", comparison.data)
+    tables = {name: pd.read_csv(out / f"{name}.tsv", sep="\t") for name in TABLES}
+    figures = {
+        "error_by_region.png": figure_error_by_region(tables["summary"]),
+        "error_by_horizon.png": figure_error_by_horizon(tables["by_horizon"]),
+        "forecast_vs_observed.png": figure_forecast_vs_observed(
+            tables["errors"], tables["tests"]
+        ),
+    }
+    if comparison.examples:
+        figures["examples.png"] = figure_examples(comparison.examples)
+    for name, figure in figures.items():
+        save_figure(figure, out / name)
+    page = render_page(tables, comparison.data, [n for n in FIGURES if n in figures], out)
+    return write_text(out / "report.html", page)
+
+
+# --- figures ------------------------------------------------------------------------------
+def figure_error_by_region(summary: pd.DataFrame):
+    plt = pyplot()
+    methods = list(dict.fromkeys(summary["method"]))
+    colours = method_colours(methods)
+    figure, axis = plt.subplots(figsize=(12, 4.5))
+    width = 0.8 / len(methods)
+    for k, method in enumerate(methods):
+        rows = summary[summary["method"] == method].set_index("region").loc[list(REGIONS)]
+        x = np.arange(len(REGIONS)) + (k - (len(methods) - 1) / 2) * width
+        low = (rows["mean_pct_tbv"] - rows["ci_low_pct_tbv"]).clip(lower=0)
+        high = (rows["ci_high_pct_tbv"] - rows["mean_pct_tbv"]).clip(lower=0)
+        axis.bar(x, rows["mean_pct_tbv"], width, color=colours[method], label=method,
+                 yerr=[low.fillna(0), high.fillna(0)], capsize=2)  # fmt: skip
+    axis.set_xticks(np.arange(len(REGIONS)), [r.replace("_", " ") for r in REGIONS])
+    axis.set_ylabel("mean |error| (% of total brain volume)")
+    axis.set_yscale("log")
+    axis.legend(fontsize=7, ncol=3)
+    axis.grid(alpha=0.3, axis="y")
+    figure.suptitle("held-out forecast error by region (research use only)", fontsize=11)
+    figure.tight_layout()
+    return figure
+
+
+def figure_error_by_horizon(by_horizon: pd.DataFrame):
+    plt = pyplot()
+    colours = method_colours(dict.fromkeys(by_horizon["method"]))
+    figure, axes = plt.subplots(2, 4, figsize=(13, 6), sharex=True)
+    for axis, region in zip(np.ravel(axes), REGIONS, strict=True):
+        own = by_horizon[by_horizon["region"] == region]
+        for method, rows in own.groupby("method", sort=False):
+            years = rows["horizon"].str.replace(" y", "").astype(int)
+            order = np.argsort(years.to_numpy())
+            width = 2 if method in NETWORKS else 1
+            axis.plot(years.to_numpy()[order], rows["mean_pct_tbv"].to_numpy()[order], "o-",
+                      color=colours[method], label=method, lw=width)  # fmt: skip
+        axis.set_title(region.replace("_", " "), fontsize=10)
+        axis.set_xlabel("horizon (years)", fontsize=8)
+        axis.set_ylabel("mean |error| (% TBV)", fontsize=8)
+        axis.grid(alpha=0.3)
+    np.ravel(axes)[0].legend(fontsize=6)
+    figure.suptitle("forecast error against horizon (research use only)", fontsize=11)
+    figure.tight_layout()
+    return figure
+
+
+def figure_forecast_vs_observed(errors: pd.DataFrame, tests: pd.DataFrame):
+    plt = pyplot()
+    figure, axes = plt.subplots(2, 4, figsize=(13, 6.5))
+    best = tests.groupby("region")["best_regression"].first()
+    colours = method_colours(dict.fromkeys(errors["method"]))
+    for axis, region in zip(np.ravel(axes), REGIONS, strict=True):
+        own = errors[errors["region"] == region]
+        for method in (best[region], NETWORK, JACOBIAN):
+            rows = own[own["method"] == method]
+            observed = rows["observed_ml"] - rows["baseline_ml"]
+            forecast = rows["forecast_ml"] - rows["baseline_ml"]
+            axis.scatter(observed, forecast, s=14, color=colours[method], label=method, alpha=0.8)
+        limits = own[["observed_ml", "forecast_ml"]].sub(own["baseline_ml"], axis=0)
+        low, high = float(limits.min().min()), float(limits.max().max())
+        axis.plot([low, high], [low, high], color="#444444", lw=0.8)
+        axis.set_title(region.replace("_", " "), fontsize=10)
+        axis.set_xlabel("observed change (mL)", fontsize=8)
+        axis.set_ylabel("forecast change (mL)", fontsize=8)
+        axis.legend(fontsize=6)
+        axis.grid(alpha=0.3)
+    figure.suptitle("forecast against observed change (research use only)", fontsize=11)
+    figure.tight_layout()
+    return figure
+
+
+def figure_examples(examples: list):
+    """``examples``: (title, baseline, follow-up, forecast) working-grid T1 arrays (X, Y, Z)."""
+    plt = pyplot()
+    figure, axes = plt.subplots(len(examples), 4, figsize=(12, 3.2 * len(examples)), squeeze=False)
+    for row, (title, baseline, follow, ahead) in enumerate(examples):
+        k = baseline.shape[2] // 2 + 2
+        panels = [
+            ("baseline", baseline, "gray", (0, 1.3)),
+            ("real follow-up", follow, "gray", (0, 1.3)),
+            ("network forecast", ahead, "gray", (0, 1.3)),
+            ("forecast - follow-up", ahead - follow, "BrBG", (-0.3, 0.3)),
+        ]
+        for column, (name, volume, colour_map, (low, high)) in enumerate(panels):
+            axis = axes[row, column]
+            shown = axis.imshow(volume[:, :, k].T, origin="lower", cmap=colour_map, vmin=low,
+                                vmax=high, interpolation="nearest")  # fmt: skip
+            axis.set_xticks([])
+            axis.set_yticks([])
+            axis.set_title(f"{name}" if row else f"{name}\n", fontsize=9)
+            if column == 0:
+                axis.set_ylabel(title, fontsize=8)
+        figure.colorbar(shown, ax=axes[row, 3], shrink=0.8, label="normalised intensity")
+    figure.suptitle("example test participants, axial slice (research use only)", fontsize=11)
+    return figure
+
+
+# --- the page -----------------------------------------------------------------------------
+def cell(value, source: str, row: int, column: str) -> str:
+    """A table cell showing a TSV value, tagged with where it comes from."""
+    shown = format_number(value) if isinstance(value, float | int | np.number) else value
+    return (
+        f'<td data-source="{source}" data-row="{row}" data-column="{html.escape(column)}">'
+        f"{html.escape(str(shown))}</td>"
+    )
+
+
+def format_number(value) -> str:
+    """Four significant digits (NaN shown as 'n/a')."""
+    if value is None or (isinstance(value, float) and np.isnan(value)):
+        return "n/a"
+    return f"{float(value):.4g}"
+
+
+def table_html(frame: pd.DataFrame, source: str, columns: list[str] | None = None) -> str:
+    columns = columns or list(frame.columns)
+    head = "".join(f"<th>{html.escape(c.replace('_', ' '))}</th>" for c in columns)
+    body = []
+    for index, row in frame.iterrows():
+        cells = "".join(cell(row[c], source, int(index), c) for c in columns)
+        body.append(f"<tr>{cells}</tr>")
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def verdicts(tests: pd.DataFrame) -> str:
+    """Plain-words statement of the winner per region, numbers tagged with their TSV cells."""
+    items = []
+    for region, rows in tests.groupby("region", sort=False):
+        parts = []
+        for index, row in rows.iterrows():
+
+            def tagged(column, index=index, row=row):
+                return (
+                    f'<span data-source="tests.tsv" data-row="{index}" data-column="{column}">'
+                    f"{format_number(row[column])}</span>"
+                )
+
+            label = VARIANT_WORDS[row["network"]]
+            verb = "beats" if row["winner"] == row["network"] else "does not beat"
+            parts.append(
+                f"{label} {verb} the best regression ({html.escape(row['best_regression'])}): "
+                f"{tagged('network_mean_pct_tbv')}% against "
+                f"{tagged('best_regression_mean_pct_tbv')}% of total brain volume "
+                f"(Wilcoxon p = {tagged('p_value')}, {tagged('n_pairs')} pairs)"
+            )
+        best = rows.loc[rows["network_mean_pct_tbv"].idxmin()]
+        if best["network_mean_pct_tbv"] <= best["best_regression_mean_pct_tbv"]:
+            headline = f"<b>{html.escape(best['network'])}</b> wins"
+        else:
+            headline = f"<b>{html.escape(best['best_regression'])}</b> wins"
+        items.append(
+            f"<li><b>{region.replace('_', ' ')}</b>: {headline}. " + "; ".join(parts) + ".</li>"
+        )
+    return "<ul>" + "".join(items) + "</ul>"
+
+
+VARIANT_WORDS = {
+    NETWORK: "The network's forecast scan, measured like a real scan,",
+    JACOBIAN: "the network's own volume forecast (Jacobian integral)",
+}
+
+
+STYLE = """
+body { font-family: sans-serif; margin: 2em auto; max-width: 1150px; color: #1d2a2a; }
+h1 { color: #1b5f5a; } h2 { color: #1b5f5a; border-bottom: 1px solid #c8d8d6; }
+.caution { background: #fbeee6; border-left: 6px solid #b8651b; padding: 0.6em 1em; }
+table { border-collapse: collapse; font-size: 0.82em; margin: 0.6em 0 1.2em; }
+th, td { border: 1px solid #c8d8d6; padding: 2px 6px; text-align: right; }
+th { background: #e8f1f0; } td:first-child, td:nth-child(2) { text-align: left; }
+img { max-width: 100%; border: 1px solid #c8d8d6; margin: 0.4em 0; }
+figcaption { font-size: 0.85em; color: #4a5a5a; }
+"""
+
+
+def render_page(tables: dict[str, pd.DataFrame], data: dict, figures: list[str], out: Path):
+    summary, tests = tables["summary"], tables["tests"]
+    participants = data["participants"]
+    images = tables["images"].groupby("method").mean(numeric_only=True).reset_index()
+    write_tsv(out / "images_mean.tsv", images)
+    images = pd.read_csv(out / "images_mean.tsv", sep="\t")
+    floor_note = (
+        f"<p>The row <i>{FLOOR}</i> is the phantom generator's best forecast from what is "
+        "visible at baseline: no method can be expected to do better on average.</p>"
+        if data.get("phantom_floor")
+        else ""
+    )
+    parts = [
+        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+        "<title>predictor: held-out comparison</title>",
+        f"<style>{STYLE}</style></head><body>",
+        "<h1>Held-out comparison: image forecast against volume regressions</h1>",
+        f"<p class='caution'><b>Caution.</b> {html.escape(CAUTION)}</p>",
+        "<h2>Data and split</h2>",
+        f"<p>Model <code>{html.escape(data['model'])}</code>. Participants were split at the "
+        f"participant level: {participants['train']} for training, "
+        f"{participants['validation']} for validation and {participants['test']} for this "
+        f"test. The regression forecasters were refitted on the training participants only. "
+        f"{data['test_pairs']} baseline-to-follow-up pairs of the test participants were "
+        f"forecast, at horizons of {data['horizon_years'][0]:.2f} to "
+        f"{data['horizon_years'][1]:.2f} years. The network's volumes were measured on its "
+        "forecast scans by the same measurement as the real follow-ups.</p>",
+        "<h2>Which method wins each region</h2>",
+        verdicts(tests),
+        "<h2>Forecast error (% of total brain volume)</h2>",
+        floor_note,
+        table_html(summary, "summary.tsv"),
+        "<h2>Network against the best regression (paired Wilcoxon signed-rank test)</h2>",
+        table_html(tests, "tests.tsv"),
+        "<h2>Image agreement with the real follow-up (working grid, inside the brain)</h2>",
+        table_html(images, "images_mean.tsv"),
+        "<h2>By horizon</h2>",
+        table_html(tables["by_horizon"], "by_horizon.tsv"),
+        "<h2>By diagnosis</h2>",
+        table_html(tables["by_diagnosis"], "by_diagnosis.tsv"),
+        "<h2>Consistency: measured against Jacobian-integral network volumes</h2>",
+        table_html(tables["consistency"], "consistency.tsv"),
+        "<h2>Figures</h2>",
+    ]
+    for name in figures:
+        encoded = base64.b64encode((out / name).read_bytes()).decode("ascii")
+        parts.append(
+            f"<figure><img alt='{html.escape(name)}' src='data:image/png;base64,{encoded}'>"
+            f"<figcaption>{html.escape(FIGURES[name])}</figcaption></figure>"
+        )
+    parts.append(
+        f"<p class='caution'>{html.escape(CAUTION)} Every number on this page is in the TSV "
+        "files beside it (data-source attributes name the file, row and column).</p>"
+    )
+    parts.append(f"<script type='application/json' id='data'>{json.dumps(data)}</script>")
+    parts.append("</body></html>")
+    return "\n".join(parts)
