@@ -145,7 +145,7 @@ def run_demo(
     progress = stage("compare", len(test))
     comparison = compare(folders["model"], folders["work"], jobs, progress=progress)
     page = write_report(comparison, folders["report"])
-    stage("trial-size", None)
+    trial_done = stage("trial-size", 1)
     trial = trial_report(
         folders["forecasts"],
         folders["trial"],
@@ -154,6 +154,8 @@ def run_demo(
         settings.trial_enrich,
         observed=folders["work"],
     )
+    if trial_done:
+        trial_done()
     return {
         "folders": folders,
         "report": page,

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import pytest
 from typer.testing import CliRunner
 
 from predictor.cli import app
@@ -34,11 +35,23 @@ def test_unknown_size_is_a_clear_error(tmp_path):
     assert "size 'huge' is not one of demo, tiny" in result.output
 
 
-def test_prepare_volumes_and_demo_quick(tmp_path):
+@pytest.mark.slow
+def test_demo_quick_runs_every_stage_then_prepare_reuses_its_cache(tmp_path):
     out = tmp_path / "demo"
     result = runner.invoke(app, ["demo", str(out), "--quick"])
     assert result.exit_code == 0, result.output
-    assert "Measured against true volumes" in result.output
+    assert "measured against true volumes" in result.output
+    assert "Research use only" in result.output
+    for path in (
+        "model/weights.pt",
+        "forecasts/forecasts.tsv",
+        "report/report.html",
+        "report/tests.tsv",
+        "trial/enrichment.tsv",
+        "trial/enrichment.png",
+    ):
+        assert (out / path).is_file(), path
+    assert f"report: {out / 'report' / 'report.html'}" in result.output
     listing = runner.invoke(app, ["volumes", str(out / "work"), "--json"])
     assert listing.exit_code == 0
     import json

@@ -112,12 +112,20 @@ def anatomical_forecast():
     settings = PrepareSettings.from_toml(checks={"brain_ml": [1.0, 5000.0]})
     registration = Registration(template_to_native, -1.0, 0, "given")
     prepared = prepare_scan(scan, cached_template("mni152"), settings, None, registration)
-    result = forecast(model, scan, 70.0, "F", "CN", [2.0], prepared=prepared)
-    return model, scan, result, np.array(velocity)
+    return model, scan, prepared, np.array(velocity)
 
 
-def test_anatomical_nii_outputs_keep_shape_affine_and_orientation(anatomical_forecast, tmp_path):
-    model, scan, result, velocity = anatomical_forecast
+@pytest.mark.parametrize(
+    ("interpolation", "reference", "margin", "tolerance"),
+    # SimpleITK's B-spline mirrors the image at its border where scipy's prefilter repeats the
+    # edge; the difference decays by a factor 0.27 a voxel, so compare further inside
+    [("linear", sitk.sitkLinear, 3, 1e-5), ("cubic", sitk.sitkBSpline, 8, 1e-4)],
+)
+def test_anatomical_nii_outputs_keep_shape_affine_and_orientation(
+    anatomical_forecast, tmp_path, interpolation, reference, margin, tolerance
+):
+    model, scan, prepared, velocity = anatomical_forecast
+    result = forecast(model, scan, 70.0, "F", "CN", [2.0], prepared, interpolation)
     provenance = write_forecast(result, model, tmp_path, "anatomical", "")
     source = nib.load(NIBABEL_ANATOMICAL)
     assert nib.aff2axcodes(source.affine) == ("L", "A", "S")
@@ -139,14 +147,12 @@ def test_anatomical_nii_outputs_keep_shape_affine_and_orientation(anatomical_for
     # (a TranslationTransform maps an output point p to p + offset, in LPS mm)
     moving = sitk.ReadImage(str(NIBABEL_ANATOMICAL), sitk.sitkFloat32)
     offset = (expected_mm * np.array([-1.0, -1.0, 1.0])).tolist()
-    reference = sitk.Resample(
-        moving, moving, sitk.TranslationTransform(3, offset), sitk.sitkLinear, 0.0
-    )
+    expected = sitk.Resample(moving, moving, sitk.TranslationTransform(3, offset), reference, 0.0)
     written = sitk.ReadImage(str(tmp_path / "anatomical_desc-forecast24mo_T1w.nii.gz"))
-    difference = sitk.GetArrayFromImage(written) - sitk.GetArrayFromImage(reference)
-    inner = (slice(4, -4),) * 3  # away from samples that leave the field of view
+    difference = sitk.GetArrayFromImage(written) - sitk.GetArrayFromImage(expected)
+    inner = (slice(margin, -margin),) * 3
     scale = float(sitk.GetArrayFromImage(moving).max())
-    assert np.abs(difference[inner]).max() < 1e-3 * scale
+    assert np.abs(difference[inner]).max() < tolerance * scale
 
 
 @pytest.mark.slow

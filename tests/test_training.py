@@ -253,5 +253,5 @@ def test_train_command_refuses_to_overwrite(tiny_workspace, tmp_path):
     assert "Research use only" in first.output
     again = runner.invoke(app, arguments)
     assert again.exit_code == 2 and "--resume" in again.output and "Traceback" not in again.output
-    missing = runner.invoke(app, ["train", str(tmp_path / "nowhere"), str(model)])
+    missing = runner.invoke(app, ["train", str(tmp_path / "nowhere"), str(tmp_path / "other")])
     assert missing.exit_code == 2 and "not a prepared workspace" in missing.output

@@ -1,0 +1,147 @@
+"""Held-out comparison and its report (predictor.compare, predictor.report)."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import subprocess
+from html.parser import HTMLParser
+
+import numpy as np
+import pandas as pd
+import pytest
+from PIL import Image
+
+from predictor.compare import NETWORK, bootstrap_ci, compare, ssim_map
+from predictor.errors import DataError
+from predictor.report import format_number, write_report
+from predictor.volumes import REGIONS
+
+
+@pytest.fixture(scope="module")
+def comparison(tiny_model, tiny_workspace, tmp_path_factory):
+    result = compare(tiny_model, tiny_workspace, jobs=2)
+    out = tmp_path_factory.mktemp("report")
+    write_report(result, out)
+    return result, out
+
+
+class Cells(HTMLParser):
+    """Collects tagged numbers (data-source) and image sources of a page."""
+
+    def __init__(self):
+        super().__init__()
+        self.cells, self.images, self.links, self.current = [], [], [], None
+
+    def handle_starttag(self, tag, attrs):
+        attributes = dict(attrs)
+        if "data-source" in attributes:
+            self.current = attributes | {"text": ""}
+        if tag == "img":
+            self.images.append(attributes.get("src", ""))
+        for key in ("href", "src"):
+            if key in attributes and tag != "img":
+                self.links.append(attributes[key])
+
+    def handle_data(self, data):
+        if self.current is not None:
+            self.current["text"] += data
+
+    def handle_endtag(self, tag):
+        if self.current is not None and tag in ("td", "span"):
+            self.cells.append(self.current)
+            self.current = None
+
+
+def test_every_number_on_the_page_equals_its_tsv_value(comparison):
+    _, out = comparison
+    parser = Cells()
+    parser.feed((out / "report.html").read_text())
+    assert len(parser.cells) > 200
+    tables = {}
+    for cell in parser.cells:
+        source = cell["data-source"]
+        if source not in tables:
+            tables[source] = pd.read_csv(out / source, sep="\t")
+        value = tables[source].loc[int(cell["data-row"]), cell["data-column"]]
+        if isinstance(value, str):
+            assert cell["text"] == value
+        else:
+            assert cell["text"] == format_number(value), (source, cell)
+
+
+def test_no_change_error_is_exactly_the_observed_change(comparison):
+    result, _ = comparison
+    still = result.errors[result.errors["method"] == "no-change"]
+    assert len(still) == len(REGIONS) * result.data["test_pairs"]
+    np.testing.assert_array_equal(still["forecast_ml"], still["baseline_ml"])
+    np.testing.assert_array_equal(still["error_ml"], still["baseline_ml"] - still["observed_ml"])
+
+
+def test_page_is_self_contained_and_names_the_winners(comparison):
+    result, out = comparison
+    page = (out / "report.html").read_text()
+    parser = Cells()
+    parser.feed(page)
+    assert parser.images and all(src.startswith("data:image/png;base64,") for src in parser.images)
+    assert not parser.links  # no stylesheet, script or link is fetched
+    assert "http://" not in page and "https://" not in page
+    for region in REGIONS:
+        assert f"<b>{region.replace('_', ' ')}</b>:" in page and "wins" in page
+    assert "Research use only" in page
+    assert set(result.tests["region"]) == set(REGIONS)
+    assert (result.tests["network"].unique() == [NETWORK, "network-jacobian"]).all()
+
+
+def test_a_leaked_split_fails_loudly(tiny_model, tiny_workspace, tmp_path):
+    leaked = tmp_path / "leaked"
+    shutil.copytree(tiny_model, leaked)
+    info = json.loads((leaked / "model.json").read_text())
+    info["split"]["train"].append(info["split"]["test"][0])
+    (leaked / "model.json").write_text(json.dumps(info))
+    with pytest.raises(DataError, match=r"leaked split: participant\(s\) sub-\d+ are in both"):
+        compare(leaked, tiny_workspace)
+
+
+def test_ssim_matches_scikit_image(rng):
+    # scikit-image's structural_similarity (Gaussian window, sigma 1.5, population covariance)
+    from skimage.metrics import structural_similarity
+
+    a = rng.normal(size=(20, 22, 18))
+    b = a + 0.3 * rng.normal(size=a.shape)
+    _, expected = structural_similarity(
+        a, b, data_range=4.0, gaussian_weights=True, sigma=1.5,
+        use_sample_covariance=False, full=True,
+    )  # fmt: skip
+    ours = ssim_map(a, b, data_range=4.0)
+    inner = (slice(6, -6),) * 3  # border handling may differ
+    np.testing.assert_allclose(ours[inner], expected[inner], atol=1e-6)
+
+
+def test_cluster_bootstrap_of_a_constant_is_that_constant(rng):
+    low, high = bootstrap_ci(np.full(12, 0.3), np.repeat(np.arange(4), 3), rng)
+    assert low == pytest.approx(0.3) and high == pytest.approx(0.3)
+    low, high = bootstrap_ci(rng.normal(size=200), np.arange(200), rng)
+    assert low < 0 < high
+
+
+def chromium() -> str | None:
+    return shutil.which("chromium") or shutil.which("chromium-browser")
+
+
+@pytest.mark.skipif(
+    chromium() is None, reason="Debian's chromium is not installed (.ci/run installs it)"
+)
+def test_report_renders_in_headless_chromium(comparison, tmp_path):
+    _, out = comparison
+    shot = tmp_path / "page.png"
+    command = [
+        chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+        "--no-first-run", "--disable-background-networking", "--disable-component-update",
+        "--disable-sync", f"--user-data-dir={tmp_path / 'profile'}", "--hide-scrollbars",
+        "--window-size=1200,2400", f"--screenshot={shot}", (out / "report.html").as_uri(),
+    ]  # fmt: skip
+    subprocess.run(command, capture_output=True, timeout=120, check=True)
+    pixels = np.asarray(Image.open(shot).convert("L"), dtype=float)
+    assert pixels.shape[0] > 1000
+    assert pixels.std() > 10  # text, tables and figures, not a blank page
