@@ -30,7 +30,7 @@ STAGES = ("phantoms", "prepare", "train", "forecast", "compare", "trial-size")
 class DemoSettings:
     """One demo size (a table of ``configs/demo.toml``)."""
 
-    participants: int = 40
+    participants: int = 30
     size: str = "demo"
     grid_mm: float = 3.0
     train_config: str = "train.toml"

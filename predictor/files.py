@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import fcntl
 import hashlib
 import json
 import os
@@ -55,6 +56,24 @@ def atomic_path(destination: str | os.PathLike[str]) -> Iterator[Path]:
     except BaseException:
         temporary.unlink(missing_ok=True)
         raise
+
+
+@contextlib.contextmanager
+def exclusive(lock: str | os.PathLike[str]) -> Iterator[None]:
+    """Hold an exclusive advisory lock (``fcntl.flock``) on the file ``lock``; wait for it.
+
+    Two runs working on the same output (a cache entry, a participant's
+    forecast) take turns: the second finds the first one's complete result.
+    The lock file itself stays (it is empty); the lock ends with the process.
+    """
+    lock = Path(lock)
+    lock.parent.mkdir(parents=True, exist_ok=True)
+    with open(lock, "a") as handle:
+        fcntl.flock(handle, fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(handle, fcntl.LOCK_UN)
 
 
 def atomic_write(destination: str | os.PathLike[str], writer: Callable[[Path], None]) -> Path:

@@ -121,7 +121,7 @@ def check_request(
 
 def prepare_for(model: TrainedModel, scan: Scan) -> PreparedScan:
     """Prepare a scan with the model's template and settings, checking the working grid."""
-    settings = PrepareSettings(**model.info["prepare_settings"])
+    settings = PrepareSettings.from_dict(model.info["prepare_settings"])
     prepared = prepare_scan(scan, cached_template(model.info["template"]), settings)
     check_grid(model, prepared)
     return prepared

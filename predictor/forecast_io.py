@@ -29,8 +29,8 @@ import numpy as np
 import pandas as pd
 
 from predictor.cautions import CAUTION
-from predictor.errors import DataError, PredictorError
-from predictor.files import redact_folders, sha256_file, write_json, write_tsv
+from predictor.errors import DataError, PredictorError, ScanError
+from predictor.files import exclusive, redact_folders, sha256_file, write_json, write_tsv
 from predictor.forecast import ForecastResult, as_model, forecast
 from predictor.modelstore import TrainedModel, package_versions
 from predictor.nifti import save_like
@@ -210,14 +210,17 @@ def forecast_one(
         stem = f"{identifiers['participant_id']}_{identifiers['session_id']}"
     else:
         folder, stem = out, scan_stem(image.name)
-    checksum = sha256_file(image) if image.is_file() else ""
+    if not image.is_file():
+        raise ScanError(f"{image}: file not found")
+    checksum = sha256_file(image)
     path = folder / f"{stem}_{PROVENANCE}"
     condition = {"age": float(age), "diagnosis": diagnosis}
-    if checksum and is_complete(path, model.checksum, checksum, horizons, condition):
-        return json.loads(path.read_text()), True
-    result = forecast(model, image, age, sex, diagnosis, horizons)
-    write_description(out)
-    return write_forecast(result, model, folder, stem, checksum, identifiers), False
+    with exclusive(folder / f".{stem}.lock"):  # a concurrent run on this scan waits, then skips
+        if is_complete(path, model.checksum, checksum, horizons, condition):
+            return json.loads(path.read_text()), True
+        result = forecast(model, image, age, sex, diagnosis, horizons)
+        write_description(out)
+        return write_forecast(result, model, folder, stem, checksum, identifiers), False
 
 
 def _cohort_task(model_dir: str, row: dict, horizons, out: str, threads: int) -> dict:

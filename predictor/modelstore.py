@@ -106,6 +106,13 @@ def read_model_json(folder: str | os.PathLike[str]) -> dict:
         raise ModelError(f"{path}: missing key(s) {', '.join(missing)}")
     if info["format"] != FORMAT:
         raise ModelError(f"{path}: model format {info['format']} is not {FORMAT}")
+    from predictor.pairs import PRIOR_REGIONS
+
+    if info.get("regions") != list(PRIOR_REGIONS):
+        raise ModelError(
+            f"{path}: made for the regions {info.get('regions')}, not this version's "
+            f"{list(PRIOR_REGIONS)}"
+        )
     return info
 
 

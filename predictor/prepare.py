@@ -37,7 +37,7 @@ import pandas as pd
 from predictor import __version__
 from predictor.config import CONFIG_DIR, read_toml
 from predictor.errors import ConfigError, PredictorError, ScanError
-from predictor.files import redact_folders, sha256_file, write_json, write_tsv
+from predictor.files import exclusive, redact_folders, sha256_file, write_json, write_tsv
 from predictor.nifti import Scan, load_scan, save_array
 from predictor.parallel import run_all
 from predictor.preprocess import (
@@ -86,6 +86,17 @@ class PrepareSettings:
             return cls(**raw)
         except TypeError as error:
             raise ConfigError(f"prepare settings: {error}") from error
+
+    @classmethod
+    def from_dict(cls, stored: dict) -> PrepareSettings:
+        """Settings recorded by a run (e.g. in model.json), completed with today's defaults."""
+        defaults = asdict(cls.from_toml())
+        merged = {
+            key: defaults[key] | value if isinstance(value, dict) else value
+            for key, value in stored.items()
+            if key in defaults
+        }
+        return cls(**(defaults | merged))
 
     def fingerprint(self) -> str:
         return json.dumps(asdict(self), sort_keys=True)
@@ -138,6 +149,10 @@ def prepare_scan(
         registration = register_affine(corrected, affine, template, settings.registration)
     if registration.metric > float(settings.registration["max_metric"]):
         raise ScanError(f"registration did not converge (metric {registration.metric:.3f})")
+    scale = abs(float(np.linalg.det(registration.template_to_native[:3, :3])))
+    low, high = settings.registration["volume_scale"]
+    if not low <= scale <= high:
+        raise ScanError(f"registration implausible: template volume scaled by {scale:.2f}")
     native_to_template = np.linalg.inv(registration.template_to_native)
 
     def to_native(array):
@@ -255,12 +270,21 @@ def parse_shard(text: str | None) -> tuple[int, int]:
 
 
 def _run_scan(row: dict, folder: str, template_spec: str, settings: PrepareSettings) -> dict:
-    """Prepare one scan into its cache folder; return its result or its failure reason."""
+    """Prepare one scan into its cache folder; return its result or its failure reason.
+
+    The entry is locked while it is checked and written, so two runs on one
+    workspace take turns on a scan instead of deleting each other's work.
+    """
     folder = Path(folder)
-    if (folder / RESULT).is_file():
-        return json.loads((folder / RESULT).read_text()) | {"cached": True}
-    if folder.exists():  # a half-written entry from an interrupted run is never trusted
-        shutil.rmtree(folder)
+    with exclusive(folder.parent / f".{folder.name}.lock"):
+        if (folder / RESULT).is_file():
+            return json.loads((folder / RESULT).read_text()) | {"cached": True}
+        if folder.exists():  # a half-written entry from an interrupted run is never trusted
+            shutil.rmtree(folder)
+        return _prepare_entry(row, folder, template_spec, settings)
+
+
+def _prepare_entry(row: dict, folder: Path, template_spec: str, settings: PrepareSettings):
     try:
         scan = load_scan(row["image"])
         mask = None

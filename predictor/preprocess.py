@@ -99,7 +99,7 @@ def register_affine(
         "shrink_factors": settings["shrink_factors"][:-1],
         "smoothing_mm": settings["smoothing_mm"][:-1],
     }
-    first, _ = _run_registration(fixed, fixed_mask, moving, similarity, coarse)
+    first, first_method = _run_registration(fixed, fixed_mask, moving, similarity, coarse)
     start = sitk.AffineTransform(3)
     start.SetCenter(similarity.GetCenter())
     first_similarity = (
@@ -110,8 +110,20 @@ def register_affine(
     start.SetMatrix(first_similarity.GetMatrix())
     start.SetTranslation(first_similarity.GetTranslation())
     final, method = _run_registration(fixed, fixed_mask, moving, start, settings)
+    matrix, kept = affine_to_matrix(final), affine_to_matrix(first)
+    change = abs(np.linalg.det(matrix[:3, :3]) / np.linalg.det(kept[:3, :3]))
+    limit = float(settings["max_affine_volume_change"])
+    if not 1 / limit <= change <= limit:
+        # the affine stage should refine shear and anisotropy, not the overall size that the
+        # similarity stage already found: a large change in volume means it went astray
+        return Registration(
+            kept,
+            float(first_method.GetMetricValue()),
+            int(first_method.GetOptimizerIteration()),
+            f"affine stage rejected (volume x{change:.2f}); similarity result kept",
+        )
     return Registration(
-        affine_to_matrix(final),
+        matrix,
         float(method.GetMetricValue()),
         int(method.GetOptimizerIteration()),
         method.GetOptimizerStopConditionDescription(),

@@ -2,7 +2,10 @@
 
 One epoch visits the training pairs in a seeded order, in batches of
 ``batch_pairs``; validation runs after every epoch; training stops early when
-the validation loss has not improved for ``patience`` epochs. Every draw
+the validation loss has not improved for ``patience`` epochs. Early stopping
+(and the choice of the best weights) follows ``monitor``: by default the
+validation pairs' mean volume error against their measured follow-ups, the
+quantity a user of the forecasts cares about. Every draw
 (split, order, augmentation, initial weights) comes from the seed and the
 epoch and batch numbers, so ``--resume`` from the last checkpoint reaches the
 same weights, bit for bit, as an uninterrupted run.
@@ -67,6 +70,9 @@ from predictor.phantoms.participants import seeded_rng
 from predictor.regression import save_mixed_model
 
 TERMS = ("similarity", "smoothness", "monotone", "prior")
+#: validation figures that early stopping can follow: the mean volume error of the forecast
+#: against the measured follow-ups (% of brain volume), or the weighted validation loss
+MONITORS = ("val_volume_error", "val_total")
 
 
 @dataclass(frozen=True)
@@ -84,8 +90,11 @@ class TrainingSettings:
     flip_probability: float = 0.5
     seed: int = 0
     threads: int = 0
+    monitor: str = "val_volume_error"  # early stopping and best weights follow this
 
     def __post_init__(self):
+        if self.monitor not in MONITORS:
+            raise ValueError(f"monitor must be one of {list(MONITORS)}; '{self.monitor}' was given")
         if self.epochs < 1 or self.batch_pairs < 1 or self.patience < 1:
             raise ValueError("epochs, batch_pairs and patience must be >= 1")
         if len(self.split) != 3 or abs(sum(self.split) - 1) > 1e-6 or min(self.split) < 0:
@@ -328,7 +337,7 @@ def train(
     run, prior, _ = prepare_run(work, config, seed)
     network = _initial_network(run.info, seed)
     optimiser = torch.optim.Adam(network.parameters(), lr=settings.learning_rate)
-    state = {"epoch": 0, "best_loss": float("inf"), "best_epoch": 0, "bad_epochs": 0}
+    state = {"epoch": 0, "best_monitored": float("inf"), "best_epoch": 0, "bad_epochs": 0}
     history: list[dict] = []
     if resume and checkpoint_path.exists():
         saved = load_tensors(checkpoint_path)
@@ -400,11 +409,11 @@ def train(
         row |= {f"train_{name}": value / max(len(batches), 1) for name, value in sums.items()}
         if not run.pairs["validation"].empty:
             row |= evaluate(network, run, store, rank, world)
-        monitored = row.get("val_total", row["train_total"])
-        improved = monitored < state["best_loss"]
+        monitored = row.get(settings.monitor, row["train_total"])
+        improved = monitored < state["best_monitored"]
         state["epoch"] = epoch + 1
         if improved:
-            state |= {"best_loss": monitored, "best_epoch": epoch + 1, "bad_epochs": 0}
+            state |= {"best_monitored": monitored, "best_epoch": epoch + 1, "bad_epochs": 0}
         else:
             state["bad_epochs"] += 1
         row["seconds"] = time.perf_counter() - started
