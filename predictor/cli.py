@@ -97,6 +97,9 @@ def phantoms(
     typer.echo("Synthetic phantoms: invented anatomy, not images of any person.")
 
 
+AllowOutsideOption = Annotated[
+    bool, typer.Option(help="Accept image paths outside the cohort folder.")
+]
 TemplateOption = Annotated[
     str,
     typer.Option(
@@ -120,9 +123,7 @@ def prepare(
         str | None,
         typer.Option(help="Prepare only part K of N (e.g. 3/10), for cluster array jobs."),
     ] = None,
-    allow_outside: Annotated[
-        bool, typer.Option(help="Accept image paths outside the cohort folder.")
-    ] = False,
+    allow_outside: AllowOutsideOption = False,
     config: Annotated[
         Path | None, typer.Option(help="Settings TOML [configs/prepare.toml].")
     ] = None,
@@ -278,9 +279,7 @@ def forecast(
         str | None, typer.Option(help="With --cohort: this session instead of each baseline.")
     ] = None,
     jobs: Annotated[int, typer.Option(min=1, help="Scans forecast in parallel.")] = 1,
-    allow_outside: Annotated[
-        bool, typer.Option(help="Accept image paths outside the cohort folder.")
-    ] = False,
+    allow_outside: AllowOutsideOption = False,
     as_json: Annotated[bool, typer.Option("--json", help="Print the volumes as JSON.")] = False,
 ) -> None:
     """Forecast follow-up scans, log-Jacobian atrophy maps and regional volumes (mL).

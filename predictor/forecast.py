@@ -165,14 +165,16 @@ def baseline_resampler(data: np.ndarray, interpolation: str):
 def network_inputs(model: TrainedModel, prepared: PreparedScan):
     """Network input (1, C, D, H, W) and grid region weights (1, R, D, H, W) of a prepared scan.
 
-    Regions are :data:`~predictor.pairs.PRIOR_REGIONS`: the deep regions, then GM and WM.
+    Regions are :data:`~predictor.pairs.PRIOR_REGIONS`: the deep regions, GM, WM, and the
+    intracranial volume.
     """
     tissue = np.moveaxis(prepared.grid_tissue, -1, 0)
     channels = [prepared.grid_t1[None]]
     if model.network.settings.tissue_channels:
         channels.append(tissue)
     inputs = torch.from_numpy(np.concatenate(channels).astype(np.float32))[None]
-    regions = np.concatenate([np.moveaxis(prepared.grid_regions, -1, 0), tissue[:2]])
+    deep = np.moveaxis(prepared.grid_regions, -1, 0)
+    regions = np.concatenate([deep, tissue[:2], tissue.sum(axis=0, keepdims=True)])
     return inputs, torch.from_numpy(regions.astype(np.float32))[None]
 
 

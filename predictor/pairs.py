@@ -32,9 +32,10 @@ from predictor.prepare import RESULT, SCANS
 from predictor.volumes import REGIONS
 
 #: regions whose volume the network's Jacobian forecasts and the prior constrains
-PRIOR_REGIONS = ("hippocampus_left", "hippocampus_right", "ventricles", "total_gm", "wm")
-#: -1: may only shrink, +1: may only grow (the monotone term)
-REGION_DIRECTION = (-1.0, -1.0, 1.0, -1.0, -1.0)
+#: (intracranial volume too: the skull does not move, so what tissue loses CSF gains)
+PRIOR_REGIONS = ("hippocampus_left", "hippocampus_right", "ventricles", "total_gm", "wm", "icv")
+#: -1: may only shrink, +1: may only grow, 0: no direction (the monotone term)
+REGION_DIRECTION = (-1.0, -1.0, 1.0, -1.0, -1.0, 0.0)
 #: the two regions exchanged by a left-right flip
 FLIPPED = {0: 1, 1: 0}
 SETS = ("train", "validation", "test")
@@ -223,6 +224,12 @@ class ScanStore:
         return tensor
 
 
+def region_maps(arrays: torch.Tensor) -> torch.Tensor:
+    """:data:`PRIOR_REGIONS` weights (R, D, H, W) of a :class:`ScanStore` entry."""
+    gm, wm, csf = arrays[2], arrays[3], arrays[4]
+    return torch.stack([arrays[5], arrays[6], arrays[7], gm, wm, gm + wm + csf])
+
+
 def _read4d(path: Path) -> np.ndarray:
     return np.asarray(nib.load(path).dataobj, dtype=np.float32)
 
@@ -271,7 +278,7 @@ def make_batch(
             order = [FLIPPED.get(i, i) for i in order]
         prior = np.array([getattr(pair, f"{r}_prior") for r in PRIOR_REGIONS])[order]
         prior_sd = np.array([getattr(pair, f"{r}_prior_sd") for r in PRIOR_REGIONS])[order]
-        regions = torch.stack([base[5], base[6], base[7], base[2], base[3]])[order]
+        regions = region_maps(base)[order]
         inputs = torch.cat([base[:1] * gain, base[2:5]]) if tissue_channels else base[:1] * gain
         items.append(
             (

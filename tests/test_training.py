@@ -33,6 +33,7 @@ from predictor.pairs import (
     PRIOR_REGIONS,
     ScanStore,
     read_workspace,
+    region_maps,
     split_participants,
     visit_pairs,
 )
@@ -158,7 +159,7 @@ def forecast_percent_change(model_dir: Path, work: Path, years: float = 2.0) -> 
         with torch.no_grad():
             velocity = model.network(torch.cat([arrays[:1], arrays[2:5]])[None], code)
             forward = model.network.displacement(velocity, years, tuple(arrays.shape[1:]))
-        regions = torch.stack([arrays[5], arrays[6], arrays[7], arrays[2], arrays[3]])[None]
+        regions = region_maps(arrays)[None]
         ratio = region_volume_ratio(regions, jacobian_determinant(forward))[0].numpy()
         percent = dict(zip(PRIOR_REGIONS, 100 * (ratio - 1), strict=True))
         rows.append({"diagnosis": row.diagnosis} | percent)
