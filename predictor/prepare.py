@@ -173,6 +173,7 @@ def prepare_scan(
         priors[brain],
         int(settings.segmentation["em_iterations"]),
         float(settings.segmentation["prior_floor"]),
+        float(settings.segmentation["csf_core_prior"]),
     )
     tissue = {name: np.zeros(data.shape, np.float32) for name in TISSUES}
     for index, name in enumerate(TISSUES):

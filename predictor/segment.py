@@ -20,7 +20,11 @@ from predictor.templates import TISSUES
 
 
 def fit_mixture(
-    intensity: np.ndarray, priors: np.ndarray, iterations: int = 25, floor: float = 0.05
+    intensity: np.ndarray,
+    priors: np.ndarray,
+    iterations: int = 25,
+    floor: float = 0.05,
+    csf_core: float = 0.0,
 ) -> tuple[np.ndarray, dict]:
     """EM for a Gaussian mixture with voxel-wise prior weights.
 
@@ -28,6 +32,10 @@ def fit_mixture(
     ----------
     intensity : (N,) normalised intensities of brain voxels
     priors : (N, 3) template tissue probabilities (GM, WM, CSF) at those voxels
+    csf_core : when > 0, the CSF mean is held at the median intensity of the
+        voxels whose CSF prior exceeds it (pure CSF, e.g. the ventricles):
+        estimated freely, the CSF class drifts towards the CSF/GM
+        partial-volume voxels of the sulci, and their grey matter is lost
 
     Returns
     -------
@@ -42,9 +50,13 @@ def fit_mixture(
     # that fit no tissue (e.g. skull left in the mask), so that no class's SD can widen to
     # swallow its neighbours while the parameters are estimated.
     outlier = OUTLIER_WEIGHT / max(float(np.ptp(intensity)), 1e-6)
+    core = priors[:, 2] > csf_core if csf_core > 0 else np.zeros(len(intensity), bool)
+    pure_csf = float(np.median(intensity[core])) if core.sum() >= MIN_CORE_VOXELS else None
     for _ in range(iterations):
         total = posterior.sum(axis=0) + 1e-9
         means = (posterior * intensity[:, None]).sum(axis=0) / total
+        if pure_csf is not None:
+            means[2] = pure_csf
         variances = (posterior * (intensity[:, None] - means) ** 2).sum(axis=0) / total
         sds = np.sqrt(np.maximum(variances, 1e-6))
         joint = (
@@ -61,6 +73,8 @@ def fit_mixture(
 
 #: prior weight of the uniform outlier class used while fitting
 OUTLIER_WEIGHT = 0.02
+#: fewer pure-CSF voxels than this leave the CSF mean free
+MIN_CORE_VOXELS = 100
 #: mixed classes as (index of the darker tissue, index of the brighter one) in TISSUES order
 MIXED = ((2, 0), (0, 1))  # CSF/GM, GM/WM
 
