@@ -25,6 +25,7 @@ determinant is unchanged by this change of coordinates.
 from __future__ import annotations
 
 import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
@@ -146,18 +147,24 @@ def native_to_grid(prepared: PreparedScan, grid_affine: np.ndarray) -> np.ndarra
 def baseline_resampler(data: np.ndarray, interpolation: str):
     """A function: native voxel coordinates (3, X, Y, Z) -> the baseline sampled there.
 
-    'cubic' is a cubic B-spline (the coefficients computed once), 'linear'
-    trilinear; outside the field of view the nearest edge value is used.
+    'cubic' is a cubic B-spline (the coefficients computed once; slabs of the
+    output run in parallel on torch's thread count, as scipy releases the GIL),
+    'linear' trilinear; outside the field of view the nearest edge value is used.
     """
     if interpolation == "linear":
         baseline = torch.from_numpy(data)[None, None]
         return lambda source: sample_at(baseline, source[None])[0, 0].numpy()
     coefficients = ndimage.spline_filter(data, order=3, mode="nearest")
 
-    def resample(source):
+    def resample_slab(coordinates):
         return ndimage.map_coordinates(
-            coefficients, source.numpy(), order=3, mode="nearest", prefilter=False
+            coefficients, coordinates, order=3, mode="nearest", prefilter=False
         ).astype(np.float32)
+
+    def resample(source):
+        slabs = np.array_split(source.numpy(), torch.get_num_threads(), axis=1)
+        with ThreadPoolExecutor(len(slabs)) as pool:
+            return np.concatenate(list(pool.map(resample_slab, slabs)))
 
     return resample
 

@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import json
 import os
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -39,6 +40,8 @@ from predictor.parallel import run_all
 PROVENANCE = "desc-forecast_provenance.json"
 VOLUMES = "desc-forecast_volumes.tsv"
 TRAJECTORIES = "desc-forecast_trajectories.png"
+#: threads compressing the NIfTI outputs of one forecast
+IMAGE_WRITERS = 2
 IDENTIFIERS = ("participant_id", "session_id", "age", "sex", "diagnosis")
 
 
@@ -89,26 +92,35 @@ def write_forecast(
     scan = result.scan
     brain = sum(result.prepared.native_tissue.values()) > 0.5
     outputs = []
-    for horizon in result.horizons:
-        base = f"{stem}_desc-{horizon_label(horizon.years)}"
-        for suffix, array in (
-            ("T1w", horizon.image),
-            ("logjacobian", horizon.log_jacobian),
-            ("displacement", horizon.displacement_mm),
-        ):
-            save_like(array, scan, folder / f"{base}_{suffix}.nii.gz")
-            outputs.append(f"{base}_{suffix}.nii.gz")
-        figure = forecast_overview(
-            scan.data,
-            horizon.image,
-            horizon.log_jacobian,
-            brain,
-            scan.voxel_size_mm,
-            f"{stem}: forecast at +{horizon.years:g} years (age {result.condition['age']:g}, "
-            f"{result.condition['diagnosis']})",
-        )
-        save_figure(figure, folder / f"{base}_overview.png")
-        outputs.append(f"{base}_overview.png")
+    # the images are compressed on worker threads (zlib releases the GIL) while the
+    # figures are drawn; a failed write raises here, after the others have finished
+    with ThreadPoolExecutor(IMAGE_WRITERS) as pool:
+        written = []
+        for horizon in result.horizons:
+            base = f"{stem}_desc-{horizon_label(horizon.years)}"
+            for suffix, array in (
+                ("T1w", horizon.image),
+                ("logjacobian", horizon.log_jacobian),
+                ("displacement", horizon.displacement_mm),
+            ):
+                name = f"{base}_{suffix}.nii.gz"
+                written.append(pool.submit(save_like, array, scan, folder / name))
+                outputs.append(name)
+        for horizon in result.horizons:
+            base = f"{stem}_desc-{horizon_label(horizon.years)}"
+            figure = forecast_overview(
+                scan.data,
+                horizon.image,
+                horizon.log_jacobian,
+                brain,
+                scan.voxel_size_mm,
+                f"{stem}: forecast at +{horizon.years:g} years (age {result.condition['age']:g}, "
+                f"{result.condition['diagnosis']})",
+            )
+            save_figure(figure, folder / f"{base}_overview.png")
+            outputs.append(f"{base}_overview.png")
+        for future in written:
+            future.result()
     write_tsv(folder / f"{stem}_{VOLUMES}", result.volumes)
     figure = trajectories(
         result.volumes,
