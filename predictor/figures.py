@@ -7,13 +7,14 @@ subject's left on the left of each panel (marked), superior or anterior up.
 
 from __future__ import annotations
 
+import io
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from predictor.cautions import CAPTION, CAUTION
-from predictor.files import atomic_write
+from predictor.files import write_bytes
 
 #: our own colour choices: greys for scans, a brown-teal diverging map for differences,
 #: a purple-green diverging map for the log-Jacobian
@@ -34,14 +35,16 @@ def pyplot():
 
 def save_figure(figure, path: str | Path) -> Path:
     """Write a matplotlib figure as PNG atomically (the caution in its metadata) and close it."""
-    plt = pyplot()
+    return write_bytes(path, figure_png(figure))
+
+
+def figure_png(figure) -> bytes:
+    """A matplotlib figure rendered as PNG bytes (the caution in its metadata); closes it."""
+    stream = io.BytesIO()
     metadata = {"Description": CAUTION, "Software": "predictor"}
-    atomic_write(
-        path,
-        lambda temporary: figure.savefig(temporary, dpi=DPI, format="png", metadata=metadata),
-    )
-    plt.close(figure)
-    return Path(path)
+    figure.savefig(stream, dpi=DPI, format="png", metadata=metadata)
+    pyplot().close(figure)
+    return stream.getvalue()
 
 
 def planes(volume: np.ndarray, centre) -> list[np.ndarray]:

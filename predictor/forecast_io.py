@@ -31,7 +31,14 @@ import pandas as pd
 
 from predictor.cautions import CAUTION
 from predictor.errors import DataError, PredictorError, ScanError
-from predictor.files import exclusive, redact_folders, sha256_file, write_json, write_tsv
+from predictor.files import (
+    exclusive,
+    redact_folders,
+    sha256_file,
+    write_bytes,
+    write_json,
+    write_tsv,
+)
 from predictor.forecast import ForecastResult, as_model, forecast
 from predictor.modelstore import TrainedModel, package_versions
 from predictor.nifti import save_like
@@ -86,14 +93,15 @@ def write_forecast(
     identifiers: dict | None = None,
 ) -> dict:
     """Write every output of one scan's forecast (see the module docstring); returns provenance."""
-    from predictor.figures import forecast_overview, save_figure, trajectories
+    from predictor.figures import figure_png, forecast_overview, save_figure, trajectories
 
     folder = Path(folder)
     scan = result.scan
     brain = sum(result.prepared.native_tissue.values()) > 0.5
     outputs = []
     # the images are compressed on worker threads (zlib releases the GIL) while the
-    # figures are drawn; a failed write raises here, after the others have finished
+    # figures are rendered; the figures are written only once every image is, so a
+    # failed write (raised here) adds no new file
     with ThreadPoolExecutor(IMAGE_WRITERS) as pool:
         written = []
         for horizon in result.horizons:
@@ -106,8 +114,8 @@ def write_forecast(
                 name = f"{base}_{suffix}.nii.gz"
                 written.append(pool.submit(save_like, array, scan, folder / name))
                 outputs.append(name)
+        overviews = {}
         for horizon in result.horizons:
-            base = f"{stem}_desc-{horizon_label(horizon.years)}"
             figure = forecast_overview(
                 scan.data,
                 horizon.image,
@@ -117,10 +125,13 @@ def write_forecast(
                 f"{stem}: forecast at +{horizon.years:g} years (age {result.condition['age']:g}, "
                 f"{result.condition['diagnosis']})",
             )
-            save_figure(figure, folder / f"{base}_overview.png")
-            outputs.append(f"{base}_overview.png")
+            name = f"{stem}_desc-{horizon_label(horizon.years)}_overview.png"
+            overviews[name] = figure_png(figure)
         for future in written:
             future.result()
+    for name, png in overviews.items():
+        write_bytes(folder / name, png)
+        outputs.append(name)
     write_tsv(folder / f"{stem}_{VOLUMES}", result.volumes)
     figure = trajectories(
         result.volumes,

@@ -34,7 +34,7 @@ class LossSettings:
     similarity_weight: float = 1.0
     smoothness_weight: float = 1.0
     monotone_weight: float = 1.0
-    prior_weight: float = 0.01
+    prior_weight: float = 0.1
     # the similarity weight rises linearly to its full value over this many epochs
     similarity_warmup_epochs: int = 0
     # the monotone ordering is checked between the pair's horizon and this fraction of it
