@@ -50,7 +50,7 @@ def fit_mixture(
     weights = weights / np.maximum(weights.sum(axis=1, keepdims=True), 1e-6)
     weights = (1 - floor) * weights + floor / 3
     all_intensity, all_weights = intensity, weights
-    stride = int(np.ceil(len(intensity) / FIT_VOXELS))
+    stride = max(1, int(np.ceil(len(intensity) / FIT_VOXELS)))
     intensity, weights, priors = intensity[::stride], weights[::stride], priors[::stride]
     posterior = weights.copy()
     # A uniform outlier class (weight OUTLIER_WEIGHT over the intensity range) absorbs voxels
