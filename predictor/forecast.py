@@ -42,7 +42,7 @@ from predictor.fields import identity_grid, jacobian_determinant, region_volume_
 from predictor.modelstore import TrainedModel, load_model
 from predictor.network import encode_condition
 from predictor.nifti import Scan, load_scan
-from predictor.pairs import PRIOR_REGIONS
+from predictor.pairs import PRIOR_REGIONS, prior_region_weights
 from predictor.prepare import PreparedScan, PrepareSettings, cached_template, prepare_scan
 from predictor.regression import Z90
 from predictor.volumes import REGIONS, region_volumes
@@ -181,8 +181,10 @@ def network_inputs(model: TrainedModel, prepared: PreparedScan):
         channels.append(tissue)
     inputs = torch.from_numpy(np.concatenate(channels).astype(np.float32))[None]
     deep = np.moveaxis(prepared.grid_regions, -1, 0)
-    regions = np.concatenate([deep, tissue[:2], tissue.sum(axis=0, keepdims=True)])
-    return inputs, torch.from_numpy(regions.astype(np.float32))[None]
+    regions = prior_region_weights(
+        torch.from_numpy(deep.astype(np.float32)), torch.from_numpy(tissue.astype(np.float32))
+    )
+    return inputs, regions[None]
 
 
 class NativeSampler:

@@ -103,7 +103,7 @@ def write_forecast(
     # figures are rendered; the figures are written only once every image is, so a
     # failed write (raised here) adds no new file
     with ThreadPoolExecutor(IMAGE_WRITERS) as pool:
-        written = []
+        written, overviews = [], {}
         for horizon in result.horizons:
             base = f"{stem}_desc-{horizon_label(horizon.years)}"
             for suffix, array in (
@@ -114,8 +114,6 @@ def write_forecast(
                 name = f"{base}_{suffix}.nii.gz"
                 written.append(pool.submit(save_like, array, scan, folder / name))
                 outputs.append(name)
-        overviews = {}
-        for horizon in result.horizons:
             figure = forecast_overview(
                 scan.data,
                 horizon.image,
@@ -125,8 +123,7 @@ def write_forecast(
                 f"{stem}: forecast at +{horizon.years:g} years (age {result.condition['age']:g}, "
                 f"{result.condition['diagnosis']})",
             )
-            name = f"{stem}_desc-{horizon_label(horizon.years)}_overview.png"
-            overviews[name] = figure_png(figure)
+            overviews[f"{base}_overview.png"] = figure_png(figure)
         for future in written:
             future.result()
     for name, png in overviews.items():

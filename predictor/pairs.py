@@ -226,8 +226,17 @@ class ScanStore:
 
 def region_maps(arrays: torch.Tensor) -> torch.Tensor:
     """:data:`PRIOR_REGIONS` weights (R, D, H, W) of a :class:`ScanStore` entry."""
-    gm, wm, csf = arrays[2], arrays[3], arrays[4]
-    return torch.stack([arrays[5], arrays[6], arrays[7], gm, wm, gm + wm + csf])
+    return prior_region_weights(arrays[5:8], arrays[2:5])
+
+
+def prior_region_weights(deep: torch.Tensor, tissue: torch.Tensor) -> torch.Tensor:
+    """:data:`PRIOR_REGIONS` weights (R, D, H, W) from the deep regions and the tissues.
+
+    ``deep`` (3, D, H, W) are the hippocampi and ventricles, ``tissue`` (3, D, H, W)
+    GM, WM and CSF; the intracranial volume is the sum of the three tissues.
+    """
+    gm, wm, csf = tissue
+    return torch.cat([deep, torch.stack([gm, wm, gm + wm + csf])])
 
 
 def _read4d(path: Path) -> np.ndarray:
