@@ -107,6 +107,18 @@ TemplateOption = Annotated[
         "e.g. a phantom cohort's derivatives/phantom-template."
     ),
 ]
+RegionsOption = Annotated[
+    Path | None,
+    typer.Option(
+        help="Regions TOML laid over configs/regions.toml (new regions are added; "
+        "volumes in mL)."
+    ),
+]
+CohortConfigOption = Annotated[
+    Path | None,
+    typer.Option(help="Cohort coding TOML (diagnosis labels, sex codes, ages in years) laid "
+                 "over configs/cohort.toml."),
+]
 
 
 @app.command()
@@ -125,8 +137,10 @@ def prepare(
     ] = None,
     allow_outside: AllowOutsideOption = False,
     config: Annotated[
-        Path | None, typer.Option(help="Settings TOML [configs/prepare.toml].")
+        Path | None, typer.Option(help="Settings TOML laid over configs/prepare.toml.")
     ] = None,
+    regions: RegionsOption = None,
+    cohort_config: CohortConfigOption = None,
 ) -> None:
     """Preprocess, segment and measure every scan of a cohort into WORK.
 
@@ -137,14 +151,20 @@ def prepare(
     scans are taken from the cache. Failed scans are listed in WORK/failures.tsv.
     """
     from predictor.cohort import read_cohort
+    from predictor.config import CohortSettings
     from predictor.prepare import PrepareSettings, parse_shard, prepare_cohort
+    from predictor.regions import RegionSet
 
-    table = read_cohort(cohort, allow_outside=allow_outside)
+    coding = CohortSettings.from_toml(cohort_config)
+    region_set = RegionSet.from_toml(regions)
+    table = read_cohort(cohort, settings=coding, allow_outside=allow_outside)
     settings = PrepareSettings.from_toml(config, grid_mm=grid_mm)
     part = parse_shard(shard)
     progress, advance = progress_bar("preparing scans", len(table) if part[1] == 1 else None)
     with progress:
-        summary = prepare_cohort(table, work, template, settings, jobs, part, advance)
+        summary = prepare_cohort(
+            table, work, template, settings, jobs, part, advance, region_set, coding
+        )
     typer.echo(
         f"{summary['prepared']} prepared, {summary['cached']} from cache, "
         f"{summary['failed']} failed; volumes in {work / 'volumes.tsv'}"
@@ -162,6 +182,7 @@ def prepare(
 def volumes(
     source: Annotated[Path, typer.Argument(help="A prepared WORK folder or one NIfTI scan.")],
     template: TemplateOption = "mni152",
+    regions: RegionsOption = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")] = False,
 ) -> None:
     """Regional volumes: one row per scan, each region in mL and as % of total brain volume."""
@@ -169,8 +190,9 @@ def volumes(
 
     import pandas as pd
 
-    from predictor.prepare import PrepareSettings, prepare_scan, workspace_volumes
-    from predictor.templates import load_template
+    from predictor.prepare import PrepareSettings, cached_template, prepare_scan, workspace_volumes
+    from predictor.preprocess import single_threaded_itk
+    from predictor.regions import RegionSet
     from predictor.volumes import percent_of_brain
 
     if source.is_dir():
@@ -179,7 +201,9 @@ def volumes(
         from predictor.nifti import load_scan
 
         scan = load_scan(source)
-        measured = prepare_scan(scan, load_template(template), PrepareSettings.from_toml())
+        single_threaded_itk()
+        loaded = cached_template(template, RegionSet.from_toml(regions))
+        measured = prepare_scan(scan, loaded, PrepareSettings.from_toml())
         table = pd.DataFrame(
             [{"image": scan.name} | measured.volumes | percent_of_brain(measured.volumes)]
         )
@@ -298,8 +322,10 @@ def forecast(
 
     if cohort is not None:
         from predictor.cohort import read_cohort
+        from predictor.modelstore import read_model_json
 
-        table = read_cohort(cohort, allow_outside=allow_outside)
+        coding = read_model_json(model).coding  # the codes the model was trained with
+        table = read_cohort(cohort, settings=coding, allow_outside=allow_outside)
         count = table["participant_id"].nunique() if session is None else None
         progress, advance = progress_bar("forecasting", count)
         with progress:

@@ -226,7 +226,7 @@ def _parse_age(value: str, row: RawRow, settings: CohortSettings) -> float:
         age = float(value)
     except ValueError:
         raise CohortError(f"{row.where()}: age '{value}' is not a number (years)") from None
-    low, high = settings.age_range
+    low, high = settings.age.min_years, settings.age.max_years
     if not math.isfinite(age) or not low <= age <= high:
         raise CohortError(
             f"{row.where()}: age {value} is outside the plausible {low:g}-{high:g} years"
@@ -252,13 +252,13 @@ def _validate(
                 f"(first at line {seen[key].line})"
             )
         seen[key] = row
-        sex = settings.sex(fields["sex"])
+        sex = settings.sex.match(fields["sex"])
         if sex is None:
             raise CohortError(
                 f"{row.where()}: sex '{fields['sex']}' is not one of "
                 f"{', '.join(settings.sex_codes)}"
             )
-        diagnosis = settings.diagnosis(fields["diagnosis"])
+        diagnosis = settings.diagnosis.match(fields["diagnosis"])
         if diagnosis is None:
             raise CohortError(
                 f"{row.where()}: diagnosis '{fields['diagnosis']}' is not one of "

@@ -33,18 +33,17 @@ from scipy import ndimage, stats
 from predictor.errors import DataError
 from predictor.forecast import as_model, forecast, prepare_for
 from predictor.nifti import load_scan
-from predictor.pairs import SETS, read_workspace, visit_pairs
+from predictor.pairs import SETS, visit_pairs
 from predictor.parallel import run_all
-from predictor.phantoms.participants import seeded_rng
-from predictor.prepare import SCANS
+from predictor.regions import TOTAL_BRAIN
 from predictor.regression import all_forecasters, baseline_rows, check_table
-from predictor.volumes import REGIONS
+from predictor.rng import seeded_rng
+from predictor.workspace import Layout, ScanFiles, read_workspace
 
 #: the network's volumes measured on its forecast scans, and its own Jacobian-integral volumes
 NETWORK, JACOBIAN = "network", "network-jacobian"
 FLOOR = "floor (best possible)"
 NETWORKS = (NETWORK, JACOBIAN)
-LARGE_REGIONS = ("total_gm", "wm", "cortical_gm", "ventricles")
 BOOTSTRAP = 2000
 
 
@@ -61,6 +60,7 @@ class Comparison:
     consistency: pd.DataFrame  # measured vs Jacobian-integral network volumes
     data: dict  # counts describing the data and the split
     examples: list  # (title, baseline, follow-up, forecast) working-grid T1 (X, Y, Z)
+    regions: tuple[str, ...]  # the regions compared, in report order
 
 
 def check_split(split: dict) -> None:
@@ -116,10 +116,10 @@ def image_agreement(
 
 
 # --- the network's forecasts of one test participant -----------------------------------
-def _grid_arrays(folder: Path):
-    t1 = np.asarray(nib.load(folder / "grid_T1w.nii.gz").dataobj, dtype=np.float32)
-    mask = np.asarray(nib.load(folder / "grid_mask.nii.gz").dataobj) > 0
-    tissue = np.asarray(nib.load(folder / "grid_probseg.nii.gz").dataobj, dtype=np.float32)
+def _grid_arrays(files: ScanFiles):
+    t1 = np.asarray(nib.load(files.t1).dataobj, dtype=np.float32)
+    mask = np.asarray(nib.load(files.mask).dataobj) > 0
+    tissue = np.asarray(nib.load(files.tissue).dataobj, dtype=np.float32)
     return t1, mask, tissue
 
 
@@ -132,8 +132,8 @@ def network_pairs(model_dir: str, work: str, pairs: pd.DataFrame) -> list[dict]:
     """
     model = as_model(model_dir)
     first = pairs.iloc[0]
-    cohort = pd.read_csv(Path(work) / "cohort.tsv", sep="\t", dtype={"key": str})
-    image = cohort.set_index("key").loc[first.base_key, "image"]
+    layout = Layout(Path(work))
+    image = layout.read_cohort().set_index("key").loc[first.base_key, "image"]
     scan = load_scan(image)
     prepared = prepare_for(model, scan)
     horizons = pairs["years"].tolist()
@@ -141,15 +141,14 @@ def network_pairs(model_dir: str, work: str, pairs: pd.DataFrame) -> list[dict]:
         model, scan, first.age, first.sex, first.diagnosis, horizons, prepared=prepared
     )
     jacobian = result.volumes.set_index(["region", "years"])["network_ml"]
-    scans = Path(work) / SCANS
-    base_t1, base_mask, base_tissue = _grid_arrays(scans / first.base_key)
+    base_t1, base_mask, base_tissue = _grid_arrays(layout.scan(first.base_key))
     rows = []
     for horizon, pair in zip(result.horizons, pairs.itertuples(index=False), strict=True):
         measured = prepare_for(model, replace(scan, data=horizon.image))
-        follow_t1, follow_mask, follow_tissue = _grid_arrays(scans / pair.follow_key)
+        follow_t1, follow_mask, follow_tissue = _grid_arrays(layout.scan(pair.follow_key))
         mask = base_mask | follow_mask
         row = {"base_key": pair.base_key, "follow_key": pair.follow_key}
-        for region in REGIONS:
+        for region in model.info.region_set.names:
             row[f"measured_{region}"] = measured.volumes[region]
             row[f"jacobian_{region}"] = float(jacobian.loc[(region, horizon.years)])
         network = image_agreement(
@@ -166,9 +165,9 @@ def network_pairs(model_dir: str, work: str, pairs: pd.DataFrame) -> list[dict]:
 
 
 # --- the comparison ------------------------------------------------------------------------
-def baseline_pairs(volumes: pd.DataFrame, participants) -> pd.DataFrame:
+def baseline_pairs(volumes: pd.DataFrame, participants, regions) -> pd.DataFrame:
     """Pairs from each participant's first visit to every later visit."""
-    pairs = visit_pairs(volumes, participants)
+    pairs = visit_pairs(volumes, participants, regions)
     first = volumes.groupby("participant_id")["key"].first()
     pairs = pairs[pairs["base_key"].to_numpy() == first.loc[pairs["participant_id"]].to_numpy()]
     sessions = volumes.set_index("key")["session_id"]
@@ -177,30 +176,32 @@ def baseline_pairs(volumes: pd.DataFrame, participants) -> pd.DataFrame:
     )
 
 
-def regression_forecasts(volumes, train, pairs, seed: int, jobs: int) -> dict[str, np.ndarray]:
+def regression_forecasts(
+    volumes, train, pairs, names, coding, seed: int, jobs: int
+) -> dict[str, np.ndarray]:
     """Every regression forecaster fitted on ``train`` participants: (P, R) mL per method."""
     table = volumes[volumes["participant_id"].isin(set(train))]
-    starts = baseline_rows(check_table(volumes[volumes["key"].isin(pairs["base_key"])], REGIONS))
+    starts = baseline_rows(check_table(volumes[volumes["key"].isin(pairs["base_key"])], names))
     horizons = sorted(set(pairs["years"]))
     out = {}
-    for name, forecaster in all_forecasters(seed=seed, jobs=jobs).items():
+    for name, forecaster in all_forecasters(seed=seed, jobs=jobs, coding=coding).items():
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
-            forecaster.fit(table, list(REGIONS))
+            forecaster.fit(table, list(names))
         predicted = forecaster.predict(starts, horizons).set_index(
             ["region", "participant_id", "years"]
         )["mean_ml"]
         keys = list(zip(pairs["participant_id"], pairs["years"], strict=True))
-        out[name] = np.stack([predicted.loc[region].loc[keys].to_numpy() for region in REGIONS], 1)
+        out[name] = np.stack([predicted.loc[region].loc[keys].to_numpy() for region in names], 1)
     return out
 
 
-def phantom_floor(work: Path, pairs: pd.DataFrame) -> np.ndarray | None:
+def phantom_floor(work: Path, pairs: pd.DataFrame, names) -> np.ndarray | None:
     """The generator's best forecast ratio applied to the measured baseline, (P, R) mL.
 
     None unless the cohort is a phantom cohort with its ground truth beside it.
     """
-    cohort = pd.read_csv(work / "cohort.tsv", sep="\t", dtype={"key": str})
+    cohort = Layout(work).read_cohort()
     truth_folder = _phantom_truth(Path(cohort["image"].iloc[0]))
     if truth_folder is None:
         return None
@@ -209,11 +210,13 @@ def phantom_floor(work: Path, pairs: pd.DataFrame) -> np.ndarray | None:
     truth = truth.set_index(["participant_id", "session_id"])
     best = best.set_index(["participant_id", "session_id"])
     first = truth.groupby(level="participant_id").head(1).droplevel("session_id")
+    known = [name for name in names if name in best.columns]  # a region of the user's own: NaN
     rows = []
     for pair in pairs.itertuples(index=False):
-        ratio = best.loc[(pair.participant_id, pair.session_id), list(REGIONS)].to_numpy(float)
-        ratio = ratio / first.loc[pair.participant_id, list(REGIONS)].to_numpy(float)
-        rows.append(ratio * np.array([getattr(pair, r) for r in REGIONS]))
+        ratio = best.loc[(pair.participant_id, pair.session_id), known].to_numpy(float)
+        ratio = ratio / first.loc[pair.participant_id, known].to_numpy(float)
+        row = dict(zip(known, ratio * np.array([getattr(pair, r) for r in known]), strict=True))
+        rows.append([row.get(name, np.nan) for name in names])
     return np.array(rows)
 
 
@@ -234,15 +237,15 @@ def compare(
 ) -> Comparison:
     """Compare the model with every regression forecaster on its test participants."""
     model = as_model(model_dir)
-    split = model.info["split"]
+    split = model.info.split
     check_split(split)
     workspace = read_workspace(work)
-    volumes = workspace.volumes
+    volumes, names = workspace.volumes, workspace.regions.names
     known = set(volumes["participant_id"])
     missing = sorted((set(split["test"]) | set(split["train"])) - known)
     if missing:
         raise DataError(f"{work}: the model's participants {', '.join(missing[:5])} are not here")
-    pairs = baseline_pairs(volumes, split["test"])
+    pairs = baseline_pairs(volumes, split["test"], workspace.regions)
     if pairs.empty:
         raise DataError("the test participants have no follow-up visits to compare")
     groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
@@ -252,23 +255,25 @@ def compare(
     measured = pd.DataFrame(measured)
     pairs = pairs.merge(measured, on=["base_key", "follow_key"], validate="one_to_one")
     methods = {
-        NETWORK: pairs[[f"measured_{r}" for r in REGIONS]].to_numpy(),
-        JACOBIAN: pairs[[f"jacobian_{r}" for r in REGIONS]].to_numpy(),
+        NETWORK: pairs[[f"measured_{r}" for r in names]].to_numpy(),
+        JACOBIAN: pairs[[f"jacobian_{r}" for r in names]].to_numpy(),
     }
-    methods |= regression_forecasts(volumes, split["train"], pairs, seed, jobs)
-    floor = phantom_floor(Path(work), pairs)
+    methods |= regression_forecasts(
+        volumes, split["train"], pairs, names, workspace.cohort, seed, jobs
+    )
+    floor = phantom_floor(Path(work), pairs, names)
     if floor is not None:
         methods[FLOOR] = floor
-    errors = error_table(pairs, methods)
+    errors = error_table(pairs, methods, names)
     summary = summarise(errors, seed)
     return Comparison(
         errors=errors,
         summary=summary,
-        tests=paired_tests(errors, summary),
+        tests=paired_tests(errors, summary, names),
         images=image_table(pairs),
         by_horizon=grouped(errors.assign(horizon=horizon_bins(errors["years"])), "horizon"),
         by_diagnosis=grouped(errors, "diagnosis"),
-        consistency=consistency_table(pairs),
+        consistency=consistency_table(pairs, names),
         data={
             "participants": {name: len(split[name]) for name in SETS},
             "test_pairs": len(pairs),
@@ -278,18 +283,19 @@ def compare(
             "model": Path(model_dir).name,
         },
         examples=examples,
+        regions=tuple(names),
     )
 
 
-def error_table(pairs: pd.DataFrame, methods: dict[str, np.ndarray]) -> pd.DataFrame:
+def error_table(pairs: pd.DataFrame, methods: dict[str, np.ndarray], names) -> pd.DataFrame:
     """Long table of forecast errors: pair x region x method (mL and percentages)."""
     frames = []
-    observed = pairs[[f"{r}_follow" for r in REGIONS]].to_numpy()
-    baseline = pairs[list(REGIONS)].to_numpy()
-    brain = pairs["brain"].to_numpy()[:, None]
+    observed = pairs[[f"{r}_follow" for r in names]].to_numpy()
+    baseline = pairs[list(names)].to_numpy()
+    brain = pairs[TOTAL_BRAIN].to_numpy()[:, None]
     for method, values in methods.items():
         error = values - observed
-        for j, region in enumerate(REGIONS):
+        for j, region in enumerate(names):
             frames.append(
                 pd.DataFrame(
                     {
@@ -349,7 +355,7 @@ def summarise(errors: pd.DataFrame, seed: int) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def paired_tests(errors: pd.DataFrame, summary: pd.DataFrame) -> pd.DataFrame:
+def paired_tests(errors: pd.DataFrame, summary: pd.DataFrame, names) -> pd.DataFrame:
     """Per region and network variant: against the best regression (Wilcoxon signed-rank).
 
     The best regression is the one with the lowest mean |error| (% TBV) in
@@ -357,7 +363,7 @@ def paired_tests(errors: pd.DataFrame, summary: pd.DataFrame) -> pd.DataFrame:
     """
     rows = []
     regressions = summary[~summary["method"].isin([*NETWORKS, FLOOR])]
-    for region in REGIONS:
+    for region in names:
         candidates = regressions[regressions["region"] == region]
         best = candidates.loc[candidates["mean_pct_tbv"].idxmin()]
         own = errors[errors["region"] == region].sort_values(["participant_id", "session_id"])
@@ -419,10 +425,10 @@ def grouped(errors: pd.DataFrame, by: str) -> pd.DataFrame:
     )
 
 
-def consistency_table(pairs: pd.DataFrame) -> pd.DataFrame:
+def consistency_table(pairs: pd.DataFrame, names) -> pd.DataFrame:
     """Network volumes measured on the forecast scan against the Jacobian integral (mL)."""
     rows = []
-    for region in REGIONS:
+    for region in names:
         measured, jacobian = pairs[f"measured_{region}"], pairs[f"jacobian_{region}"]
         rows.append(
             {

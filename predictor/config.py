@@ -1,20 +1,32 @@
-"""Configuration: frozen dataclasses read from TOML files in ``configs/``.
+"""Configuration: frozen dataclasses read from the TOML files in ``configs/``.
 
-Every default lives in a TOML file; code only validates and carries it.
+Every default lives once, in a TOML file shipped with the package
+(``predictor.configs``, the repository's top-level ``configs/`` folder); the
+dataclasses hold no defaults of their own. A user's file given by path is
+laid over the shipped one (tables merge key by key), then every section,
+nested ones included, is validated: an unknown key or a wrong type is a
+:class:`~predictor.errors.ConfigError` naming the file, the section and the
+key, with a "did you mean" suggestion where one is close.
 """
 
 from __future__ import annotations
 
+import difflib
 import os
 import tomllib
-from dataclasses import dataclass, field
+import types
+import typing
+from dataclasses import dataclass, fields, is_dataclass
+from importlib import resources
 from pathlib import Path
 from typing import Any
 
 from predictor.errors import ConfigError
 
-#: the project's configuration folder (``configs/`` beside the package)
-CONFIG_DIR = Path(__file__).resolve().parent.parent / "configs"
+#: the shipped configuration folder (``configs/`` of the repository)
+CONFIG_DIR = Path(str(resources.files("predictor.configs")))
+#: the shipped phantom scenarios (``synthetic_phantoms/`` of the repository)
+SCENARIO_DIR = Path(str(resources.files("predictor.scenarios")))
 
 
 def read_toml(path: str | os.PathLike[str]) -> dict[str, Any]:
@@ -29,118 +41,226 @@ def read_toml(path: str | os.PathLike[str]) -> dict[str, Any]:
         raise ConfigError(f"{path}: not valid TOML ({error})") from error
 
 
+def merged(base: dict, override: dict) -> dict:
+    """``base`` with ``override`` laid over it; tables merge key by key, other values replace."""
+    out = dict(base)
+    for key, value in override.items():
+        if isinstance(value, dict) and isinstance(out.get(key), dict):
+            out[key] = merged(out[key], value)
+        else:
+            out[key] = value
+    return out
+
+
+def read_config(name: str, path: str | os.PathLike[str] | None = None) -> tuple[dict, str]:
+    """The shipped ``configs/<name>`` with the user's file at ``path`` laid over it.
+
+    Returns the merged table and the file to name in errors (the user's, if given).
+    """
+    raw = read_toml(CONFIG_DIR / name)
+    if path is None or Path(path).resolve() == (CONFIG_DIR / name).resolve():
+        return raw, str(CONFIG_DIR / name)
+    return merged(raw, read_toml(path)), str(path)
+
+
 def require(table: dict[str, Any], key: str, source: str, kind: type | tuple[type, ...]):
-    """Return ``table[key]`` checked against ``kind``, or raise ConfigError naming the key."""
+    """``table[key]`` checked against ``kind``, or ConfigError naming the key (scenario files)."""
     if key not in table:
         raise ConfigError(f"{source}: missing key '{key}'")
     value = table[key]
-    if isinstance(value, bool) and bool not in (kind if isinstance(kind, tuple) else (kind,)):
-        raise ConfigError(f"{source}: '{key}' must be {kind}, got {value!r}")
-    if not isinstance(value, kind):
+    kinds = kind if isinstance(kind, tuple) else (kind,)
+    if (isinstance(value, bool) and bool not in kinds) or not isinstance(value, kind):
         raise ConfigError(f"{source}: '{key}' must be {kind}, got {value!r}")
     return value
 
 
-@dataclass(frozen=True)
-class CohortSettings:
-    """Accepted diagnosis labels (in severity order), sex codes and age range (years)."""
+def _where(source: str, section: tuple[str, ...]) -> str:
+    return f"{source} [{'.'.join(section)}]" if section else source
 
-    diagnosis_labels: tuple[str, ...] = ("CN", "MCI", "AD")
-    diagnosis_aliases: dict[str, str] = field(default_factory=dict)
-    sex_codes: tuple[str, ...] = ("F", "M")
-    sex_aliases: dict[str, str] = field(default_factory=dict)
-    age_range: tuple[float, float] = (0.0, 120.0)
 
-    def __post_init__(self):
-        if not self.diagnosis_labels or len(set(self.diagnosis_labels)) != len(
-            self.diagnosis_labels
-        ):
-            raise ConfigError(
-                f"diagnosis labels must be unique and non-empty: {self.diagnosis_labels}"
-            )
-        if not self.sex_codes:
-            raise ConfigError("sex codes must be non-empty")
-        for alias, target in self.diagnosis_aliases.items():
-            if target not in self.diagnosis_labels:
-                raise ConfigError(f"diagnosis alias '{alias}' points to unknown label '{target}'")
-        for alias, target in self.sex_aliases.items():
-            if target not in self.sex_codes:
-                raise ConfigError(f"sex alias '{alias}' points to unknown code '{target}'")
-        low, high = self.age_range
-        if not low < high:
-            raise ConfigError(f"age range must be increasing, got {self.age_range}")
+def _type_name(hint) -> str:
+    return getattr(hint, "__name__", None) or str(hint).replace("typing.", "")
 
-    @classmethod
-    def from_toml(cls, path: str | os.PathLike[str] | None = None) -> CohortSettings:
-        """Read ``configs/cohort.toml`` (or ``path``)."""
-        path = Path(path) if path is not None else CONFIG_DIR / "cohort.toml"
-        raw = read_toml(path)
-        source = str(path)
-        diagnosis = require(raw, "diagnosis", source, dict)
-        sex = require(raw, "sex", source, dict)
-        age = require(raw, "age", source, dict)
-        return cls(
-            diagnosis_labels=tuple(require(diagnosis, "labels", source, list)),
-            diagnosis_aliases=dict(diagnosis.get("aliases", {})),
-            sex_codes=tuple(require(sex, "codes", source, list)),
-            sex_aliases=dict(sex.get("aliases", {})),
-            age_range=(
-                float(require(age, "min_years", source, (int, float))),
-                float(require(age, "max_years", source, (int, float))),
-            ),
+
+def _check(value, hint, source: str, section: tuple[str, ...], key: str):
+    """``value`` checked (and converted: lists to tuples, ints to floats) against ``hint``."""
+    origin, args = typing.get_origin(hint), typing.get_args(hint)
+
+    def wrong():
+        return ConfigError(
+            f"{_where(source, section)} '{key}': must be {_type_name(hint)}, got {value!r}"
         )
 
-    @staticmethod
-    def _match(value: str, codes: tuple[str, ...], aliases: dict[str, str]) -> str | None:
-        lowered = value.strip().lower()
-        for code in codes:
+    if is_dataclass(hint):
+        if not isinstance(value, dict):
+            raise wrong()
+        return settings_from_table(hint, value, source, (*section, key))
+    if origin in (types.UnionType, typing.Union):
+        for option in args:
+            try:
+                return _check(value, option, source, section, key)
+            except ConfigError:
+                continue
+        raise wrong()
+    if hint is bool:
+        if not isinstance(value, bool):
+            raise wrong()
+        return value
+    if hint in (int, float, str):
+        accepted = (int, float) if hint is float else hint
+        if isinstance(value, bool) or not isinstance(value, accepted):
+            raise wrong()
+        return float(value) if hint is float else value
+    if origin is tuple:
+        if not isinstance(value, list | tuple):
+            raise wrong()
+        kinds = [args[0]] * len(value) if len(args) == 2 and args[1] is Ellipsis else args
+        if len(value) != len(kinds):
+            raise wrong()
+        pairs = zip(value, kinds, strict=True)
+        return tuple(_check(item, kind, source, section, key) for item, kind in pairs)
+    if origin is dict:
+        if not isinstance(value, dict):
+            raise wrong()
+        return {
+            name: _check(item, args[1], source, section, f"{key}.{name}")
+            for name, item in value.items()
+        }
+    raise TypeError(f"unsupported configuration type {hint!r}")  # a bug, not a user error
+
+
+def check_keys(table: dict, known, where: str) -> None:
+    """ConfigError for the first key of ``table`` not in ``known``, with a close match."""
+    known = list(known)
+    for key in table:
+        if key not in known:
+            close = difflib.get_close_matches(key, known, n=1)
+            hint = f" (did you mean '{close[0]}'?)" if close else ""
+            raise ConfigError(f"{where} '{key}': unknown key{hint}")
+
+
+def settings_from_table(cls, table: dict[str, Any], source: str, section: tuple[str, ...] = ()):
+    """Build the frozen dataclass ``cls`` (nested ones too) from a TOML table.
+
+    Unknown, missing and mistyped keys raise ConfigError naming ``source``,
+    the section and the key; a value the dataclass itself refuses (its
+    ``__post_init__`` raises ValueError) is reported the same way.
+    """
+    where = _where(source, section)
+    if not isinstance(table, dict):
+        raise ConfigError(f"{where}: must be a table, got {table!r}")
+    hints = typing.get_type_hints(cls)
+    known = [item.name for item in fields(cls) if item.init]
+    check_keys(table, known, where)
+    missing = [key for key in known if key not in table]
+    if missing:
+        raise ConfigError(f"{where} '{missing[0]}': missing key")
+    values = {key: _check(table[key], hints[key], source, section, key) for key in known}
+    try:
+        return cls(**values)
+    except ValueError as error:
+        if isinstance(error, ConfigError):
+            raise
+        raise ConfigError(f"{where}: {error}") from error
+
+
+def load_settings(cls, name: str, path=None, table: str | None = None, overrides=None):
+    """``cls`` from the shipped ``configs/<name>`` (a ``table`` of it), with ``path`` over it.
+
+    ``overrides`` (a nested dict) is laid over the file last, e.g. a command-line option.
+    """
+    raw, source = read_config(name, path)
+    section: tuple[str, ...] = ()
+    if table is not None:
+        if table not in raw:
+            raise ConfigError(f"{source}: no table [{table}]")
+        raw, section = raw[table], (table,)
+    if overrides:
+        raw = merged(raw, overrides)
+    return settings_from_table(cls, raw, source, section)
+
+
+# --- cohort coding ------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Coding:
+    """Accepted values of one categorical column: codes in order, and other spellings."""
+
+    codes: tuple[str, ...]
+    aliases: dict[str, str]
+
+    def __post_init__(self):
+        if not self.codes or len(set(self.codes)) != len(self.codes):
+            raise ValueError(f"'codes' must be unique and non-empty, got {list(self.codes)}")
+        for alias, target in self.aliases.items():
+            if target not in self.codes:
+                raise ValueError(f"alias '{alias}' points to unknown code '{target}'")
+
+    def match(self, value: str) -> str | None:
+        """The code for ``value`` (case-insensitive, aliases allowed), else None."""
+        lowered = str(value).strip().lower()
+        for code in self.codes:
             if code.lower() == lowered:
                 return code
-        for alias, code in aliases.items():
+        for alias, code in self.aliases.items():
             if alias.lower() == lowered:
                 return code
         return None
 
-    def diagnosis(self, value: str) -> str | None:
-        """The configured label for ``value`` (case-insensitive, aliases allowed), else None."""
-        return self._match(value, self.diagnosis_labels, self.diagnosis_aliases)
 
-    def sex(self, value: str) -> str | None:
-        """The configured sex code for ``value`` (case-insensitive, aliases allowed), else None."""
-        return self._match(value, self.sex_codes, self.sex_aliases)
+@dataclass(frozen=True)
+class AgeRange:
+    """Plausible ages (years)."""
+
+    min_years: float
+    max_years: float
+
+    def __post_init__(self):
+        if not self.min_years < self.max_years:
+            raise ValueError(f"'min_years' must be below 'max_years', got {self}")
 
 
-def settings_from_table(cls, table: dict[str, Any], source: str):
-    """Build the frozen dataclass ``cls`` from a TOML table, naming unknown and missing keys.
+@dataclass(frozen=True)
+class CohortSettings:
+    """Diagnosis labels (in severity order), sex codes and age range (``configs/cohort.toml``).
 
-    Lists become tuples; each value is checked against the field's default type
-    (a float field accepts an int).
+    The first sex code is the reference of every model's sex indicator and the
+    diagnosis order that of every one-hot code; a model saves these settings,
+    so no module spells a code.
     """
-    from dataclasses import MISSING, fields
 
-    known = {item.name: item for item in fields(cls)}
-    unknown = sorted(set(table) - set(known))
-    if unknown:
-        raise ConfigError(f"{source}: unknown key(s) {', '.join(unknown)}")
-    values = {}
-    for name, item in known.items():
-        if name not in table:
-            if item.default is MISSING:
-                raise ConfigError(f"{source}: missing key '{name}'")
-            continue
-        value = table[name]
-        default = item.default
-        if isinstance(value, list):
-            value = tuple(value)
-        if default is not MISSING and default is not None:
-            expected = float if isinstance(default, float) else type(default)
-            accepted = (int, float) if expected is float else expected
-            if isinstance(value, bool) and expected is not bool or not isinstance(value, accepted):
-                raise ConfigError(f"{source}: '{name}' must be {expected.__name__}, got {value!r}")
-            if expected is float:
-                value = float(value)
-        values[name] = value
-    try:
-        return cls(**values)
-    except (TypeError, ValueError) as error:
-        raise ConfigError(f"{source}: {error}") from error
+    diagnosis: Coding
+    sex: Coding
+    age: AgeRange
+
+    @classmethod
+    def from_toml(cls, path: str | os.PathLike[str] | None = None) -> CohortSettings:
+        """Read ``configs/cohort.toml`` with the file at ``path`` (if any) laid over it."""
+        return load_settings(cls, "cohort.toml", path)
+
+    @classmethod
+    def from_dict(cls, raw: dict, source: str = "cohort settings") -> CohortSettings:
+        return settings_from_table(cls, raw, source)
+
+    def to_dict(self) -> dict:
+        return {
+            "diagnosis": {"codes": list(self.diagnosis.codes), "aliases": self.diagnosis.aliases},
+            "sex": {"codes": list(self.sex.codes), "aliases": self.sex.aliases},
+            "age": {"min_years": self.age.min_years, "max_years": self.age.max_years},
+        }
+
+    @property
+    def diagnosis_labels(self) -> tuple[str, ...]:
+        return self.diagnosis.codes
+
+    @property
+    def sex_codes(self) -> tuple[str, ...]:
+        return self.sex.codes
+
+    def sex_indicators(self, values) -> Any:
+        """(N, S - 1) float array: one indicator per sex code after the first (the reference)."""
+        import numpy as np
+
+        values = np.asarray(values, dtype=object)
+        return np.stack([values == code for code in self.sex.codes[1:]], axis=1).astype(
+            np.float64
+        ).reshape(len(values), len(self.sex.codes) - 1)

@@ -21,7 +21,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from predictor.config import CONFIG_DIR, read_toml, settings_from_table
+from predictor.config import CONFIG_DIR, load_settings
 
 STAGES = ("phantoms", "prepare", "train", "forecast", "compare", "trial-size")
 
@@ -30,35 +30,35 @@ STAGES = ("phantoms", "prepare", "train", "forecast", "compare", "trial-size")
 class DemoSettings:
     """One demo size (a table of ``configs/demo.toml``)."""
 
-    participants: int = 30
-    size: str = "demo"
-    grid_mm: float = 3.0
-    train_config: str = "train.toml"
-    epochs: int = 8
-    max_pairs_per_epoch: int = 120
-    forecast_years: tuple[float, ...] = (1.0, 2.0, 5.0)
-    trial_region: str = "hippocampus_left"
-    trial_years: float = 2.0
-    trial_enrich: tuple[float, ...] = (0.5, 0.3)
-    seed: int = 0
+    participants: int
+    size: str
+    grid_mm: float
+    train_config: str
+    epochs: int
+    max_pairs_per_epoch: int
+    forecast_years: tuple[float, ...]
+    trial_region: str
+    trial_years: float
+    trial_enrich: tuple[float, ...]
+    seed: int
 
     @classmethod
-    def from_toml(cls, quick: bool) -> DemoSettings:
-        path = CONFIG_DIR / "demo.toml"
-        name = "quick" if quick else "full"
-        return settings_from_table(cls, read_toml(path)[name], f"{path} [{name}]")
+    def from_toml(cls, quick: bool, path: str | os.PathLike[str] | None = None) -> DemoSettings:
+        """``[quick]`` or ``[full]`` of ``configs/demo.toml``, the file at ``path`` over it."""
+        return load_settings(cls, "demo.toml", path, table="quick" if quick else "full")
 
 
 def prepare_accuracy(work: Path, cohort: Path) -> pd.DataFrame:
     """Measured against true volumes per region: mean and largest absolute error (%)."""
     from predictor.phantoms.generate import TRUTH
-    from predictor.volumes import REGIONS
+    from predictor.workspace import read_workspace
 
-    measured = pd.read_csv(work / "volumes.tsv", sep="\t")
+    workspace = read_workspace(work)
+    measured = workspace.volumes
     truth = pd.read_csv(cohort / TRUTH / "true_volumes.tsv", sep="\t")
     both = measured.merge(truth, on=["participant_id", "session_id"], suffixes=("", "_true"))
     rows = []
-    for region in REGIONS:
+    for region in workspace.regions.names:
         error = 100 * (both[region] - both[f"{region}_true"]) / both[f"{region}_true"]
         rows.append(
             {
@@ -141,7 +141,7 @@ def run_demo(
         jobs=jobs,
         progress=stage("forecast", settings.participants),
     )
-    test = as_model(folders["model"]).info["split"]["test"]
+    test = as_model(folders["model"]).info.split["test"]
     progress = stage("compare", len(test))
     comparison = compare(folders["model"], folders["work"], jobs, progress=progress)
     page = write_report(comparison, folders["report"])

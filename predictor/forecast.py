@@ -27,7 +27,6 @@ from __future__ import annotations
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
-from functools import lru_cache
 from pathlib import Path
 
 import numpy as np
@@ -36,19 +35,38 @@ import torch
 import torch.nn.functional as F
 from scipy import ndimage
 
-from predictor.config import CONFIG_DIR, CohortSettings, read_toml
+from predictor.config import load_settings
 from predictor.errors import DataError, ModelError
 from predictor.fields import identity_grid, jacobian_determinant, region_volume_ratio, sample_at
-from predictor.modelstore import TrainedModel, load_model
+from predictor.modelstore import TrainedModel, load_model, read_model_json
 from predictor.network import encode_condition
 from predictor.nifti import Scan, load_scan
-from predictor.pairs import PRIOR_REGIONS, prior_region_weights
+from predictor.pairs import grid_entry, network_input, region_weights
 from predictor.prepare import PreparedScan, PrepareSettings, cached_template, prepare_scan
+from predictor.preprocess import single_threaded_itk
 from predictor.regression import Z90
-from predictor.volumes import REGIONS, region_volumes
+from predictor.volumes import region_volumes
 
 Z95 = 1.959963984540054
 INTERPOLATIONS = ("cubic", "linear")
+
+
+@dataclass(frozen=True)
+class ForecastSettings:
+    """Settings of ``predictor forecast`` (``configs/forecast.toml``)."""
+
+    interpolation: str  # how the baseline is resampled: 'cubic' or 'linear'
+
+    def __post_init__(self):
+        if self.interpolation not in INTERPOLATIONS:
+            raise ValueError(
+                f"'interpolation' must be one of {list(INTERPOLATIONS)}; "
+                f"'{self.interpolation}' was given"
+            )
+
+    @classmethod
+    def from_toml(cls, path: str | os.PathLike[str] | None = None) -> ForecastSettings:
+        return load_settings(cls, "forecast.toml", path)
 
 
 @dataclass(frozen=True, eq=False)
@@ -59,7 +77,7 @@ class HorizonForecast:
     image: np.ndarray  # (X, Y, Z) float32, the input's own intensities, warped
     log_jacobian: np.ndarray  # (X, Y, Z) log volume ratio of the forward map (< 0: shrinkage)
     displacement_mm: np.ndarray  # (X, Y, Z, 3) RAS mm: forecast(p) = baseline(p + u(p))
-    grid_ratio: dict[str, float]  # PRIOR_REGIONS volume ratios from the working grid
+    grid_ratio: dict[str, float]  # prior regions' volume ratios from the working grid
 
 
 @dataclass(frozen=True, eq=False)
@@ -74,14 +92,22 @@ class ForecastResult:
     condition: dict  # age (years), sex, diagnosis as used
 
 
-@lru_cache(maxsize=2)
-def _cached_model(folder: str) -> TrainedModel:
-    return load_model(folder)
+#: models loaded in this process, keyed by folder and the checksum of their weights, so
+#: that retraining into the same folder gives the new weights (two kept at most)
+_MODELS: dict[tuple[str, str], TrainedModel] = {}
 
 
 def as_model(model: TrainedModel | str | os.PathLike[str]) -> TrainedModel:
-    """A loaded model, or the model folder at ``model`` (cached per process)."""
-    return model if isinstance(model, TrainedModel) else _cached_model(str(Path(model).resolve()))
+    """A loaded model, or the model folder at ``model`` (cached per process by checksum)."""
+    if isinstance(model, TrainedModel):
+        return model
+    folder = Path(model).resolve()
+    key = (str(folder), read_model_json(folder).weights_sha256)
+    if key not in _MODELS:
+        while len(_MODELS) >= 2:
+            _MODELS.pop(next(iter(_MODELS)))
+        _MODELS[key] = load_model(folder)
+    return _MODELS[key]
 
 
 def check_request(
@@ -92,8 +118,8 @@ def check_request(
     Unknown codes and negative or non-finite horizons are errors; values the
     model never saw in training are warnings.
     """
-    settings = CohortSettings.from_toml()
-    sex_code, label = settings.sex(str(sex)), settings.diagnosis(str(diagnosis))
+    settings = model.info.coding
+    sex_code, label = settings.sex.match(str(sex)), settings.diagnosis.match(str(diagnosis))
     if sex_code is None:
         raise DataError(f"sex '{sex}' is not one of {', '.join(settings.sex_codes)}")
     if label is None or label not in model.labels:
@@ -103,7 +129,7 @@ def check_request(
         raise DataError(f"horizons must be finite and >= 0 years, got {list(years)}")
     if not np.isfinite(age):
         raise DataError(f"age must be a finite number of years, got {age}")
-    seen = model.info["training_range"]
+    seen = model.info.training_range
     notes = []
     low, high = seen["age_years"]
     if not low <= age <= high:
@@ -122,14 +148,16 @@ def check_request(
 
 def prepare_for(model: TrainedModel, scan: Scan) -> PreparedScan:
     """Prepare a scan with the model's template and settings, checking the working grid."""
-    settings = PrepareSettings.from_dict(model.info["prepare_settings"])
-    prepared = prepare_scan(scan, cached_template(model.info["template"]), settings)
+    single_threaded_itk()
+    settings = PrepareSettings.from_dict(model.info.prepare_settings)
+    template = cached_template(model.info.template, model.info.region_set)
+    prepared = prepare_scan(scan, template, settings)
     check_grid(model, prepared)
     return prepared
 
 
 def check_grid(model: TrainedModel, prepared: PreparedScan) -> None:
-    grid = model.info["grid"]
+    grid = model.info.grid
     same_shape = list(prepared.diagnostics["grid_shape"]) == list(grid["shape"])
     if not same_shape or not np.allclose(prepared.diagnostics["grid_affine"], grid["affine"]):
         raise ModelError(
@@ -172,19 +200,14 @@ def baseline_resampler(data: np.ndarray, interpolation: str):
 def network_inputs(model: TrainedModel, prepared: PreparedScan):
     """Network input (1, C, D, H, W) and grid region weights (1, R, D, H, W) of a prepared scan.
 
-    Regions are :data:`~predictor.pairs.PRIOR_REGIONS`: the deep regions, GM, WM, and the
-    intracranial volume.
+    Built by the same functions as training's batches; regions are the model's prior regions.
     """
-    tissue = np.moveaxis(prepared.grid_tissue, -1, 0)
-    channels = [prepared.grid_t1[None]]
-    if model.network.settings.tissue_channels:
-        channels.append(tissue)
-    inputs = torch.from_numpy(np.concatenate(channels).astype(np.float32))[None]
-    deep = np.moveaxis(prepared.grid_regions, -1, 0)
-    regions = prior_region_weights(
-        torch.from_numpy(deep.astype(np.float32)), torch.from_numpy(tissue.astype(np.float32))
+    entry = grid_entry(
+        prepared.grid_t1, prepared.grid_mask, prepared.grid_tissue, prepared.grid_regions
     )
-    return inputs, regions[None]
+    regions = model.info.region_set
+    inputs = network_input(entry, model.network.settings.tissue_channels)
+    return inputs[None], region_weights(entry, regions, regions.prior)[None]
 
 
 class NativeSampler:
@@ -234,7 +257,7 @@ def forecast(
     defaults to ``configs/forecast.toml``. Returns arrays in the scan's RAS
     order and the volume table.
     """
-    interpolation = interpolation or read_toml(CONFIG_DIR / "forecast.toml")["interpolation"]
+    interpolation = interpolation or ForecastSettings.from_toml().interpolation
     if interpolation not in INTERPOLATIONS:
         raise DataError(
             f"interpolation must be one of {list(INTERPOLATIONS)}; '{interpolation}' was given"
@@ -244,16 +267,15 @@ def forecast(
     sex_code, label, horizons, notes = check_request(model, float(age), sex, diagnosis, years)
     prepared = prepared if prepared is not None else prepare_for(model, scan)
     check_grid(model, prepared)
-    grid_affine = np.asarray(model.info["grid"]["affine"])
-    grid_shape = tuple(model.info["grid"]["shape"])
-    info = model.info["condition"]
+    grid_affine, grid_shape = model.info.grid_affine, model.info.grid_shape
+    statistics = model.info.condition
     condition = encode_condition(
         [age],
-        [sex_code == "M"],
-        [model.labels.index(label)],
-        info["age_mean"],
-        info["age_sd"],
-        len(model.labels),
+        [sex_code],
+        [label],
+        model.info.coding,
+        statistics["age_mean"],
+        statistics["age_sd"],
     )
     inputs, grid_weights = network_inputs(model, prepared)
     sampler = NativeSampler(native_to_grid(prepared, grid_affine), scan.data.shape)
@@ -282,11 +304,15 @@ def forecast(
                     warped,
                     np.log(np.maximum(native_det, 1e-3)),
                     torch.einsum("ij,jxyz->xyzi", to_mm, back_native).numpy(),
-                    dict(zip(PRIOR_REGIONS, ratio, strict=True)),
+                    dict(zip(model.info.region_set.prior, ratio, strict=True)),
                 )
             )
             network_ml[t] = region_volumes(
-                prepared.native_tissue, prepared.native_deep, scan.voxel_volume_ml, native_det
+                prepared.native_tissue,
+                prepared.native_deep,
+                scan.voxel_volume_ml,
+                model.info.region_set,
+                native_det,
             )
     table, prior_notes = volume_table(model, prepared.volumes, network_ml, age, sex_code, label)
     return ForecastResult(
@@ -323,7 +349,7 @@ def volume_table(
     except DataError as error:
         prior, notes = None, [f"no prior forecast: {error}"]
     rows = []
-    for region in REGIONS:
+    for region in model.info.region_set.names:
         for t in horizons:
             base, net = baseline_ml[region], network_ml[t][region]
             row = {

@@ -150,17 +150,17 @@ def _provenance(result, model, input_checksum, identifiers, outputs) -> dict:
         "model": {
             "folder": model.folder.name,
             "weights_sha256": model.checksum,
-            "template": Path(model.info["template"]).name,
-            "epochs_run": model.info.get("epochs_run"),
-            "best_epoch": model.info.get("best_epoch"),
+            "template": Path(model.info.template).name,
+            "epochs_run": model.info.epochs_run,
+            "best_epoch": model.info.best_epoch,
         },
         "input": {"file": result.scan.name, "sha256": input_checksum},
         "participant": (identifiers or {}) | result.condition,
         "horizons_years": [h.years for h in result.horizons],
         "warnings": result.warnings,
         "settings": {
-            "prepare": model.info["prepare_settings"],
-            "grid": model.info["grid"],
+            "prepare": model.info.prepare_settings,
+            "grid": model.info.grid,
         },
         "registration": {
             key: value

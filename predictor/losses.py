@@ -27,18 +27,18 @@ SIMILARITIES = ("mse", "lncc")
 
 @dataclass(frozen=True)
 class LossSettings:
-    """Loss choices and weights (defaults in ``configs/train.toml``)."""
+    """Loss choices and weights (``[loss]`` of ``configs/train.toml``)."""
 
-    similarity: str = "mse"  # 'mse' or 'lncc'
-    lncc_window: int = 5  # voxels, odd
-    similarity_weight: float = 1.0
-    smoothness_weight: float = 1.0
-    monotone_weight: float = 1.0
-    prior_weight: float = 0.1
+    similarity: str  # 'mse' or 'lncc'
+    lncc_window: int  # voxels, odd
+    similarity_weight: float
+    smoothness_weight: float
+    monotone_weight: float
+    prior_weight: float
     # the similarity weight rises linearly to its full value over this many epochs
-    similarity_warmup_epochs: int = 0
+    similarity_warmup_epochs: int
     # the monotone ordering is checked between the pair's horizon and this fraction of it
-    earlier_horizon_fraction: float = 0.5
+    earlier_horizon_fraction: float
 
     def __post_init__(self):
         if self.similarity not in SIMILARITIES:

@@ -23,21 +23,26 @@ from __future__ import annotations
 import json
 import os
 import pickle
-from dataclasses import dataclass
+from dataclasses import MISSING, asdict, dataclass, field, fields, replace
+from functools import cached_property
 from importlib import metadata
 from pathlib import Path
 
+import numpy as np
 import torch
 
-from predictor.errors import ModelError
+from predictor.config import CohortSettings
+from predictor.errors import ModelError, PredictorError
 from predictor.files import atomic_write, sha256_file, write_json
-from predictor.network import NetworkSettings, VelocityNet
+from predictor.network import NetworkSettings, VelocityNet, condition_size
+from predictor.regions import RegionSet
 
 MODEL_JSON = "model.json"
 WEIGHTS = "weights.pt"
 CHECKPOINT = "checkpoint.pt"
 PRIOR = "prior.json"
-FORMAT = 1
+#: version of the model.json schema (ModelInfo); bumped when a field changes meaning
+SCHEMA = 2
 PACKAGES = ("predictor", "torch", "numpy", "scipy", "SimpleITK", "nibabel", "statsmodels")
 
 
@@ -73,55 +78,127 @@ def load_tensors(path: str | os.PathLike[str]):
         raise ModelError(f"{path}: unreadable or truncated ({str(error)[:160]})") from error
 
 
+@dataclass(frozen=True)
+class ModelInfo:
+    """The typed record of ``model.json``: everything needed to forecast with a model.
+
+    ``schema`` is the format's version; a file of another version is refused
+    with a clear :class:`~predictor.errors.ModelError` (this is the only
+    module that reads or writes ``model.json``).
+    """
+
+    schema: int
+    config: dict  # TrainConfig.to_dict(): network, loss, training
+    seed: int
+    grid: dict  # {"affine": 4x4 RAS mm, "shape": [D, H, W]} of the working grid
+    template: str  # "mni152" or a template folder
+    prepare_settings: dict  # PrepareSettings as asdict() writes it
+    regions: dict  # the region set (RegionSet.raw)
+    cohort: dict  # the sex and diagnosis coding (CohortSettings.to_dict())
+    condition: dict  # {"age_mean": years, "age_sd": years}
+    split: dict  # set -> participant ids
+    training_range: dict  # ages, longest interval, diagnoses and sexes seen, pairs
+    prior: str  # file name of the regional prior
+    prior_warnings: list
+    fingerprint: str  # workspace volumes + config + seed
+    weights_sha256: str = ""
+    versions: dict = field(default_factory=dict)
+    epochs_run: int = 0
+    best_epoch: int = 0
+    stopped_early: bool = False
+    complete: bool = False
+
+    @classmethod
+    def from_json(cls, raw, source: str) -> ModelInfo:
+        if not isinstance(raw, dict):
+            raise ModelError(f"{source}: not a JSON object")
+        if raw.get("schema") != SCHEMA:
+            found = raw.get("schema", raw.get("format", "none"))
+            raise ModelError(
+                f"{source}: model schema {found} is not this version's {SCHEMA}; "
+                "retrain with this version of predictor"
+            )
+        known = {item.name: item for item in fields(cls)}
+        required = [name for name, item in known.items() if item.default is MISSING
+                    and item.default_factory is MISSING]
+        missing = [key for key in required if key not in raw]
+        if missing:
+            raise ModelError(f"{source}: missing key(s) {', '.join(missing)}")
+        unknown = sorted(set(raw) - set(known))
+        if unknown:
+            raise ModelError(f"{source}: unknown key(s) {', '.join(unknown)}")
+        return cls(**raw)
+
+    def to_json(self) -> dict:
+        return asdict(self)
+
+    @cached_property
+    def region_set(self) -> RegionSet:
+        return RegionSet.from_dict(self.regions, MODEL_JSON)
+
+    @cached_property
+    def coding(self) -> CohortSettings:
+        return CohortSettings.from_dict(self.cohort, MODEL_JSON)
+
+    @property
+    def labels(self) -> tuple[str, ...]:
+        return self.coding.diagnosis_labels
+
+    @property
+    def grid_affine(self) -> np.ndarray:
+        return np.asarray(self.grid["affine"], dtype=float)
+
+    @property
+    def grid_shape(self) -> tuple[int, int, int]:
+        return tuple(int(n) for n in self.grid["shape"])
+
+    @property
+    def condition_size(self) -> int:
+        """Width of the conditioning vector: age, sex indicators, diagnosis one-hot."""
+        return condition_size(self.coding)
+
+
 @dataclass(frozen=True, eq=False)
 class TrainedModel:
     """A loaded model folder: the network (eval mode), its description and its prior."""
 
     folder: Path
     network: VelocityNet
-    info: dict
+    info: ModelInfo
     prior: object  # predictor.regression.MixedEffectsForecaster
 
     @property
-    def labels(self) -> list[str]:
-        return list(self.info["condition"]["labels"])
+    def labels(self) -> tuple[str, ...]:
+        return self.info.labels
 
     @property
     def checksum(self) -> str:
-        return self.info["weights_sha256"]
+        return self.info.weights_sha256
 
 
-def read_model_json(folder: str | os.PathLike[str]) -> dict:
-    """``model.json`` of a model folder, checked for the keys forecasting needs."""
+def read_model_json(folder: str | os.PathLike[str]) -> ModelInfo:
+    """``model.json`` of a model folder as a :class:`ModelInfo`."""
     path = Path(folder) / MODEL_JSON
     if not path.is_file():
         raise ModelError(f"{folder}: not a model folder ({MODEL_JSON} missing); run train")
     try:
-        info = json.loads(path.read_text())
+        raw = json.loads(path.read_text())
     except (ValueError, UnicodeDecodeError) as error:
         raise ModelError(f"{path}: not valid JSON ({error})") from error
-    required = ("format", "config", "grid", "template", "condition", "split", "weights_sha256")
-    missing = [key for key in required if key not in info] if isinstance(info, dict) else required
-    if missing:
-        raise ModelError(f"{path}: missing key(s) {', '.join(missing)}")
-    if info["format"] != FORMAT:
-        raise ModelError(f"{path}: model format {info['format']} is not {FORMAT}")
-    from predictor.pairs import PRIOR_REGIONS
-
-    if info.get("regions") != list(PRIOR_REGIONS):
-        raise ModelError(
-            f"{path}: made for the regions {info.get('regions')}, not this version's "
-            f"{list(PRIOR_REGIONS)}"
-        )
+    info = ModelInfo.from_json(raw, str(path))
+    try:
+        info.region_set, info.coding  # noqa: B018 (validated here, once)
+    except PredictorError as error:
+        raise ModelError(f"{path}: {error}") from error
     return info
 
 
-def build_network(info: dict) -> VelocityNet:
+def build_network(info: ModelInfo) -> VelocityNet:
     """An untrained network with the architecture that ``info`` describes."""
     from predictor.config import settings_from_table
 
-    settings = settings_from_table(NetworkSettings, info["config"]["network"], MODEL_JSON)
-    return VelocityNet(settings, 2 + len(info["condition"]["labels"]))
+    settings = settings_from_table(NetworkSettings, info.config["network"], MODEL_JSON)
+    return VelocityNet(settings, info.condition_size)
 
 
 def load_model(folder: str | os.PathLike[str]) -> TrainedModel:
@@ -131,7 +208,7 @@ def load_model(folder: str | os.PathLike[str]) -> TrainedModel:
     folder = Path(folder)
     info = read_model_json(folder)
     weights = folder / WEIGHTS
-    if weights.is_file() and sha256_file(weights) != info["weights_sha256"]:
+    if weights.is_file() and sha256_file(weights) != info.weights_sha256:
         raise ModelError(
             f"{weights}: does not match {MODEL_JSON} (checksum differs: changed, "
             "truncated or from another training)"
@@ -150,12 +227,10 @@ def load_model(folder: str | os.PathLike[str]) -> TrainedModel:
     return TrainedModel(folder, network, info, load_mixed_model(folder / PRIOR))
 
 
-def write_model_json(folder: str | os.PathLike[str], info: dict) -> Path:
+def write_model_json(folder: str | os.PathLike[str], info: ModelInfo) -> Path:
     """Write ``model.json`` with the checksum of the current ``weights.pt``."""
     folder = Path(folder)
-    payload = info | {
-        "format": FORMAT,
-        "weights_sha256": sha256_file(folder / WEIGHTS),
-        "versions": package_versions(),
-    }
-    return write_json(folder / MODEL_JSON, payload)
+    stamped = replace(
+        info, weights_sha256=sha256_file(folder / WEIGHTS), versions=package_versions()
+    )
+    return write_json(folder / MODEL_JSON, stamped.to_json())

@@ -11,7 +11,7 @@ and makes the integration eight times cheaper. The output layer starts at
 zero, so an untrained network forecasts no change.
 
 Shapes: image ``(B, C, D, H, W)`` with ``C = 1`` (normalised T1) or ``4``
-(T1, GM, WM, CSF probabilities); condition ``(B, 2 + L)`` from
+(T1, GM, WM, CSF probabilities); condition ``(B, S + L)`` from
 :func:`encode_condition`; velocity ``(B, 3, d, h, w)`` on the coarse grid in
 coarse voxels per year; displacements ``(B, 3, D, H, W)`` in working-grid
 voxels (see :mod:`predictor.fields`).
@@ -34,12 +34,12 @@ COARSE_FACTOR = 2
 
 @dataclass(frozen=True)
 class NetworkSettings:
-    """Network size (defaults in ``configs/train.toml``)."""
+    """Network size (``[network]`` of ``configs/train.toml``)."""
 
-    channels: tuple[int, ...] = (8, 16, 24, 32)  # features per level, full resolution first
-    tissue_channels: bool = True  # GM, WM, CSF probabilities as extra input channels
-    condition_width: int = 32  # width of the conditioning embedding
-    integration_steps: int = 7  # scaling-and-squaring steps (2**steps sub-steps)
+    channels: tuple[int, ...]  # features per level, full resolution first
+    tissue_channels: bool  # GM, WM, CSF probabilities as extra input channels
+    condition_width: int  # width of the conditioning embedding
+    integration_steps: int  # scaling-and-squaring steps (2**steps sub-steps)
 
     def __post_init__(self):
         if len(self.channels) < 2 or any(int(c) < 1 for c in self.channels):
@@ -52,19 +52,26 @@ class NetworkSettings:
         return 4 if self.tissue_channels else 1
 
 
+def condition_size(coding) -> int:
+    """Width of the conditioning vector for a cohort coding: 1 + (S - 1) + L."""
+    return len(coding.sex_codes) + len(coding.diagnosis_labels)
+
+
 def encode_condition(
-    age_years: np.ndarray,
-    male: np.ndarray,
-    diagnosis_index: np.ndarray,
-    age_mean: float,
-    age_sd: float,
-    labels: int,
+    age_years, sex, diagnosis, coding, age_mean: float, age_sd: float
 ) -> torch.Tensor:
-    """Conditioning vectors (B, 2 + labels): standardised age, sex (+-0.5), diagnosis one-hot."""
+    """Conditioning vectors (B, S + L): standardised age, sex indicators, diagnosis one-hot.
+
+    ``sex`` and ``diagnosis`` are codes of ``coding`` (a
+    :class:`~predictor.config.CohortSettings`); each sex code after the first
+    (the reference) has an indicator centred at 0 (+-0.5).
+    """
     age = (np.asarray(age_years, dtype=np.float32) - age_mean) / age_sd
-    sex = np.asarray(male, dtype=np.float32) - 0.5
-    one_hot = np.eye(labels, dtype=np.float32)[np.asarray(diagnosis_index, dtype=int)]
-    return torch.from_numpy(np.column_stack([age, sex, one_hot]).astype(np.float32))
+    indicators = coding.sex_indicators(sex).astype(np.float32) - 0.5
+    labels = list(coding.diagnosis_labels)
+    index = [labels.index(label) for label in diagnosis]
+    one_hot = np.eye(len(labels), dtype=np.float32)[np.asarray(index, dtype=int)]
+    return torch.from_numpy(np.column_stack([age, indicators, one_hot]).astype(np.float32))
 
 
 class ConditionedBlock(nn.Module):

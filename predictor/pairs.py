@@ -7,7 +7,10 @@
 * :func:`attach_prior`: the regression prior's forecast ratio and its
   predictive SD for each pair (a mixed-effects model fitted on the training
   participants only);
-* :class:`ScanStore`: working-grid arrays of each scan, read lazily from the
+* :func:`grid_entry` / :func:`network_input` / :func:`region_weights`: the one
+  builder of the network's input and region maps from a prepared scan, used by
+  training and forecasting alike;
+* :class:`ScanStore`: working-grid entries of each scan, read lazily from the
   workspace with a bounded cache (memory stays flat as a cohort grows);
 * :func:`make_batch`: tensors of a list of pairs, with the augmentation drawn
   from a seeded generator.
@@ -15,12 +18,10 @@
 
 from __future__ import annotations
 
-import json
 import os
 import warnings
 from collections import OrderedDict
 from dataclasses import dataclass
-from pathlib import Path
 
 import nibabel as nib
 import numpy as np
@@ -28,51 +29,11 @@ import pandas as pd
 import torch
 
 from predictor.errors import DataError
-from predictor.prepare import RESULT, SCANS
-from predictor.volumes import REGIONS
+from predictor.regions import RegionSet
+from predictor.rng import seeded_rng
+from predictor.workspace import Layout
 
-#: regions whose volume the network's Jacobian forecasts and the prior constrains
-#: (intracranial volume too: the skull does not move, so what tissue loses CSF gains)
-PRIOR_REGIONS = ("hippocampus_left", "hippocampus_right", "ventricles", "total_gm", "wm", "icv")
-#: -1: may only shrink, +1: may only grow, 0: no direction (the monotone term)
-REGION_DIRECTION = (-1.0, -1.0, 1.0, -1.0, -1.0, 0.0)
-#: the two regions exchanged by a left-right flip
-FLIPPED = {0: 1, 1: 0}
 SETS = ("train", "validation", "test")
-
-
-@dataclass(frozen=True)
-class Workspace:
-    """A prepared workspace: its volume table and working grid."""
-
-    root: Path
-    volumes: pd.DataFrame  # one row per complete scan (volumes.tsv)
-    grid_affine: np.ndarray  # (4, 4) RAS mm
-    grid_shape: tuple[int, int, int]
-    template: str
-    prepare_settings: dict
-
-
-def read_workspace(work: str | os.PathLike[str]) -> Workspace:
-    """Read ``volumes.tsv`` and ``prepare.json`` of a prepared workspace."""
-    root = Path(work)
-    for name in ("volumes.tsv", "prepare.json"):
-        if not (root / name).is_file():
-            raise DataError(f"{root}: not a prepared workspace ({name} missing); run prepare")
-    volumes = pd.read_csv(root / "volumes.tsv", sep="\t", dtype={"key": str})
-    if volumes.empty:
-        raise DataError(f"{root / 'volumes.tsv'}: no prepared scans")
-    prepared = json.loads((root / "prepare.json").read_text())
-    first = json.loads((root / SCANS / volumes["key"].iloc[0] / RESULT).read_text())
-    diagnostics = first["diagnostics"]
-    return Workspace(
-        root,
-        volumes.sort_values(["participant_id", "age"], kind="stable").reset_index(drop=True),
-        np.asarray(diagnostics["grid_affine"], dtype=float),
-        tuple(int(n) for n in diagnostics["grid_shape"]),
-        prepared["template"],
-        prepared["settings"],
-    )
 
 
 def split_participants(
@@ -87,8 +48,6 @@ def split_participants(
     follow-up at least ``min_test_years`` after baseline; validation from the
     rest of those with any follow-up; everyone else trains.
     """
-    from predictor.phantoms.participants import seeded_rng
-
     rng = seeded_rng(seed, 7)
     span = volumes.groupby("participant_id")["age"].agg(lambda a: a.max() - a.min())
     diagnosis = volumes.groupby("participant_id")["diagnosis"].first()
@@ -123,13 +82,12 @@ def _stratified_draw(candidates, diagnosis, size, rng) -> list[str]:
     return sorted(chosen)
 
 
-def visit_pairs(volumes: pd.DataFrame, participants) -> pd.DataFrame:
+def visit_pairs(volumes: pd.DataFrame, participants, regions: RegionSet) -> pd.DataFrame:
     """Every (earlier -> later) visit pair of the given participants.
 
     Columns: participant_id, sex, diagnosis, age (baseline of the pair,
-    years), years (interval), base_key, follow_key, and for every region of
-    :data:`~predictor.volumes.REGIONS`: ``<region>`` (baseline mL) and
-    ``<region>_follow`` (follow-up mL).
+    years), years (interval), base_key, follow_key, and for every region:
+    ``<region>`` (baseline mL) and ``<region>_follow`` (follow-up mL).
     """
     rows = []
     chosen = volumes[volumes["participant_id"].isin(set(participants))]
@@ -148,56 +106,87 @@ def visit_pairs(volumes: pd.DataFrame, participants) -> pd.DataFrame:
                     "base_key": base["key"],
                     "follow_key": follow["key"],
                 }
-                for region in REGIONS:
+                for region in regions.names:
                     row[region] = float(base[region])
                     row[f"{region}_follow"] = float(follow[region])
                 rows.append(row)
     return pd.DataFrame(rows)
 
 
-def fit_prior(volumes: pd.DataFrame, participants):
+def fit_prior(volumes: pd.DataFrame, participants, regions: RegionSet, coding):
     """Mixed-effects model of every region fitted on ``participants`` only.
 
-    Returns (model, warnings). Training constrains :data:`PRIOR_REGIONS` with
-    it; forecasts report it beside the network for every region.
+    Returns (model, warnings). Training constrains the prior regions with it;
+    forecasts report it beside the network for every region. ``coding`` is the
+    workspace's :class:`~predictor.config.CohortSettings`.
     """
     from predictor.regression import MixedEffectsForecaster
 
     table = volumes[volumes["participant_id"].isin(set(participants))]
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", RuntimeWarning)
-        model = MixedEffectsForecaster().fit(table, list(REGIONS))
+        model = MixedEffectsForecaster(coding=coding).fit(table, list(regions.names))
     return model, [str(w.message) for w in caught if issubclass(w.category, RuntimeWarning)]
 
 
-def attach_prior(pairs: pd.DataFrame, prior) -> pd.DataFrame:
-    """Add ``<region>_prior`` (forecast / baseline volume) and ``<region>_prior_sd`` to pairs."""
+def attach_prior(pairs: pd.DataFrame, prior, names) -> pd.DataFrame:
+    """Add ``<region>_prior`` (forecast / baseline volume) and ``<region>_prior_sd`` to pairs.
+
+    ``names`` are the prior regions (:attr:`~predictor.regions.RegionSet.prior`).
+    """
     request = pairs.reset_index(drop=True)
     request = request.assign(participant_id=[f"pair{k}" for k in range(len(request))])
-    ratio = {region: np.zeros(len(request)) for region in PRIOR_REGIONS}
-    spread = {region: np.zeros(len(request)) for region in PRIOR_REGIONS}
+    ratio = {region: np.zeros(len(request)) for region in names}
+    spread = {region: np.zeros(len(request)) for region in names}
     for years, index in request.groupby("years").groups.items():
         subset = request.loc[index]
         forecast = prior.predict(subset, [years]).set_index(["region", "participant_id"])
-        for region in PRIOR_REGIONS:
+        for region in names:
             values = forecast.loc[region].loc[subset["participant_id"]]
             baseline = subset[region].to_numpy()
             ratio[region][index] = values["mean_ml"].to_numpy() / baseline
             spread[region][index] = values["sd_ml"].to_numpy() / baseline
-    columns = {f"{region}_prior": ratio[region] for region in PRIOR_REGIONS}
-    columns |= {f"{region}_prior_sd": spread[region] for region in PRIOR_REGIONS}
+    columns = {f"{region}_prior": ratio[region] for region in names}
+    columns |= {f"{region}_prior_sd": spread[region] for region in names}
     return pairs.reset_index(drop=True).assign(**columns)
 
 
-class ScanStore:
-    """Working-grid arrays of prepared scans, read on demand, at most ``capacity`` kept.
+def grid_entry(t1, mask, tissue, deep) -> torch.Tensor:
+    """One prepared scan's working-grid arrays as one float32 tensor (5 + n, D, H, W).
 
-    Each entry is a float32 tensor (8, D, H, W): T1, brain mask, GM, WM, CSF,
-    left and right hippocampus, ventricles.
+    Channels: T1, brain mask, GM, WM, CSF, then the n deep regions; ``tissue``
+    (D, H, W, 3) and ``deep`` (D, H, W, n) as :class:`~predictor.prepare.PreparedScan`
+    holds them. Training (from the workspace files) and forecasting (from a
+    prepared scan in memory) both build their inputs from this.
+    """
+    arrays = [
+        np.asarray(t1, dtype=np.float32)[None],
+        np.asarray(mask, dtype=np.float32)[None],
+        np.moveaxis(np.asarray(tissue, dtype=np.float32), -1, 0),
+        np.moveaxis(np.asarray(deep, dtype=np.float32), -1, 0),
+    ]
+    return torch.from_numpy(np.ascontiguousarray(np.concatenate(arrays, axis=0)))
+
+
+def network_input(entry: torch.Tensor, tissue_channels: bool, gain: float = 1.0) -> torch.Tensor:
+    """The network's input (C, D, H, W) from a :func:`grid_entry`: T1 x gain [, GM, WM, CSF]."""
+    t1 = entry[:1] * gain if gain != 1.0 else entry[:1]
+    return torch.cat([t1, entry[2:5]]) if tissue_channels else t1
+
+
+def region_weights(entry: torch.Tensor, regions: RegionSet, names) -> torch.Tensor:
+    """Weight maps (R, D, H, W) of the regions ``names`` from a :func:`grid_entry`."""
+    return regions.maps(entry[2:], names)
+
+
+class ScanStore:
+    """Working-grid entries (:func:`grid_entry`) of prepared scans, read on demand.
+
+    At most ``capacity`` are kept, so memory stays flat as a cohort grows.
     """
 
     def __init__(self, work: str | os.PathLike[str], capacity: int = 64):
-        self.root = Path(work) / SCANS
+        self.layout = Layout(work)
         self.capacity = capacity
         self._cache: OrderedDict[str, torch.Tensor] = OrderedDict()
 
@@ -205,42 +194,20 @@ class ScanStore:
         if key in self._cache:
             self._cache.move_to_end(key)
             return self._cache[key]
-        folder = self.root / key
+        files = self.layout.scan(key)
         try:
-            arrays = [
-                np.asarray(nib.load(folder / "grid_T1w.nii.gz").dataobj, dtype=np.float32)[None],
-                np.asarray(nib.load(folder / "grid_mask.nii.gz").dataobj, dtype=np.float32)[None],
-                np.moveaxis(_read4d(folder / "grid_probseg.nii.gz"), -1, 0),
-                np.moveaxis(_read4d(folder / "grid_regions.nii.gz"), -1, 0),
-            ]
+            tensor = grid_entry(
+                *(nib.load(path).dataobj for path in (files.t1, files.mask)),
+                *(nib.load(path).dataobj for path in (files.tissue, files.regions)),
+            )
         except (OSError, ValueError) as error:
             raise DataError(
-                f"{folder}: working-grid files unreadable ({error}); rerun prepare"
+                f"{files.folder}: working-grid files unreadable ({error}); rerun prepare"
             ) from error
-        tensor = torch.from_numpy(np.ascontiguousarray(np.concatenate(arrays, axis=0)))
         self._cache[key] = tensor
         if len(self._cache) > self.capacity:
             self._cache.popitem(last=False)
         return tensor
-
-
-def region_maps(arrays: torch.Tensor) -> torch.Tensor:
-    """:data:`PRIOR_REGIONS` weights (R, D, H, W) of a :class:`ScanStore` entry."""
-    return prior_region_weights(arrays[5:8], arrays[2:5])
-
-
-def prior_region_weights(deep: torch.Tensor, tissue: torch.Tensor) -> torch.Tensor:
-    """:data:`PRIOR_REGIONS` weights (R, D, H, W) from the deep regions and the tissues.
-
-    ``deep`` (3, D, H, W) are the hippocampi and ventricles, ``tissue`` (3, D, H, W)
-    GM, WM and CSF; the intracranial volume is the sum of the three tissues.
-    """
-    gm, wm, csf = tissue
-    return torch.cat([deep, torch.stack([gm, wm, gm + wm + csf])])
-
-
-def _read4d(path: Path) -> np.ndarray:
-    return np.asarray(nib.load(path).dataobj, dtype=np.float32)
 
 
 @dataclass(frozen=True)
@@ -252,7 +219,7 @@ class Batch:
     followup: torch.Tensor  # (B, 1, D, H, W)
     mask: torch.Tensor  # (B, 1, D, H, W) union of both brain masks
     tissue: torch.Tensor  # (B, D, H, W) GM + WM fraction of the baseline
-    regions: torch.Tensor  # (B, R, D, H, W) PRIOR_REGIONS weights of the baseline
+    regions: torch.Tensor  # (B, R, D, H, W) prior-region weights of the baseline
     condition: torch.Tensor  # (B, K)
     years: torch.Tensor  # (B,)
     prior: torch.Tensor  # (B, R) forecast/baseline volume ratio
@@ -264,6 +231,7 @@ def make_batch(
     store: ScanStore,
     condition: torch.Tensor,
     tissue_channels: bool,
+    regions: RegionSet,
     rngs: list[np.random.Generator] | None = None,
     gain_sd: float = 0.0,
     flip_probability: float = 0.0,
@@ -271,32 +239,32 @@ def make_batch(
     """Stack the pairs' arrays; with ``rngs`` (one per pair), draw a flip and an input gain.
 
     A left-right flip mirrors every array along the first (R-L) axis and
-    swaps the hippocampi in the regions and the prior; the gain multiplies
-    only the network's input T1, never the images the loss compares.
+    swaps mirror partners (e.g. the hippocampi) in the regions and the prior;
+    the gain multiplies only the network's input T1, never the images the
+    loss compares. The regions are ``regions.prior``.
     """
+    names = regions.prior
     items = []
     for k, pair in enumerate(pairs.itertuples(index=False)):
         base, follow = store[pair.base_key], store[pair.follow_key]
-        order = list(range(len(PRIOR_REGIONS)))
+        order = list(range(len(names)))
         gain, flip = 1.0, False
         if rngs is not None:
             gain = float(np.exp(rngs[k].normal(0.0, gain_sd)))
             flip = bool(rngs[k].random() < flip_probability)
         if flip:
             base, follow = base.flip(1), follow.flip(1)
-            order = [FLIPPED.get(i, i) for i in order]
-        prior = np.array([getattr(pair, f"{r}_prior") for r in PRIOR_REGIONS])[order]
-        prior_sd = np.array([getattr(pair, f"{r}_prior_sd") for r in PRIOR_REGIONS])[order]
-        regions = region_maps(base)[order]
-        inputs = torch.cat([base[:1] * gain, base[2:5]]) if tissue_channels else base[:1] * gain
+            order = regions.mirrored(names)
+        prior = np.array([getattr(pair, f"{r}_prior") for r in names])[order]
+        prior_sd = np.array([getattr(pair, f"{r}_prior_sd") for r in names])[order]
         items.append(
             (
-                inputs,
+                network_input(base, tissue_channels, gain),
                 base[:1],
                 follow[:1],
                 torch.maximum(base[1:2], follow[1:2]),
                 base[2] + base[3],
-                regions,
+                region_weights(base, regions, names)[order],
                 condition[k],
                 pair.years,
                 prior,

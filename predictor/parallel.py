@@ -17,21 +17,28 @@ def run_all(
     arguments: Sequence[tuple],
     jobs: int = 1,
     progress: Callable[[], None] | None = None,
+    initializer: Callable[[], None] | None = None,
 ) -> list:
     """``[function(*a) for a in arguments]``, in ``jobs`` processes when ``jobs > 1``.
 
     Results keep the order of ``arguments``; ``progress()`` is called after
-    each item. ``function`` must be importable (defined at module level).
+    each item; ``initializer()`` runs once in each worker (or once here when
+    the items run in this process). ``function`` and ``initializer`` must be
+    importable (defined at module level).
     """
     results = []
     if jobs > 1 and len(arguments) > 1:
         context = multiprocessing.get_context("spawn")
-        with ProcessPoolExecutor(max_workers=jobs, mp_context=context) as pool:
+        with ProcessPoolExecutor(
+            max_workers=jobs, mp_context=context, initializer=initializer
+        ) as pool:
             for future in [pool.submit(function, *argument) for argument in arguments]:
                 results.append(future.result())
                 if progress:
                     progress()
         return results
+    if initializer:
+        initializer()
     for argument in arguments:
         results.append(function(*argument))
         if progress:

@@ -1,23 +1,8 @@
 """``predictor prepare``: a cohort -> a workspace of prepared scans, with a content cache.
 
-Workspace layout (WORK)::
-
-    prepare.json         template and settings of this workspace
-    cohort.tsv           the validated cohort with each scan's cache key
-    scans/<key>/         one folder per scan; result.json is written last and
-                         marks the entry complete (anything else is redone)
-        grid_T1w.nii.gz      normalised T1 on the working grid (template space)
-        grid_mask.nii.gz     brain mask on the working grid
-        grid_probseg.nii.gz  GM, WM, CSF probabilities on the working grid (4D)
-        grid_regions.nii.gz  left and right hippocampus and ventricles (their tissue
-                             fraction inside the region) on the working grid (4D)
-        native_dseg.nii.gz   most likely tissue in the scan's own space (1 GM, 2 WM, 3 CSF)
-        result.json          volumes, native<->template transforms, fit diagnostics
-    volumes.tsv          one row per scan: regions in mL and % of total brain volume
-    failures.tsv         scans that failed, with the reason
-
-The cache key hashes the image (and mask) bytes, the settings and the
-template, so a second run does no work for unchanged scans, and a shard of a
+The workspace's files are named by :mod:`predictor.workspace`. The cache key
+hashes the image (and mask) bytes, the settings, the template and the region
+set, so a second run does no work for unchanged scans, and a shard of a
 cluster array job (``--shard K/N``) writes only its own entries.
 """
 
@@ -27,15 +12,14 @@ import hashlib
 import json
 import os
 import shutil
-from dataclasses import asdict, dataclass, field
-from functools import lru_cache
+from dataclasses import asdict, dataclass
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from predictor import __version__
-from predictor.config import CONFIG_DIR, read_toml
+from predictor.config import CohortSettings, load_settings
 from predictor.errors import ConfigError, PredictorError, ScanError
 from predictor.files import exclusive, redact_folders, sha256_file, write_json, write_tsv
 from predictor.nifti import Scan, load_scan, save_array
@@ -51,52 +35,95 @@ from predictor.preprocess import (
     single_threaded_itk,
     white_matter_scale,
 )
+from predictor.regions import TISSUES, TOTAL_BRAIN, RegionSet
 from predictor.segment import fit_mixture
 from predictor.spatial import grid_affine
-from predictor.templates import DEEP_REGIONS, TISSUES, Template, load_template
-from predictor.volumes import (
-    REGIONS,
-    percent_of_brain,
-    region_volumes,
-    unmixed_fraction,
-)
+from predictor.templates import Template, load_template
+from predictor.volumes import region_volumes, unmixed_fraction
+from predictor.workspace import Layout, ScanFiles, volume_table
+
+
+@dataclass(frozen=True)
+class N4Settings:
+    """N4 bias-field correction (``[n4]`` of ``configs/prepare.toml``)."""
+
+    shrink_factor: int
+    fit_spacing_mm: float
+    iterations: tuple[int, ...]
+    convergence: float
+
+
+@dataclass(frozen=True)
+class RegistrationSettings:
+    """Affine registration to the template (``[registration]``)."""
+
+    template_mm: float
+    histogram_bins: int
+    sampling_fraction: float
+    shrink_factors: tuple[int, ...]
+    smoothing_mm: tuple[float, ...]
+    iterations: int
+    learning_rate: float
+    max_metric: float
+    max_affine_volume_change: float
+    volume_scale: tuple[float, float]
+
+    def __post_init__(self):
+        if len(self.shrink_factors) != len(self.smoothing_mm) or len(self.shrink_factors) < 2:
+            raise ValueError("'shrink_factors' and 'smoothing_mm' need one entry per level (>= 2)")
+
+
+@dataclass(frozen=True)
+class MaskSettings:
+    """Brain-mask refinement (``[mask]``)."""
+
+    threshold_of_wm: float
+    dilate_mm: float
+
+
+@dataclass(frozen=True)
+class SegmentationSettings:
+    """Tissue mixture fitted by EM (``[segmentation]``)."""
+
+    em_iterations: int
+    prior_floor: float
+    csf_core_prior: float
+
+
+@dataclass(frozen=True)
+class ChecksSettings:
+    """Plausibility checks (``[checks]``)."""
+
+    brain_ml: tuple[float, float]
 
 
 @dataclass(frozen=True)
 class PrepareSettings:
-    """All settings of the prepare stage (defaults in ``configs/prepare.toml``)."""
+    """All settings of the prepare stage (``configs/prepare.toml``)."""
 
     grid_mm: float
     grid_margin_mm: float
-    n4: dict = field(default_factory=dict)
-    registration: dict = field(default_factory=dict)
-    mask: dict = field(default_factory=dict)
-    segmentation: dict = field(default_factory=dict)
-    checks: dict = field(default_factory=dict)
+    n4: N4Settings
+    registration: RegistrationSettings
+    mask: MaskSettings
+    segmentation: SegmentationSettings
+    checks: ChecksSettings
 
     def __post_init__(self):
         if not 1.0 <= self.grid_mm <= 8.0:
-            raise ConfigError(f"grid_mm must be within 1-8 mm, got {self.grid_mm}")
+            raise ValueError(f"'grid_mm' must be within 1-8 mm, got {self.grid_mm}")
 
     @classmethod
     def from_toml(cls, path: str | os.PathLike[str] | None = None, **overrides) -> PrepareSettings:
-        raw = read_toml(Path(path) if path else CONFIG_DIR / "prepare.toml")
-        raw |= {key: value for key, value in overrides.items() if value is not None}
-        try:
-            return cls(**raw)
-        except TypeError as error:
-            raise ConfigError(f"prepare settings: {error}") from error
+        """``configs/prepare.toml`` with the file at ``path`` over it, then ``overrides``
+        (keyword per key, a dict per section)."""
+        given = {key: value for key, value in overrides.items() if value is not None}
+        return load_settings(cls, "prepare.toml", path, overrides=given)
 
     @classmethod
     def from_dict(cls, stored: dict) -> PrepareSettings:
         """Settings recorded by a run (e.g. in model.json), completed with today's defaults."""
-        defaults = asdict(cls.from_toml())
-        merged = {
-            key: defaults[key] | value if isinstance(value, dict) else value
-            for key, value in stored.items()
-            if key in defaults
-        }
-        return cls(**(defaults | merged))
+        return load_settings(cls, "prepare.toml", overrides=stored)
 
     def fingerprint(self) -> str:
         return json.dumps(asdict(self), sort_keys=True)
@@ -139,83 +166,57 @@ def prepare_scan(
     """Bias correction, registration, brain mask, normalisation, segmentation, volumes.
 
     A known ``registration`` (template -> native) skips the registration step.
+    Regions are those of ``template.region_set``. For sums that repeat bit for
+    bit, run :func:`~predictor.preprocess.single_threaded_itk` once per process
+    first (the cohort's workers and the forecast do).
     """
-    single_threaded_itk()
     data, affine = scan.data, scan.affine
-    voxel_mm = float(scan.voxel_size_mm.mean())
     head = head_mask(data) if given_mask is None else given_mask
     corrected, _ = n4_correct(data, affine, head, settings.n4)
-    if registration is None:
-        registration = register_affine(corrected, affine, template, settings.registration)
-    if registration.metric > float(settings.registration["max_metric"]):
-        raise ScanError(f"registration did not converge (metric {registration.metric:.3f})")
-    scale = abs(float(np.linalg.det(registration.template_to_native[:3, :3])))
-    low, high = settings.registration["volume_scale"]
-    if not low <= scale <= high:
-        raise ScanError(f"registration implausible: template volume scaled by {scale:.2f}")
+    registration = _checked_registration(corrected, affine, template, settings, registration)
     native_to_template = np.linalg.inv(registration.template_to_native)
 
     def to_native(array):
         return resample(array, template.affine, affine, data.shape, native_to_template)
 
     priors = np.stack([to_native(template.priors[tissue]) for tissue in TISSUES], axis=-1)
-    if given_mask is None:
-        carried = to_native(template.brain_mask.astype(np.float32))
-        rough = corrected / white_matter_scale(corrected, priors[..., 1], carried > 0.5)
-        brain = refine_brain_mask(carried, rough, voxel_mm, settings.mask)
-    else:
-        brain = given_mask
+    brain = given_mask
+    if brain is None:
+        brain = _brain_mask(scan, corrected, priors, template, to_native, settings)
     if brain.sum() == 0:
         raise ScanError("the brain mask is empty")
     normalised = corrected / white_matter_scale(corrected, priors[..., 1], brain)
     posterior, mixture = fit_mixture(
         normalised[brain],
         priors[brain],
-        int(settings.segmentation["em_iterations"]),
-        float(settings.segmentation["prior_floor"]),
-        float(settings.segmentation["csf_core_prior"]),
+        settings.segmentation.em_iterations,
+        settings.segmentation.prior_floor,
+        settings.segmentation.csf_core_prior,
     )
     tissue = {name: np.zeros(data.shape, np.float32) for name in TISSUES}
     for index, name in enumerate(TISSUES):
         tissue[name][brain] = posterior[:, index]
-    regions = {}
-    for spec in template.regions:
-        content = tissue[spec.tissue]
-        if spec.unmix_with:
-            pure, other = mixture[f"{spec.tissue}_mean"], mixture[f"{spec.unmix_with}_mean"]
-            content = np.where(brain, unmixed_fraction(normalised, pure, other), 0.0)
-        weight = to_native(spec.mask.astype(np.float32))
-        if spec.grow_mm:
-            weight = grow_region(weight > 0.5, content, voxel_mm, spec.grow_mm)
-        regions[spec.name] = (content, weight)
-    grown = [regions[spec.name][1] for spec in template.regions if spec.grow_mm]
-    if grown:  # a grown region (with its partial-volume rim) is not also part of another
-        claimed = np.max(grown, axis=0)
-        for spec in template.regions:
-            if not spec.grow_mm:
-                content, weight = regions[spec.name]
-                regions[spec.name] = (content, weight * (1.0 - claimed))
-    deep = {name: content * weight for name, (content, weight) in regions.items()}
-    volumes = region_volumes(tissue, deep, scan.voxel_volume_ml)
-    low, high = settings.checks["brain_ml"]
-    if not low <= volumes["brain"] <= high:
-        raise ScanError(f"brain volume {volumes['brain']:.0f} mL is outside {low:g}-{high:g} mL")
-
-    grid, shape = working_grid(template, settings)
-    to_grid = registration.template_to_native
-
-    def onto_grid(array):
-        return resample(array, affine, grid, shape, to_grid)
-
+    deep = _deep_regions(template, tissue, normalised, brain, mixture, to_native, scan)
+    volumes = region_volumes(tissue, deep, scan.voxel_volume_ml, template.region_set)
+    low, high = settings.checks.brain_ml
+    if not low <= volumes[TOTAL_BRAIN] <= high:
+        raise ScanError(
+            f"brain volume {volumes[TOTAL_BRAIN]:.0f} mL is outside {low:g}-{high:g} mL"
+        )
     labels = np.zeros(data.shape, np.uint8)
     labels[brain] = np.argmax(posterior, axis=1).astype(np.uint8) + 1
+    grid, shape = working_grid(template, settings)
+
+    def onto_grid(array):
+        return resample(array, affine, grid, shape, registration.template_to_native)
+
     return PreparedScan(
         volumes=volumes,
         template_to_native=registration.template_to_native,
         grid_t1=onto_grid(normalised),
         grid_mask=onto_grid(brain.astype(np.float32)) > 0.5,
         grid_tissue=np.stack([onto_grid(tissue[name]) for name in TISSUES], axis=-1),
-        grid_regions=np.stack([onto_grid(deep[name]) for name in DEEP_REGIONS], axis=-1),
+        grid_regions=np.stack([onto_grid(deep[name]) for name in template.region_set.deep], -1),
         native_tissue=tissue,
         native_deep=deep,
         native_labels=labels,
@@ -231,30 +232,83 @@ def prepare_scan(
     )
 
 
+def _checked_registration(corrected, affine, template, settings, registration) -> Registration:
+    """The template -> native registration (computed unless given), checked for plausibility."""
+    if registration is None:
+        registration = register_affine(corrected, affine, template, settings.registration)
+    if registration.metric > settings.registration.max_metric:
+        raise ScanError(f"registration did not converge (metric {registration.metric:.3f})")
+    scale = abs(float(np.linalg.det(registration.template_to_native[:3, :3])))
+    low, high = settings.registration.volume_scale
+    if not low <= scale <= high:
+        raise ScanError(f"registration implausible: template volume scaled by {scale:.2f}")
+    return registration
+
+
+def _brain_mask(scan, corrected, priors, template, to_native, settings) -> np.ndarray:
+    """The template brain mask carried to the scan and refined on its intensities."""
+    carried = to_native(template.brain_mask.astype(np.float32))
+    rough = corrected / white_matter_scale(corrected, priors[..., 1], carried > 0.5)
+    return refine_brain_mask(carried, rough, float(scan.voxel_size_mm.mean()), settings.mask)
+
+
+def _deep_regions(template, tissue, normalised, brain, mixture, to_native, scan) -> dict:
+    """Each deep region's tissue fraction inside its carried mask (native grid).
+
+    A grown region (with its partial-volume rim) is not also part of another.
+    """
+    voxel_mm = float(scan.voxel_size_mm.mean())
+    regions = {}
+    for spec in template.regions:
+        content = tissue[spec.tissue]
+        if spec.unmix_with:
+            pure, other = mixture[f"{spec.tissue}_mean"], mixture[f"{spec.unmix_with}_mean"]
+            content = np.where(brain, unmixed_fraction(normalised, pure, other), 0.0)
+        weight = to_native(spec.mask.astype(np.float32))
+        if spec.grow_mm:
+            weight = grow_region(weight > 0.5, content, voxel_mm, spec.grow_mm)
+        regions[spec.name] = (content, weight)
+    grown = [regions[spec.name][1] for spec in template.regions if spec.grow_mm]
+    if grown:
+        claimed = np.max(grown, axis=0)
+        for spec in template.regions:
+            if not spec.grow_mm:
+                content, weight = regions[spec.name]
+                regions[spec.name] = (content, weight * (1.0 - claimed))
+    return {name: content * weight for name, (content, weight) in regions.items()}
+
+
 # --- workspace: cache, parallel scans, shards -------------------------------------------------
-SCANS = "scans"
-RESULT = "result.json"
-TSV_ID = ("participant_id", "session_id", "age", "sex", "diagnosis")
 #: bumped whenever a cache entry gains or changes a file, so older entries are redone
-CACHE_FORMAT = 2
+CACHE_FORMAT = 3
+_TEMPLATES: dict[tuple[str, str], Template] = {}
 
 
 def scan_key(row, settings: PrepareSettings, template: Template) -> str:
-    """Cache key: hash of the image (and mask) bytes, the settings, the template and version."""
+    """Cache key: hash of the image (and mask) bytes, the settings, template, regions, version."""
     digest = hashlib.sha256()
     digest.update(sha256_file(row["image"]).encode())
     if row.get("brain_mask"):
         digest.update(sha256_file(row["brain_mask"]).encode())
     digest.update(settings.fingerprint().encode())
     digest.update(template.checksum.encode())
+    digest.update(template.region_set.fingerprint.encode())
     digest.update(f"{__version__}/{CACHE_FORMAT}".encode())
     return digest.hexdigest()[:20]
 
 
-@lru_cache(maxsize=2)
-def cached_template(spec: str) -> Template:
-    """:func:`~predictor.templates.load_template`, kept for the process (two at most)."""
-    return load_template(spec)
+def cached_template(spec: str, regions: RegionSet) -> Template:
+    """:func:`~predictor.templates.load_template`, kept for the process (two at most).
+
+    Keyed by the template and the region set's content, so a model or workspace
+    with other regions never reuses masks made for these.
+    """
+    key = (str(spec), regions.fingerprint)
+    if key not in _TEMPLATES:
+        while len(_TEMPLATES) >= 2:
+            _TEMPLATES.pop(next(iter(_TEMPLATES)))
+        _TEMPLATES[key] = load_template(spec, regions)
+    return _TEMPLATES[key]
 
 
 def parse_shard(text: str | None) -> tuple[int, int]:
@@ -270,44 +324,49 @@ def parse_shard(text: str | None) -> tuple[int, int]:
     return part, parts
 
 
-def _run_scan(row: dict, folder: str, template_spec: str, settings: PrepareSettings) -> dict:
+def _run_scan(row: dict, folder: str, template_spec: str, regions: dict, settings) -> dict:
     """Prepare one scan into its cache folder; return its result or its failure reason.
 
-    The entry is locked while it is checked and written, so two runs on one
-    workspace take turns on a scan instead of deleting each other's work.
+    Runs in a worker process (ITK made single-threaded there, once). The entry
+    is locked while it is checked and written, so two runs on one workspace
+    take turns on a scan instead of deleting each other's work.
     """
-    folder = Path(folder)
-    with exclusive(folder.parent / f".{folder.name}.lock"):
-        if (folder / RESULT).is_file():
-            return json.loads((folder / RESULT).read_text()) | {"cached": True}
-        if folder.exists():  # a half-written entry from an interrupted run is never trusted
-            shutil.rmtree(folder)
-        return _prepare_entry(row, folder, template_spec, settings)
+    files = ScanFiles(Path(folder))
+    with exclusive(files.lock):
+        if files.result.is_file():
+            return files.read_result() | {"cached": True}
+        if files.folder.exists():  # a half-written entry from an interrupted run is never trusted
+            shutil.rmtree(files.folder)
+        template = cached_template(template_spec, RegionSet.from_dict(regions))
+        return _prepare_entry(row, files, template, settings)
 
 
-def _prepare_entry(row: dict, folder: Path, template_spec: str, settings: PrepareSettings):
+def _load_row(row: dict) -> tuple[Scan, np.ndarray | None]:
+    """The scan of a cohort row and its given brain mask (or None)."""
+    scan = load_scan(row["image"])
+    if not row.get("brain_mask"):
+        return scan, None
+    mask_scan = load_scan(row["brain_mask"])
+    if mask_scan.data.shape != scan.data.shape:
+        raise ScanError(
+            f"{Path(row['brain_mask']).name}: brain mask shape "
+            f"{mask_scan.data.shape} differs from the scan's {scan.data.shape}"
+        )
+    return scan, mask_scan.data > 0.5
+
+
+def _prepare_entry(row: dict, files: ScanFiles, template: Template, settings) -> dict:
     try:
-        scan = load_scan(row["image"])
-        mask = None
-        if row.get("brain_mask"):
-            mask_scan = load_scan(row["brain_mask"])
-            if mask_scan.data.shape != scan.data.shape:
-                raise ScanError(
-                    f"{Path(row['brain_mask']).name}: brain mask shape "
-                    f"{mask_scan.data.shape} differs from the scan's {scan.data.shape}"
-                )
-            mask = mask_scan.data > 0.5
-        prepared = prepare_scan(scan, cached_template(template_spec), settings, mask)
+        scan, mask = _load_row(row)
+        prepared = prepare_scan(scan, template, settings, mask)
     except PredictorError as error:
         return {"failed": redact_folders(str(error), row["image"], row.get("brain_mask"))}
     grid = np.asarray(prepared.diagnostics["grid_affine"])
-    save_array(prepared.grid_t1, grid, folder / "grid_T1w.nii.gz")
-    save_array(prepared.grid_mask.astype(np.uint8), grid, folder / "grid_mask.nii.gz", np.uint8)
-    save_array(prepared.grid_tissue, grid, folder / "grid_probseg.nii.gz")
-    save_array(prepared.grid_regions, grid, folder / "grid_regions.nii.gz")
-    save_array(
-        prepared.native_labels, prepared.native_affine, folder / "native_dseg.nii.gz", np.uint8
-    )
+    save_array(prepared.grid_t1, grid, files.t1)
+    save_array(prepared.grid_mask.astype(np.uint8), grid, files.mask, np.uint8)
+    save_array(prepared.grid_tissue, grid, files.tissue)
+    save_array(prepared.grid_regions, grid, files.regions)
+    save_array(prepared.native_labels, prepared.native_affine, files.labels, np.uint8)
     result = {
         "volumes_ml": prepared.volumes,
         "template_to_native": prepared.template_to_native.tolist(),
@@ -315,7 +374,7 @@ def _prepare_entry(row: dict, folder: Path, template_spec: str, settings: Prepar
         "image_name": Path(row["image"]).name,
         "diagnostics": prepared.diagnostics,
     }
-    write_json(folder / RESULT, result)
+    write_json(files.result, result)
     return result | {"cached": False}
 
 
@@ -327,27 +386,43 @@ def prepare_cohort(
     jobs: int = 1,
     shard: tuple[int, int] = (1, 1),
     progress=None,
+    regions: RegionSet | None = None,
+    coding: CohortSettings | None = None,
 ) -> dict:
     """Prepare every scan of a validated cohort (or one shard of it) into ``work``.
 
+    ``regions`` and ``coding`` (the cohort settings the table was read with)
+    default to the shipped ``configs/``; both are recorded in the workspace.
     Returns counts: prepared, cached, failed; writes ``volumes.tsv`` and
     ``failures.tsv`` from all complete entries of the cohort.
     """
     settings = settings or PrepareSettings.from_toml()
-    work = Path(work)
+    regions = regions or RegionSet.from_toml()
+    coding = coding or CohortSettings.from_toml()
+    layout = Layout(Path(work))
     template_spec = str(template) if str(template) == "mni152" else str(Path(template).resolve())
-    loaded = cached_template(template_spec)
+    loaded = cached_template(template_spec, regions)
     rows = cohort.to_dict("records")
     keys = [scan_key(row, settings, loaded) for row in rows]
     part, parts = shard
     mine = [index for index, key in enumerate(keys) if int(key, 16) % parts == part - 1]
     write_json(
-        work / "prepare.json",
-        {"template": template_spec, "settings": asdict(settings), "version": __version__},
+        layout.prepare_json,
+        {
+            "template": template_spec,
+            "settings": asdict(settings),
+            "regions": regions.raw,
+            "cohort": coding.to_dict(),
+            "version": __version__,
+        },
     )
-    write_tsv(work / "cohort.tsv", cohort.assign(key=keys))
-    arguments = [(rows[i], str(work / SCANS / keys[i]), template_spec, settings) for i in mine]
-    results = dict(zip(mine, run_all(_run_scan, arguments, jobs, progress), strict=True))
+    write_tsv(layout.cohort, cohort.assign(key=keys))
+    arguments = [
+        (rows[i], str(layout.scan(keys[i]).folder), template_spec, regions.raw, settings)
+        for i in mine
+    ]
+    outcomes = run_all(_run_scan, arguments, jobs, progress, initializer=single_threaded_itk)
+    results = dict(zip(mine, outcomes, strict=True))
     summary = {
         "prepared": sum(not r.get("cached") and "failed" not in r for r in results.values()),
         "cached": sum(bool(r.get("cached")) for r in results.values()),
@@ -364,29 +439,17 @@ def prepare_cohort(
         if "failed" in r
     ]
     write_tsv(
-        work / "failures.tsv",
+        layout.failures,
         pd.DataFrame(failures, columns=["participant_id", "session_id", "image", "reason"]),
     )
-    write_tsv(work / "volumes.tsv", workspace_volumes(work))
+    write_tsv(layout.volumes, volume_table(layout, regions))
     return summary
 
 
 def workspace_volumes(work: str | os.PathLike[str]) -> pd.DataFrame:
-    """Volume table of a workspace's complete entries: mL and % of total brain volume."""
-    work = Path(work)
-    if not (work / "cohort.tsv").is_file():
-        raise ConfigError(f"{work}: not a prepared workspace (cohort.tsv missing)")
-    cohort = pd.read_csv(work / "cohort.tsv", sep="\t", dtype={"key": str})
-    rows = []
-    for record in cohort.to_dict("records"):
-        result = work / SCANS / record["key"] / RESULT
-        if result.is_file():
-            volumes = json.loads(result.read_text())["volumes_ml"]
-            rows.append(
-                {key: record[key] for key in TSV_ID}
-                | {"key": record["key"]}
-                | volumes
-                | percent_of_brain(volumes)
-            )
-    columns = [*TSV_ID, "key", *REGIONS, *(f"{r}_pct_tbv" for r in REGIONS)]
-    return pd.DataFrame(rows, columns=columns)
+    """Volume table of a workspace's complete entries (its own recorded regions)."""
+    layout = Layout(Path(work))
+    if not layout.prepare_json.is_file():
+        raise ConfigError(f"{work}: not a prepared workspace (prepare.json missing)")
+    recorded = json.loads(layout.prepare_json.read_text())
+    return volume_table(layout, RegionSet.from_dict(recorded["regions"], str(layout.prepare_json)))

@@ -12,7 +12,7 @@ Parallelism comes from preparing several scans at once (``--jobs``).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import lru_cache
 
 import numpy as np
@@ -48,11 +48,11 @@ def largest_component_filled(mask: np.ndarray, empty_message: str) -> np.ndarray
     return ndimage.binary_fill_holes(largest)
 
 
-def n4_correct(array: np.ndarray, affine: np.ndarray, mask: np.ndarray, settings: dict):
+def n4_correct(array: np.ndarray, affine: np.ndarray, mask: np.ndarray, settings):
     """N4 bias-field correction (SimpleITK) fitted on a shrunk image, applied at full size.
 
-    The shrink factor is ``settings['shrink_factor']``, or more where the voxels are
-    fine, so that the fitted grid's spacing is at least ``settings['fit_spacing_mm']``
+    The shrink factor is ``settings.shrink_factor``, or more where the voxels are
+    fine, so that the fitted grid's spacing is at least ``settings.fit_spacing_mm``
     (a bias field is smooth over centimetres). Returns the corrected array and the
     estimated multiplicative bias field.
     """
@@ -60,14 +60,14 @@ def n4_correct(array: np.ndarray, affine: np.ndarray, mask: np.ndarray, settings
     mask_image = to_sitk(mask.astype(np.uint8), affine)
     voxel_mm = min(image.GetSpacing())
     shrink = max(
-        int(settings["shrink_factor"]),
-        int(np.ceil(float(settings["fit_spacing_mm"]) / voxel_mm - 1e-6)),
+        settings.shrink_factor,
+        int(np.ceil(settings.fit_spacing_mm / voxel_mm - 1e-6)),
     )
     small = sitk.Shrink(image, [shrink] * 3)
     small_mask = sitk.Shrink(mask_image, [shrink] * 3)
     corrector = sitk.N4BiasFieldCorrectionImageFilter()
-    corrector.SetMaximumNumberOfIterations([int(n) for n in settings["iterations"]])
-    corrector.SetConvergenceThreshold(float(settings["convergence"]))
+    corrector.SetMaximumNumberOfIterations(list(settings.iterations))
+    corrector.SetConvergenceThreshold(settings.convergence)
     corrector.Execute(small, small_mask)
     log_field, _ = from_sitk(corrector.GetLogBiasFieldAsImage(image))
     field = np.exp(log_field).astype(np.float32)
@@ -85,17 +85,17 @@ class Registration:
 
 
 def register_affine(
-    array: np.ndarray, affine: np.ndarray, template: Template, settings: dict
+    array: np.ndarray, affine: np.ndarray, template: Template, settings
 ) -> Registration:
     """Affine registration of a scan to the template (SimpleITK, Mattes mutual information).
 
     Multi-resolution, moment-based start; the template (fixed) is resampled to
-    ``settings['template_mm']`` (when finer) and its dilated brain mask limits the metric.
+    ``settings.template_mm`` (when finer) and its dilated brain mask limits the metric.
     A scan with finer voxels is smoothed and resampled to that spacing first: the
     metric samples the scan at the template's points, so finer detail only aliases
     (and a 1 mm scan costs eight times the work).
     """
-    spacing = max(float(settings["template_mm"]), template.voxel_mm)  # never upsample
+    spacing = max(settings.template_mm, template.voxel_mm)  # never upsample
     fixed = _resampled_template(template, spacing)
     fixed_mask = _resampled_template(template, spacing, mask=True)
     moving = coarsened(to_sitk(array.astype(np.float32), affine), spacing)
@@ -105,10 +105,11 @@ def register_affine(
     similarity = sitk.CenteredTransformInitializer(
         fixed, moving, sitk.Similarity3DTransform(), sitk.CenteredTransformInitializerFilter.MOMENTS
     )
-    coarse = settings | {
-        "shrink_factors": settings["shrink_factors"][:-1],
-        "smoothing_mm": settings["smoothing_mm"][:-1],
-    }
+    coarse = replace(
+        settings,
+        shrink_factors=settings.shrink_factors[:-1],
+        smoothing_mm=settings.smoothing_mm[:-1],
+    )
     first, first_method = _run_registration(fixed, fixed_mask, moving, similarity, coarse)
     start = sitk.AffineTransform(3)
     start.SetCenter(similarity.GetCenter())
@@ -122,7 +123,7 @@ def register_affine(
     final, method = _run_registration(fixed, fixed_mask, moving, start, settings)
     matrix, kept = affine_to_matrix(final), affine_to_matrix(first)
     change = abs(np.linalg.det(matrix[:3, :3]) / np.linalg.det(kept[:3, :3]))
-    limit = float(settings["max_affine_volume_change"])
+    limit = settings.max_affine_volume_change
     if not 1 / limit <= change <= limit:
         # the affine stage should refine shear and anisotropy, not the overall size that the
         # similarity stage already found: a large change in volume means it went astray
@@ -142,20 +143,20 @@ def register_affine(
 
 def _run_registration(fixed, fixed_mask, moving, initial, settings):
     method = sitk.ImageRegistrationMethod()
-    method.SetMetricAsMattesMutualInformation(int(settings["histogram_bins"]))
+    method.SetMetricAsMattesMutualInformation(settings.histogram_bins)
     method.SetMetricSamplingStrategy(method.REGULAR)
-    method.SetMetricSamplingPercentage(float(settings["sampling_fraction"]), 1)
+    method.SetMetricSamplingPercentage(settings.sampling_fraction, 1)
     method.SetMetricFixedMask(fixed_mask)
     method.SetInterpolator(sitk.sitkLinear)
     method.SetOptimizerAsRegularStepGradientDescent(
-        learningRate=float(settings["learning_rate"]),
+        learningRate=settings.learning_rate,
         minStep=1e-4,
-        numberOfIterations=int(settings["iterations"]),
+        numberOfIterations=settings.iterations,
         gradientMagnitudeTolerance=1e-8,
     )
     method.SetOptimizerScalesFromPhysicalShift()
-    method.SetShrinkFactorsPerLevel([int(s) for s in settings["shrink_factors"]])
-    method.SetSmoothingSigmasPerLevel([float(s) for s in settings["smoothing_mm"]])
+    method.SetShrinkFactorsPerLevel(list(settings.shrink_factors))
+    method.SetSmoothingSigmasPerLevel(list(settings.smoothing_mm))
     method.SmoothingSigmasAreSpecifiedInPhysicalUnitsOn()
     method.SetInitialTransform(initial, inPlace=False)
     return method.Execute(fixed, moving), method
@@ -236,16 +237,16 @@ def resample(
 
 
 def refine_brain_mask(
-    carried: np.ndarray, normalised: np.ndarray, voxel_mm: float, settings: dict
+    carried: np.ndarray, normalised: np.ndarray, voxel_mm: float, settings
 ) -> np.ndarray:
     """Template brain mask carried to the scan, refined on the scan's intensities.
 
     Keeps voxels brighter than ``threshold_of_wm`` (white matter = 1) inside the
     carried mask dilated by ``dilate_mm``, then the largest component, holes filled.
     """
-    iterations = max(1, int(round(float(settings["dilate_mm"]) / voxel_mm)))
+    iterations = max(1, int(round(settings.dilate_mm / voxel_mm)))
     region = ndimage.binary_dilation(carried > 0.5, iterations=iterations)
-    mask = region & (normalised > float(settings["threshold_of_wm"]))
+    mask = region & (normalised > settings.threshold_of_wm)
     mask = ndimage.binary_opening(mask, iterations=1)
     return largest_component_filled(mask, "the brain mask is empty")
 

@@ -26,6 +26,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from predictor.config import CohortSettings
 from predictor.errors import DataError
 
 LEVEL = 0.90
@@ -54,7 +55,7 @@ class Pairs:
     followup_ml: np.ndarray
     years: np.ndarray
     age: np.ndarray  # baseline age, years
-    male: np.ndarray  # 1.0 for M
+    sex: np.ndarray  # (P, S - 1) indicators of the sex codes after the reference
     diagnosis: np.ndarray  # labels
 
 
@@ -83,7 +84,7 @@ def baseline_rows(table: pd.DataFrame) -> pd.DataFrame:
     return table.groupby("participant_id", sort=True).head(1).reset_index(drop=True)
 
 
-def make_pairs(table: pd.DataFrame, region: str) -> Pairs:
+def make_pairs(table: pd.DataFrame, region: str, coding: CohortSettings) -> Pairs:
     """All (first visit -> later visit) pairs of a checked table for one region."""
     first = baseline_rows(table).set_index("participant_id")
     later = table[table["years"] > 0]
@@ -94,7 +95,7 @@ def make_pairs(table: pd.DataFrame, region: str) -> Pairs:
         followup_ml=later[region].to_numpy(float),
         years=later["years"].to_numpy(float),
         age=base["age"].to_numpy(float),
-        male=(base["sex"].to_numpy() == "M").astype(float),
+        sex=coding.sex_indicators(base["sex"].to_numpy()),
         diagnosis=base["diagnosis"].to_numpy(),
     )
 
@@ -187,14 +188,10 @@ def trim_mask(residuals: np.ndarray, groups: np.ndarray, share: float = 0.2) -> 
     return keep
 
 
-def ordered_labels(values) -> list[str]:
+def ordered_labels(values, coding: CohortSettings) -> list[str]:
     """Diagnosis labels present in ``values``, in the configured severity order first."""
-    from predictor.config import CohortSettings
-
     present = set(values)
-    configured = [
-        label for label in CohortSettings.from_toml().diagnosis_labels if label in present
-    ]
+    configured = [label for label in coding.diagnosis_labels if label in present]
     return configured + sorted(present - set(configured))
 
 
@@ -204,9 +201,10 @@ class ConformalForecaster:
 
     name = "base"
 
-    def __init__(self, seed: int = 0, trim: float = 0.0):
+    def __init__(self, seed: int = 0, trim: float = 0.0, coding: CohortSettings | None = None):
         self.seed = seed
         self.trim = trim
+        self.coding = coding
 
     # subclasses implement these two on Pairs
     def _fit_point(self, pairs: Pairs):
@@ -217,11 +215,12 @@ class ConformalForecaster:
 
     def fit(self, table: pd.DataFrame, regions: Sequence[str]) -> ConformalForecaster:
         table = check_table(table, regions)
+        self.coding_ = self.coding or CohortSettings.from_toml()
         self.regions_ = list(regions)
-        self.labels_ = ordered_labels(table["diagnosis"])
+        self.labels_ = ordered_labels(table["diagnosis"], self.coding_)
         self.models_, self.quantiles_ = {}, {}
         for region in self.regions_:
-            pairs = make_pairs(table, region)
+            pairs = make_pairs(table, region, self.coding_)
             if len(np.unique(pairs.participant)) < 4:
                 raise DataError(
                     f"region '{region}': fewer than 4 participants with a follow-up visit"
@@ -251,7 +250,7 @@ class ConformalForecaster:
                 followup_ml=np.full(len(grid), np.nan),
                 years=grid["years"].to_numpy(float),
                 age=grid["age"].to_numpy(float),
-                male=(grid["sex"].to_numpy() == "M").astype(float),
+                sex=self.coding_.sex_indicators(grid["sex"].to_numpy()),
                 diagnosis=grid["diagnosis"].to_numpy(),
             )
             mean = np.where(
@@ -324,7 +323,7 @@ class _FeatureForecaster(ConformalForecaster):
 
     def _features(self, pairs: Pairs) -> np.ndarray:
         groups = np.stack([(pairs.diagnosis == label).astype(float) for label in self.labels_], 1)
-        static = np.column_stack([pairs.baseline_ml, pairs.age, pairs.male, groups])
+        static = np.column_stack([pairs.baseline_ml, pairs.age, pairs.sex, groups])
         return np.column_stack([static, static * pairs.years[:, None], pairs.years])
 
     def _fit_point(self, pairs):
@@ -449,14 +448,16 @@ class MixedEffectsForecaster:
         trim: float = 0.0,
         method: str = "powell",
         jobs: int = 1,
+        coding: CohortSettings | None = None,
     ):
         self.icv_column = icv_column
         self.trim = trim
         self.method = method
         self.jobs = jobs
+        self.coding = coding
 
     def _design(self, frame: pd.DataFrame, years: np.ndarray) -> np.ndarray:
-        """Fixed-effects design (N, K): 1, age, male, dx dummies, years, years * dx [, icv]."""
+        """Fixed-effects design (N, K): 1, age, sex, dx dummies, years, years * dx [, icv]."""
         dummies = np.stack(
             [(frame["diagnosis"].to_numpy() == label).astype(float) for label in self.labels_[1:]],
             1,
@@ -464,7 +465,7 @@ class MixedEffectsForecaster:
         columns = [
             np.ones(len(frame)),
             frame["baseline_age"].to_numpy(float) - self.age_ref_,
-            (frame["sex"].to_numpy() == "M").astype(float),
+            self.coding_.sex_indicators(frame["sex"].to_numpy()),
             dummies,
             years,
             dummies * years[:, None],
@@ -475,8 +476,9 @@ class MixedEffectsForecaster:
 
     def fit(self, table: pd.DataFrame, regions: Sequence[str]) -> MixedEffectsForecaster:
         table = check_table(table, [*regions] + ([self.icv_column] if self.icv_column else []))
+        self.coding_ = self.coding or CohortSettings.from_toml()
         self.regions_ = list(regions)
-        self.labels_ = ordered_labels(table["diagnosis"])
+        self.labels_ = ordered_labels(table["diagnosis"], self.coding_)
         self.age_ref_ = float(baseline_rows(table)["age"].mean())
         self.icv_ref_ = float(table[self.icv_column].mean()) if self.icv_column else 0.0
         years = table["years"].to_numpy(float)
@@ -572,6 +574,7 @@ class MixedEffectsForecaster:
             "method": self.method,
             "regions": self.regions_,
             "labels": self.labels_,
+            "coding": self.coding_.to_dict(),
             "age_ref": self.age_ref_,
             "icv_ref": self.icv_ref_,
             "fits": {region: fit.to_dict() for region, fit in self.fits_.items()},
@@ -580,6 +583,7 @@ class MixedEffectsForecaster:
     @classmethod
     def from_dict(cls, raw: dict) -> MixedEffectsForecaster:
         model = cls(raw["icv_column"], raw["trim"], raw["method"])
+        model.coding_ = CohortSettings.from_dict(raw["coding"], "mixed-effects model")
         model.regions_, model.labels_ = list(raw["regions"]), list(raw["labels"])
         model.age_ref_, model.icv_ref_ = float(raw["age_ref"]), float(raw["icv_ref"])
         model.fits_ = {region: MixedFit.from_dict(fit) for region, fit in raw["fits"].items()}
@@ -604,15 +608,21 @@ def load_mixed_model(path) -> MixedEffectsForecaster:
 
 
 def all_forecasters(
-    seed: int = 0, icv_column: str | None = None, jobs: int = 1
+    seed: int = 0, icv_column: str | None = None, jobs: int = 1, coding=None
 ) -> dict[str, object]:
-    """Unfitted instances of every forecaster, keyed by report name."""
+    """Unfitted instances of every forecaster, keyed by report name.
+
+    ``coding`` (a :class:`~predictor.config.CohortSettings`) sets the sex and
+    diagnosis codes; the shipped ``configs/cohort.toml`` when None.
+    """
     return {
-        "mixed-effects": MixedEffectsForecaster(icv_column, jobs=jobs),
-        "mixed-effects-trimmed": MixedEffectsForecaster(icv_column, trim=0.2, jobs=jobs),
-        "svr": SVRForecaster(seed),
-        "svr-trimmed": SVRForecaster(seed, trim=0.2),
-        "ridge": RidgeForecaster(seed),
-        "population-rate": PopulationRateForecaster(seed),
-        "no-change": NoChangeForecaster(seed),
+        "mixed-effects": MixedEffectsForecaster(icv_column, jobs=jobs, coding=coding),
+        "mixed-effects-trimmed": MixedEffectsForecaster(
+            icv_column, trim=0.2, jobs=jobs, coding=coding
+        ),
+        "svr": SVRForecaster(seed, coding=coding),
+        "svr-trimmed": SVRForecaster(seed, trim=0.2, coding=coding),
+        "ridge": RidgeForecaster(seed, coding=coding),
+        "population-rate": PopulationRateForecaster(seed, coding=coding),
+        "no-change": NoChangeForecaster(seed, coding=coding),
     }

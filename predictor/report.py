@@ -20,7 +20,6 @@ from predictor.cautions import CAUTION
 from predictor.compare import FLOOR, JACOBIAN, NETWORK, NETWORKS, Comparison
 from predictor.figures import NETWORK_COLOUR, pyplot, save_figure
 from predictor.files import write_json, write_text, write_tsv
-from predictor.volumes import REGIONS
 
 TABLES = (
     "summary",
@@ -74,20 +73,30 @@ def write_report(comparison: Comparison, out: str | Path) -> Path:
 
 
 # --- figures ------------------------------------------------------------------------------
+def region_axes(regions, height: float):
+    """A figure with one panel per region, four to a row (spare panels hidden)."""
+    rows = int(np.ceil(len(regions) / 4))
+    figure, axes = pyplot().subplots(rows, 4, figsize=(13, height * rows), squeeze=False)
+    for axis in np.ravel(axes)[len(regions) :]:
+        axis.set_visible(False)
+    return figure, list(zip(np.ravel(axes), regions, strict=False))
+
+
 def figure_error_by_region(summary: pd.DataFrame):
     plt = pyplot()
+    regions = list(dict.fromkeys(summary["region"]))
     methods = list(dict.fromkeys(summary["method"]))
     colours = method_colours(methods)
     figure, axis = plt.subplots(figsize=(12, 4.5))
     width = 0.8 / len(methods)
     for k, method in enumerate(methods):
-        rows = summary[summary["method"] == method].set_index("region").loc[list(REGIONS)]
-        x = np.arange(len(REGIONS)) + (k - (len(methods) - 1) / 2) * width
+        rows = summary[summary["method"] == method].set_index("region").loc[regions]
+        x = np.arange(len(regions)) + (k - (len(methods) - 1) / 2) * width
         low = (rows["mean_pct_tbv"] - rows["ci_low_pct_tbv"]).clip(lower=0)
         high = (rows["ci_high_pct_tbv"] - rows["mean_pct_tbv"]).clip(lower=0)
         axis.bar(x, rows["mean_pct_tbv"], width, color=colours[method], label=method,
                  yerr=[low.fillna(0), high.fillna(0)], capsize=2)  # fmt: skip
-    axis.set_xticks(np.arange(len(REGIONS)), [r.replace("_", " ") for r in REGIONS])
+    axis.set_xticks(np.arange(len(regions)), [r.replace("_", " ") for r in regions])
     axis.set_ylabel("mean |error| (% of total brain volume)")
     axis.set_yscale("log")
     axis.legend(fontsize=7, ncol=3)
@@ -98,10 +107,9 @@ def figure_error_by_region(summary: pd.DataFrame):
 
 
 def figure_error_by_horizon(by_horizon: pd.DataFrame):
-    plt = pyplot()
     colours = method_colours(dict.fromkeys(by_horizon["method"]))
-    figure, axes = plt.subplots(2, 4, figsize=(13, 6), sharex=True)
-    for axis, region in zip(np.ravel(axes), REGIONS, strict=True):
+    figure, panels = region_axes(list(dict.fromkeys(by_horizon["region"])), 3.0)
+    for axis, region in panels:
         own = by_horizon[by_horizon["region"] == region]
         for method, rows in own.groupby("method", sort=False):
             years = rows["horizon"].str.replace(" y", "").astype(int)
@@ -113,18 +121,17 @@ def figure_error_by_horizon(by_horizon: pd.DataFrame):
         axis.set_xlabel("horizon (years)", fontsize=8)
         axis.set_ylabel("mean |error| (% TBV)", fontsize=8)
         axis.grid(alpha=0.3)
-    np.ravel(axes)[0].legend(fontsize=6)
+    panels[0][0].legend(fontsize=6)
     figure.suptitle("forecast error against horizon (research use only)", fontsize=11)
     figure.tight_layout()
     return figure
 
 
 def figure_forecast_vs_observed(errors: pd.DataFrame, tests: pd.DataFrame):
-    plt = pyplot()
-    figure, axes = plt.subplots(2, 4, figsize=(13, 6.5))
+    figure, panels = region_axes(list(dict.fromkeys(errors["region"])), 3.25)
     best = tests.groupby("region")["best_regression"].first()
     colours = method_colours(dict.fromkeys(errors["method"]))
-    for axis, region in zip(np.ravel(axes), REGIONS, strict=True):
+    for axis, region in panels:
         own = errors[errors["region"] == region]
         for method in (best[region], NETWORK, JACOBIAN):
             rows = own[own["method"] == method]

@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from predictor.templates import TISSUES
+from predictor.regions import TISSUES
 
 
 def fit_mixture(

@@ -8,8 +8,8 @@ phantom cohort's ``derivatives/phantom-template``) holds::
     template_probseg-CSF.nii.gz, template_mask.nii.gz, template_dseg.nii.gz,
     labels.tsv [, regions.toml]
 
-Its regions come from its own ``regions.toml`` when present, otherwise from
-the ``[phantom]`` table of ``configs/regions.toml``.
+Its deep regions' masks come from its own ``regions.toml`` (one table per
+region) when present, otherwise from ``[masks.phantom]`` of the regions file.
 """
 
 from __future__ import annotations
@@ -23,11 +23,9 @@ import nibabel as nib
 import numpy as np
 from scipy import ndimage
 
-from predictor.config import CONFIG_DIR, read_toml
+from predictor.config import check_keys, read_toml
 from predictor.errors import ConfigError
-
-TISSUES = ("GM", "WM", "CSF")
-DEEP_REGIONS = ("hippocampus_left", "hippocampus_right", "ventricles")
+from predictor.regions import TISSUES, RegionSet
 
 
 @dataclass(frozen=True)
@@ -51,7 +49,8 @@ class Template:
     priors: dict[str, np.ndarray]  # tissue -> probability (float32, same grid)
     brain_mask: np.ndarray  # bool
     affine: np.ndarray
-    regions: tuple[RegionSpec, ...]
+    regions: tuple[RegionSpec, ...]  # the deep regions' masks, in region_set.deep order
+    region_set: RegionSet
 
     @cached_property
     def checksum(self) -> str:
@@ -72,20 +71,20 @@ class Template:
         return float(np.sqrt((self.affine[:3, :3] ** 2).sum(axis=0)).mean())
 
 
+MASK_KEYS = ("box_mm", "labels", "dilate_mm", "grow_mm", "unmix_with", "description")
+
+
 def _region_specs(
-    raw: dict, affine: np.ndarray, shape, labels: np.ndarray | None, source: str
+    regions: RegionSet, definitions: dict, affine: np.ndarray, shape, labels, source: str
 ) -> tuple[RegionSpec, ...]:
+    """The deep regions' masks on the template grid, from their mask definitions."""
     index = np.indices(shape).reshape(3, -1).T
     world = index @ affine[:3, :3].T + affine[:3, 3]
     voxel = float(np.sqrt((affine[:3, :3] ** 2).sum(axis=0)).mean())
     specs = []
-    for name in DEEP_REGIONS:
-        if name not in raw:
-            raise ConfigError(f"{source}: no definition of region '{name}'")
-        spec = raw[name]
-        tissue = spec.get("tissue")
-        if tissue not in TISSUES:
-            raise ConfigError(f"{source}: region '{name}' tissue must be one of GM, WM, CSF")
+    for name, spec in definitions.items():
+        where = f"{source} [{name}]"
+        check_keys(spec, MASK_KEYS, where)
         if "box_mm" in spec:
             (x0, x1), (y0, y1), (z0, z1) = spec["box_mm"]
             inside = (
@@ -99,20 +98,20 @@ def _region_specs(
             mask = inside.reshape(shape)
         elif "labels" in spec:
             if labels is None:
-                raise ConfigError(f"{source}: region '{name}' uses labels but no label map")
+                raise ConfigError(f"{where}: 'labels' given but the template has no label map")
             mask = np.isin(labels, spec["labels"])
         else:
-            raise ConfigError(f"{source}: region '{name}' needs 'box_mm' or 'labels'")
+            raise ConfigError(f"{where}: needs 'box_mm' or 'labels'")
         dilate = float(spec.get("dilate_mm", 0.0))
         if dilate > 0:
             mask = ndimage.binary_dilation(mask, iterations=max(1, int(round(dilate / voxel))))
         unmix = spec.get("unmix_with")
         if unmix is not None and unmix not in TISSUES:
-            raise ConfigError(f"{source}: region '{name}' unmix_with must be GM, WM or CSF")
+            raise ConfigError(f"{where} 'unmix_with': must be GM, WM or CSF")
         specs.append(
             RegionSpec(
                 name,
-                tissue,
+                regions.get(name).tissue,
                 mask,
                 spec.get("description", name),
                 unmix,
@@ -122,7 +121,7 @@ def _region_specs(
     return tuple(specs)
 
 
-def load_mni152() -> Template:
+def load_mni152(regions: RegionSet) -> Template:
     """The MNI152 2009a template and tissue maps from nilearn's package data (offline)."""
     from nilearn import datasets
 
@@ -136,14 +135,20 @@ def load_mni152() -> Template:
     t1 = t1_image.get_fdata(dtype=np.float32)
     t1 = t1 / np.percentile(t1[wm > 0.9], 50)
     affine = t1_image.affine
-    raw = read_toml(CONFIG_DIR / "regions.toml")
-    regions = _region_specs(raw["mni152"], affine, t1.shape, None, "configs/regions.toml")
+    definitions = regions.mask_definitions("mni152")
+    specs = _region_specs(regions, definitions, affine, t1.shape, None, regions.source)
     return Template(
-        "mni152", t1, {"GM": gm, "WM": wm, "CSF": csf}, brain | (tissue > 0.1), affine, regions
+        "mni152",
+        t1,
+        {"GM": gm, "WM": wm, "CSF": csf},
+        brain | (tissue > 0.1),
+        affine,
+        specs,
+        regions,
     )
 
 
-def load_folder_template(folder: str | Path) -> Template:
+def load_folder_template(folder: str | Path, regions: RegionSet) -> Template:
     """A template folder (see the module docstring), e.g. a phantom population template."""
     folder = Path(folder)
     if not (folder / "template_T1w.nii.gz").is_file():
@@ -166,15 +171,16 @@ def load_folder_template(folder: str | Path) -> Template:
     brain = np.asarray(read("template_mask.nii.gz").dataobj) > 0
     own = folder / "regions.toml"
     if own.is_file():
-        raw, source = read_toml(own), str(own)
+        definitions = regions.mask_definitions("phantom", read_toml(own), str(own))
+        source = str(own)
     else:
-        raw, source = read_toml(CONFIG_DIR / "regions.toml")["phantom"], "configs/regions.toml"
-    regions = _region_specs(raw, t1_image.affine, t1.shape, labels, source)
-    return Template(f"folder:{folder.name}", t1, priors, brain, t1_image.affine, regions)
+        definitions, source = regions.mask_definitions("phantom"), regions.source
+    specs = _region_specs(regions, definitions, t1_image.affine, t1.shape, labels, source)
+    return Template(f"folder:{folder.name}", t1, priors, brain, t1_image.affine, specs, regions)
 
 
-def load_template(spec: str | Path) -> Template:
-    """``'mni152'`` or the path of a template folder."""
+def load_template(spec: str | Path, regions: RegionSet) -> Template:
+    """``'mni152'`` or the path of a template folder, with the masks of ``regions``."""
     if str(spec) == "mni152":
-        return load_mni152()
-    return load_folder_template(spec)
+        return load_mni152(regions)
+    return load_folder_template(spec, regions)

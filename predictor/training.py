@@ -22,7 +22,8 @@ import json
 import os
 import time
 from collections.abc import Callable
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
+from functools import cached_property
 from pathlib import Path
 
 import numpy as np
@@ -30,8 +31,8 @@ import pandas as pd
 import torch
 import torch.distributed as dist
 
-from predictor.config import CONFIG_DIR, CohortSettings, read_toml, settings_from_table
-from predictor.errors import ConfigError, DataError, OutputError
+from predictor.config import load_settings, settings_from_table
+from predictor.errors import DataError, OutputError
 from predictor.fields import jacobian_determinant, region_volume_ratio, warp
 from predictor.files import write_tsv
 from predictor.losses import (
@@ -46,7 +47,9 @@ from predictor.losses import (
 from predictor.modelstore import (
     CHECKPOINT,
     PRIOR,
+    SCHEMA,
     WEIGHTS,
+    ModelInfo,
     build_network,
     load_tensors,
     save_tensors,
@@ -54,20 +57,19 @@ from predictor.modelstore import (
 )
 from predictor.network import NetworkSettings, VelocityNet, encode_condition
 from predictor.pairs import (
-    PRIOR_REGIONS,
-    REGION_DIRECTION,
     SETS,
     Batch,
     ScanStore,
     attach_prior,
     fit_prior,
     make_batch,
-    read_workspace,
     split_participants,
     visit_pairs,
 )
-from predictor.phantoms.participants import seeded_rng
+from predictor.regions import TOTAL_BRAIN, RegionSet
 from predictor.regression import save_mixed_model
+from predictor.rng import seeded_rng
+from predictor.workspace import Workspace, read_workspace
 
 TERMS = ("similarity", "smoothness", "monotone", "prior")
 #: validation figures that early stopping can follow: the mean volume error of the forecast
@@ -77,20 +79,20 @@ MONITORS = ("val_volume_error", "val_total")
 
 @dataclass(frozen=True)
 class TrainingSettings:
-    """Trainer settings (defaults in ``configs/train.toml``)."""
+    """Trainer settings (``[training]`` of ``configs/train.toml``)."""
 
-    epochs: int = 20
-    batch_pairs: int = 2
-    learning_rate: float = 1e-3
-    patience: int = 4
-    split: tuple[float, float, float] = (0.8, 0.1, 0.1)
-    test_min_follow_up_years: float = 2.0
-    max_pairs_per_epoch: int = 0
-    gain_sd: float = 0.05
-    flip_probability: float = 0.5
-    seed: int = 0
-    threads: int = 0
-    monitor: str = "val_volume_error"  # early stopping and best weights follow this
+    epochs: int
+    batch_pairs: int
+    learning_rate: float
+    patience: int
+    split: tuple[float, float, float]
+    test_min_follow_up_years: float
+    max_pairs_per_epoch: int
+    gain_sd: float
+    flip_probability: float
+    seed: int
+    threads: int
+    monitor: str  # early stopping and best weights follow this
 
     def __post_init__(self):
         if self.monitor not in MONITORS:
@@ -113,30 +115,27 @@ class TrainConfig:
 
     @classmethod
     def from_toml(cls, path: str | os.PathLike[str] | None = None) -> TrainConfig:
-        """Read ``configs/train.toml`` (or ``path``, e.g. ``configs/train-tiny.toml``)."""
-        path = Path(path) if path is not None else CONFIG_DIR / "train.toml"
-        return cls.from_dict(read_toml(path), str(path))
+        """``configs/train.toml`` with the file at ``path`` (e.g. ``configs/train-tiny.toml``)
+        laid over it."""
+        return load_settings(cls, "train.toml", path)
 
     @classmethod
     def from_dict(cls, raw: dict, source: str = "config") -> TrainConfig:
-        parts = {"network": NetworkSettings, "loss": LossSettings, "training": TrainingSettings}
-        unknown = sorted(set(raw) - set(parts))
-        if unknown:
-            raise ConfigError(f"{source}: unknown table(s) {', '.join(unknown)}")
-        return cls(
-            **{
-                name: settings_from_table(kind, raw.get(name, {}), f"{source} [{name}]")
-                for name, kind in parts.items()
-            }
-        )
+        """A complete configuration as :meth:`to_dict` writes it (e.g. from model.json)."""
+        return settings_from_table(cls, raw, source)
 
     def to_dict(self) -> dict:
         return {name: asdict(getattr(self, name)) for name in ("network", "loss", "training")}
 
 
 # --- one batch ------------------------------------------------------------------------------
-def batch_terms(network: VelocityNet, batch: Batch, loss: LossSettings):
-    """Loss terms of a batch, and the forecast region ratios (B, R) and warped baseline."""
+def batch_terms(network: VelocityNet, batch: Batch, loss: LossSettings, direction: torch.Tensor):
+    """Loss terms of a batch, and the forecast region ratios (B, R) and warped baseline.
+
+    ``direction`` (R,) is each prior region's expected sign of change
+    (:meth:`~predictor.regions.RegionSet.directions`); regions that grow (the
+    ventricles) may not shrink voxel by voxel, brain tissue may not grow.
+    """
     module = network.module if hasattr(network, "module") else network
     velocity = network(batch.inputs, batch.condition)
     shape = tuple(batch.baseline.shape[2:])
@@ -148,12 +147,11 @@ def batch_terms(network: VelocityNet, batch: Batch, loss: LossSettings):
     ratio = region_volume_ratio(batch.regions, determinant)
     ratio_earlier = region_volume_ratio(batch.regions, jacobian_determinant(earlier))
     log_jacobian = torch.log(determinant.clamp(min=1e-3))
-    direction = torch.tensor(REGION_DIRECTION)
-    ventricles = batch.regions[:, PRIOR_REGIONS.index("ventricles")]
+    growing = batch.regions[:, direction > 0].sum(dim=1)
     terms = {
         "similarity": similarity(warped, batch.followup, batch.mask, loss),
         "smoothness": smoothness(velocity),
-        "monotone": monotone_voxels(log_jacobian, batch.tissue, ventricles)
+        "monotone": monotone_voxels(log_jacobian, batch.tissue, growing)
         + monotone_regions(ratio_earlier, ratio, direction),
         "prior": prior_z2(ratio, batch.prior, batch.prior_sd),
     }
@@ -171,69 +169,88 @@ class Run:
 
     config: TrainConfig
     seed: int
-    workspace: object
+    workspace: Workspace
     split: dict
     pairs: dict  # set -> DataFrame of pairs with prior columns
     conditions: dict  # set -> (P, K) tensor
-    info: dict  # model.json content without checksums
+    info: ModelInfo  # model.json content before the weights' checksum
 
+    @property
+    def regions(self) -> RegionSet:
+        return self.workspace.regions
 
-def prepare_run(work, config: TrainConfig, seed: int) -> tuple[Run, object, list[str]]:
-    """Split, pairs, prior and conditioning statistics of a workspace; returns the prior too."""
-    workspace = read_workspace(work)
-    volumes = workspace.volumes
-    settings = config.training
-    split = split_participants(volumes, settings.split, settings.test_min_follow_up_years, seed)
-    prior, prior_warnings = fit_prior(volumes, split["train"])
-    pairs = {name: attach_prior(visit_pairs(volumes, split[name]), prior) for name in SETS}
-    if pairs["train"].empty:
-        raise DataError("the training participants have no follow-up visits: nothing to learn")
-    cohort = CohortSettings.from_toml()
-    labels = list(cohort.diagnosis_labels)
-    ages = pairs["train"]["age"].to_numpy()
-    age_mean, age_sd = float(ages.mean()), float(max(ages.std(), 1.0))
+    @property
+    def direction(self) -> torch.Tensor:
+        return torch.from_numpy(self.regions.directions(self.regions.prior))
 
-    def condition(frame):
-        return encode_condition(
-            frame["age"].to_numpy(),
-            (frame["sex"] == "M").to_numpy(),
-            [labels.index(d) for d in frame["diagnosis"]],
-            age_mean,
-            age_sd,
-            len(labels),
+    def batch(self, name: str, rows: np.ndarray, rngs=None) -> Batch:
+        """The batch of pairs ``rows`` of the set ``name`` (augmented when ``rngs`` given)."""
+        training = self.config.training
+        return make_batch(
+            self.pairs[name].iloc[rows],
+            self.store,
+            self.conditions[name][rows],
+            self.config.network.tissue_channels,
+            self.regions,
+            rngs,
+            training.gain_sd if rngs else 0.0,
+            training.flip_probability if rngs else 0.0,
         )
 
-    conditions = {name: condition(frame) for name, frame in pairs.items() if not frame.empty}
-    digest = hashlib.sha256((workspace.root / "volumes.tsv").read_bytes())
+    @cached_property
+    def store(self) -> ScanStore:
+        return ScanStore(self.workspace.root)
+
+
+def prepare_run(work, config: TrainConfig, seed: int) -> tuple[Run, object]:
+    """Split, pairs, prior and conditioning statistics of a workspace; returns the prior too."""
+    workspace = read_workspace(work)
+    volumes, regions, coding = workspace.volumes, workspace.regions, workspace.cohort
+    settings = config.training
+    split = split_participants(volumes, settings.split, settings.test_min_follow_up_years, seed)
+    prior, prior_warnings = fit_prior(volumes, split["train"], regions, coding)
+    pairs = {
+        name: attach_prior(visit_pairs(volumes, split[name], regions), prior, regions.prior)
+        for name in SETS
+    }
+    if pairs["train"].empty:
+        raise DataError("the training participants have no follow-up visits: nothing to learn")
+    ages = pairs["train"]["age"].to_numpy()
+    age_mean, age_sd = float(ages.mean()), float(max(ages.std(), 1.0))
+    conditions = {
+        name: encode_condition(
+            frame["age"].to_numpy(), frame["sex"], frame["diagnosis"], coding, age_mean, age_sd
+        )
+        for name, frame in pairs.items()
+        if not frame.empty
+    }
+    digest = hashlib.sha256(workspace.layout.volumes.read_bytes())
     digest.update(json.dumps(config.to_dict(), sort_keys=True).encode())
     digest.update(str(seed).encode())
     train_rows = volumes[volumes["participant_id"].isin(split["train"])]
-    info = {
-        "config": config.to_dict(),
-        "seed": seed,
-        "grid": {"affine": workspace.grid_affine.tolist(), "shape": list(workspace.grid_shape)},
-        "template": workspace.template,
-        "prepare_settings": workspace.prepare_settings,
-        "regions": list(PRIOR_REGIONS),
-        "condition": {
-            "age_mean": age_mean,
-            "age_sd": age_sd,
-            "labels": labels,
-            "sex_codes": list(cohort.sex_codes),
-        },
-        "split": split,
-        "training_range": {
+    info = ModelInfo(
+        schema=SCHEMA,
+        config=config.to_dict(),
+        seed=seed,
+        grid={"affine": workspace.grid_affine.tolist(), "shape": list(workspace.grid_shape)},
+        template=workspace.template,
+        prepare_settings=workspace.prepare_settings,
+        regions=regions.raw,
+        cohort=coding.to_dict(),
+        condition={"age_mean": age_mean, "age_sd": age_sd},
+        split=split,
+        training_range={
             "age_years": [float(train_rows["age"].min()), float(train_rows["age"].max())],
             "max_horizon_years": float(pairs["train"]["years"].max()),
             "diagnoses": sorted(set(train_rows["diagnosis"])),
             "sexes": sorted(set(train_rows["sex"])),
             "pairs": len(pairs["train"]),
         },
-        "prior": PRIOR,
-        "prior_warnings": prior_warnings,
-        "fingerprint": digest.hexdigest()[:20],
-    }
-    return Run(config, seed, workspace, split, pairs, conditions, info), prior, prior_warnings
+        prior=PRIOR,
+        prior_warnings=prior_warnings,
+        fingerprint=digest.hexdigest()[:20],
+    )
+    return Run(config, seed, workspace, split, pairs, conditions, info), prior
 
 
 def _distributed() -> tuple[int, int]:
@@ -248,26 +265,22 @@ def _batches(count: int, size: int, order: np.ndarray) -> list[np.ndarray]:
     return [order[start : start + size] for start in range(0, count, size)]
 
 
-def evaluate(network, run: Run, store: ScanStore, rank: int = 0, world: int = 1) -> dict:
+def evaluate(network, run: Run, rank: int = 0, world: int = 1) -> dict:
     """Validation loss terms (full weights) and forecast errors against the no-change forecast.
 
     Errors: image MSE inside the brain (normalised intensity^2), and each
-    region's absolute volume error as % of the baseline total brain volume.
+    prior region's absolute volume error as % of the baseline total brain volume.
     """
-    pairs = run.pairs["validation"]
-    loss = run.config.loss
-    weights = loss.weights(10**6)
+    pairs, names = run.pairs["validation"], run.regions.prior
+    weights = run.config.loss.weights(10**6)
     sums = {f"val_{name}": 0.0 for name in (*TERMS, "total", "image_mse", "image_mse_no_change")}
-    for region in PRIOR_REGIONS:
+    for region in names:
         sums[f"val_error_{region}"] = sums[f"val_error_{region}_no_change"] = 0.0
-    count = 0
     mine = np.arange(len(pairs))[rank::world]
     with torch.no_grad():
         for chunk in _batches(len(mine), run.config.training.batch_pairs, mine):
-            frame = pairs.iloc[chunk]
-            conditions = run.conditions["validation"][chunk]
-            batch = make_batch(frame, store, conditions, run.config.network.tissue_channels)
-            terms, ratio, warped = batch_terms(network, batch, loss)
+            batch = run.batch("validation", chunk)
+            terms, ratio, warped = batch_terms(network, batch, run.config.loss, run.direction)
             size = len(chunk)
             for name in TERMS:
                 sums[f"val_{name}"] += float(terms[name]) * size
@@ -280,8 +293,9 @@ def evaluate(network, run: Run, store: ScanStore, rank: int = 0, world: int = 1)
                 sums["val_image_mse_no_change"] += float(
                     masked_mse(batch.baseline[one], batch.followup[one], batch.mask[one])
                 )
-            brain = frame["brain"].to_numpy()
-            for j, region in enumerate(PRIOR_REGIONS):
+            frame = pairs.iloc[chunk]
+            brain = frame[TOTAL_BRAIN].to_numpy()
+            for j, region in enumerate(names):
                 base = frame[region].to_numpy()
                 truth = frame[f"{region}_follow"].to_numpy()
                 forecast = base * ratio[:, j].numpy()
@@ -289,18 +303,55 @@ def evaluate(network, run: Run, store: ScanStore, rank: int = 0, world: int = 1)
                 sums[f"val_error_{region}_no_change"] += float(
                     (100 * np.abs(base - truth) / brain).sum()
                 )
-            count += size
-    if world > 1:
-        packed = torch.tensor([*sums.values(), count], dtype=torch.float64)
-        dist.all_reduce(packed)
-        sums = dict(zip(sums, packed[:-1].tolist(), strict=True))
-        count = int(packed[-1])
+    sums, count = _summed(sums, len(mine), world)
     means = {name: value / max(count, 1) for name, value in sums.items()}
-    means["val_volume_error"] = float(np.mean([means[f"val_error_{r}"] for r in PRIOR_REGIONS]))
+    means["val_volume_error"] = float(np.mean([means[f"val_error_{r}"] for r in names]))
     means["val_volume_error_no_change"] = float(
-        np.mean([means[f"val_error_{r}_no_change"] for r in PRIOR_REGIONS])
+        np.mean([means[f"val_error_{r}_no_change"] for r in names])
     )
     return means
+
+
+def _summed(sums: dict, count: int, world: int) -> tuple[dict, int]:
+    """The sums and count added over every process (all-reduce under torchrun)."""
+    if world == 1:
+        return sums, count
+    packed = torch.tensor([*sums.values(), count], dtype=torch.float64)
+    dist.all_reduce(packed)
+    return dict(zip(sums, packed[:-1].tolist(), strict=True)), int(packed[-1])
+
+
+@dataclass
+class EarlyStopping:
+    """Follows the monitored validation figure: the best epoch and the epochs without progress."""
+
+    patience: int
+    epoch: int = 0
+    best_monitored: float = float("inf")
+    best_epoch: int = 0
+    bad_epochs: int = 0
+
+    @property
+    def stopped(self) -> bool:
+        return self.bad_epochs >= self.patience
+
+    def update(self, monitored: float) -> bool:
+        """Record one finished epoch; True when it is the best so far."""
+        self.epoch += 1
+        improved = monitored < self.best_monitored
+        if improved:
+            self.best_monitored, self.best_epoch, self.bad_epochs = monitored, self.epoch, 0
+        else:
+            self.bad_epochs += 1
+        return improved
+
+    def state(self) -> dict:
+        return {
+            "epoch": self.epoch,
+            "best_monitored": self.best_monitored,
+            "best_epoch": self.best_epoch,
+            "bad_epochs": self.bad_epochs,
+        }
 
 
 def train(
@@ -325,119 +376,113 @@ def train(
     seed = int(seed if seed is not None else settings.seed)
     model_dir = Path(model_dir)
     rank, world = _distributed()
-    checkpoint_path = model_dir / CHECKPOINT
-    if checkpoint_path.exists() and not (resume or force):
+    if (model_dir / CHECKPOINT).exists() and not (resume or force):
         raise OutputError(
             f"{model_dir}: holds a trained model; pass --resume to continue or --force to restart"
         )
     threads = settings.threads or (max(1, (os.cpu_count() or 1) // world) if world > 1 else 0)
     if threads:
         torch.set_num_threads(threads)
-
-    run, prior, _ = prepare_run(work, config, seed)
+    run, prior = prepare_run(work, config, seed)
     network = _initial_network(run.info, seed)
     optimiser = torch.optim.Adam(network.parameters(), lr=settings.learning_rate)
-    state = {"epoch": 0, "best_monitored": float("inf"), "best_epoch": 0, "bad_epochs": 0}
-    history: list[dict] = []
-    if resume and checkpoint_path.exists():
-        saved = load_tensors(checkpoint_path)
-        if saved.get("fingerprint") != run.info["fingerprint"]:
-            raise OutputError(
-                f"{checkpoint_path}: was trained on another workspace, config or seed; "
-                "use --force to restart"
-            )
-        network.load_state_dict(saved["model"])
-        optimiser.load_state_dict(saved["optimizer"])
-        state = {key: saved[key] for key in state}
-        history = [dict(row) for row in saved["history"]]
+    stopping, history = EarlyStopping(settings.patience), []
+    if resume and (model_dir / CHECKPOINT).exists():
+        stopping, history = _resume(model_dir / CHECKPOINT, run, network, optimiser)
     elif rank == 0:
-        model_dir.mkdir(parents=True, exist_ok=True)
-        save_mixed_model(model_dir / PRIOR, prior)
-        write_tsv(
-            model_dir / "split.tsv",
-            pd.DataFrame(
-                [(p, name) for name in SETS for p in run.split[name]],
-                columns=["participant_id", "set"],
-            ),
-        )
+        _start_folder(model_dir, run, prior)
     trainer = network
     if world > 1:
         from torch.nn.parallel import DistributedDataParallel
 
         trainer = DistributedDataParallel(network)
-    store = ScanStore(work)
-    pairs = run.pairs["train"]
-    stopped = state["bad_epochs"] >= settings.patience
-    epoch = state["epoch"]
-    while epoch < epochs and not stopped:
+    while stopping.epoch < epochs and not stopping.stopped:
         started = time.perf_counter()
-        weights = config.loss.weights(epoch)
-        order = seeded_rng(seed, 11, epoch).permutation(len(pairs))
-        if settings.max_pairs_per_epoch:
-            order = order[: settings.max_pairs_per_epoch]
-        batches = _batches(len(order), settings.batch_pairs, order)
-        batches = [b for b in batches if len(b) >= world]
-        sums = dict.fromkeys((*TERMS, "total"), 0.0)
-        trainer.train()
-        for step, chunk in enumerate(batches):
-            mine = chunk[rank::world]
-            # augmentation drawn per pair from its place in the epoch: the same draws
-            # whatever the number of processes
-            start = step * settings.batch_pairs + rank
-            places = range(start, start + len(mine) * world, world)
-            batch = make_batch(
-                pairs.iloc[mine],
-                store,
-                run.conditions["train"][mine],
-                config.network.tissue_channels,
-                [seeded_rng(seed, 13, epoch, place) for place in places],
-                settings.gain_sd,
-                settings.flip_probability,
-            )
-            terms, _, _ = batch_terms(trainer, batch, config.loss)
-            total = weighted_total(terms, weights)
-            optimiser.zero_grad()
-            total.backward()
-            optimiser.step()
-            for name in TERMS:
-                sums[name] += terms[name].item()
-            sums["total"] += total.item()
-            if on_step and rank == 0:
-                on_step(epoch, step + 1, len(batches), {n: v / (step + 1) for n, v in sums.items()})
+        row = {"epoch": stopping.epoch + 1}
+        row |= _train_epoch(trainer, optimiser, run, stopping.epoch, rank, world, on_step)
         trainer.eval()
-        row = {"epoch": epoch + 1}
-        row |= {f"train_{name}": value / max(len(batches), 1) for name, value in sums.items()}
         if not run.pairs["validation"].empty:
-            row |= evaluate(network, run, store, rank, world)
-        monitored = row.get(settings.monitor, row["train_total"])
-        improved = monitored < state["best_monitored"]
-        state["epoch"] = epoch + 1
-        if improved:
-            state |= {"best_monitored": monitored, "best_epoch": epoch + 1, "bad_epochs": 0}
-        else:
-            state["bad_epochs"] += 1
+            row |= evaluate(network, run, rank, world)
+        improved = stopping.update(row.get(settings.monitor, row["train_total"]))
         row["seconds"] = time.perf_counter() - started
         history.append(row)
-        stopped = state["bad_epochs"] >= settings.patience
         if rank == 0:
-            complete = stopped or state["epoch"] >= epochs
-            _write_epoch(model_dir, network, optimiser, state, history, run, improved, complete)
+            complete = stopping.stopped or stopping.epoch >= epochs
+            _write_epoch(model_dir, network, optimiser, stopping, history, run, improved, complete)
             if on_epoch:
                 on_epoch(row)
         if world > 1:
             dist.barrier()
-        epoch += 1
     return history[-1] if history else {}
 
 
-def _initial_network(info: dict, seed: int) -> VelocityNet:
+def _train_epoch(trainer, optimiser, run: Run, epoch: int, rank: int, world: int, on_step):
+    """One epoch over the training pairs in a seeded order; returns the mean loss terms."""
+    settings, seed = run.config.training, run.seed
+    weights = run.config.loss.weights(epoch)
+    order = seeded_rng(seed, 11, epoch).permutation(len(run.pairs["train"]))
+    if settings.max_pairs_per_epoch:
+        order = order[: settings.max_pairs_per_epoch]
+    batches = _batches(len(order), settings.batch_pairs, order)
+    batches = [b for b in batches if len(b) >= world]
+    sums = dict.fromkeys((*TERMS, "total"), 0.0)
+    trainer.train()
+    for step, chunk in enumerate(batches):
+        mine = chunk[rank::world]
+        # augmentation drawn per pair from its place in the epoch: the same draws
+        # whatever the number of processes
+        start = step * settings.batch_pairs + rank
+        places = range(start, start + len(mine) * world, world)
+        batch = run.batch("train", mine, [seeded_rng(seed, 13, epoch, p) for p in places])
+        terms, _, _ = batch_terms(trainer, batch, run.config.loss, run.direction)
+        total = weighted_total(terms, weights)
+        optimiser.zero_grad()
+        total.backward()
+        optimiser.step()
+        for name in TERMS:
+            sums[name] += terms[name].item()
+        sums["total"] += total.item()
+        if on_step and rank == 0:
+            on_step(epoch, step + 1, len(batches), {n: v / (step + 1) for n, v in sums.items()})
+    return {f"train_{name}": value / max(len(batches), 1) for name, value in sums.items()}
+
+
+def _resume(path: Path, run: Run, network, optimiser) -> tuple[EarlyStopping, list[dict]]:
+    """Weights, optimiser, early-stopping state and history from the last checkpoint."""
+    saved = load_tensors(path)
+    if saved.get("fingerprint") != run.info.fingerprint:
+        raise OutputError(
+            f"{path}: was trained on another workspace, config or seed; use --force to restart"
+        )
+    network.load_state_dict(saved["model"])
+    optimiser.load_state_dict(saved["optimizer"])
+    stopping = EarlyStopping(run.config.training.patience)
+    for key in stopping.state():
+        setattr(stopping, key, saved[key])
+    return stopping, [dict(row) for row in saved["history"]]
+
+
+def _start_folder(model_dir: Path, run: Run, prior) -> None:
+    """A new model folder: the prior and the split (rank 0)."""
+    model_dir.mkdir(parents=True, exist_ok=True)
+    save_mixed_model(model_dir / PRIOR, prior)
+    write_tsv(
+        model_dir / "split.tsv",
+        pd.DataFrame(
+            [(p, name) for name in SETS for p in run.split[name]],
+            columns=["participant_id", "set"],
+        ),
+    )
+
+
+def _initial_network(info: ModelInfo, seed: int) -> VelocityNet:
     """The network with weights drawn from ``seed`` (the global torch state is left alone)."""
     with torch.random.fork_rng(devices=[]):
         torch.manual_seed(seed)
         return build_network(info)
 
 
-def _write_epoch(model_dir, network, optimiser, state, history, run, improved, complete) -> None:
+def _write_epoch(model_dir, network, optimiser, stopping, history, run, improved, complete):
     """Checkpoint, best weights, model.json, log and loss curves after an epoch (rank 0)."""
     if improved or not (model_dir / WEIGHTS).exists():
         save_tensors(model_dir / WEIGHTS, network.state_dict())
@@ -447,19 +492,19 @@ def _write_epoch(model_dir, network, optimiser, state, history, run, improved, c
             "model": network.state_dict(),
             "optimizer": optimiser.state_dict(),
             "history": history,
-            "fingerprint": run.info["fingerprint"],
+            "fingerprint": run.info.fingerprint,
         }
-        | state,
+        | stopping.state(),
     )
     write_model_json(
         model_dir,
-        run.info
-        | {
-            "epochs_run": state["epoch"],
-            "best_epoch": state["best_epoch"],
-            "stopped_early": state["bad_epochs"] >= run.config.training.patience,
-            "complete": complete,
-        },
+        replace(
+            run.info,
+            epochs_run=stopping.epoch,
+            best_epoch=stopping.best_epoch,
+            stopped_early=stopping.stopped,
+            complete=complete,
+        ),
     )
     log = pd.DataFrame(history)
     write_tsv(model_dir / "log.tsv", log)

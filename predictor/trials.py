@@ -31,11 +31,10 @@ from scipy import optimize, stats
 from predictor.cautions import CAUTION
 from predictor.errors import DataError
 from predictor.files import write_json, write_tsv
-from predictor.phantoms.participants import seeded_rng
-from predictor.volumes import REGIONS
+from predictor.regions import RegionSet
+from predictor.rng import seeded_rng
+from predictor.workspace import Layout
 
-#: regions that grow with disease (their "atrophy" is expansion)
-GROWING = ("ventricles",)
 MIN_PARTICIPANTS = 10
 BOOTSTRAP = 2000
 TRIAL_CAUTION = (
@@ -148,8 +147,9 @@ def rates_from_folder(
     ``observed`` an optional prepared workspace to take observed changes from.
     Returns the table and a description of the source.
     """
-    if region not in REGIONS:
-        raise DataError(f"region '{region}' is not one of {', '.join(REGIONS)}")
+    names = RegionSet.from_toml().names
+    if region not in names:
+        raise DataError(f"region '{region}' is not one of {', '.join(names)}")
     if (folder / "errors.tsv").is_file():
         return _rates_from_comparison(folder, region, years, method or "network-jacobian")
     if (folder / "forecasts.tsv").is_file():
@@ -207,7 +207,7 @@ def _rates_from_forecasts(folder: Path, region: str, years: float, method: str) 
 
 def _observed_rates(work: Path, region: str, years: float) -> pd.DataFrame:
     """Observed annual rates: baseline to the follow-up nearest ``years`` (within a year)."""
-    volumes = pd.read_csv(work / "volumes.tsv", sep="\t").sort_values(["participant_id", "age"])
+    volumes = pd.read_csv(Layout(work).volumes, sep="\t").sort_values(["participant_id", "age"])
     rows = []
     for participant, visits in volumes.groupby("participant_id"):
         first = visits.iloc[0]
@@ -226,7 +226,8 @@ def enrichment_table(
     rates: pd.DataFrame, region: str, design: Design, fractions, seed: int = 0
 ) -> pd.DataFrame:
     """n per arm for each enrichment fraction q (1 = no enrichment), forecast and observed."""
-    atrophy = rates["forecast"] if region in GROWING else -rates["forecast"]
+    grows = RegionSet.from_toml().get(region).direction > 0  # its "atrophy" is expansion
+    atrophy = rates["forecast"] if grows else -rates["forecast"]
     order = np.argsort(-atrophy.to_numpy(), kind="stable")
     rows = []
     for fraction in fractions:

@@ -4,54 +4,32 @@ from __future__ import annotations
 
 import numpy as np
 
-#: reported regions, in report order
-REGIONS = (
-    "hippocampus_left",
-    "hippocampus_right",
-    "ventricles",
-    "cortical_gm",
-    "total_gm",
-    "wm",
-    "brain",
-    "icv",
-)
+from predictor.regions import TOTAL_BRAIN, RegionSet
 
 
 def region_volumes(
     tissue: dict[str, np.ndarray],
     deep: dict[str, np.ndarray],
     voxel_ml: float,
+    regions: RegionSet,
     factor: np.ndarray | None = None,
 ) -> dict[str, float]:
-    """Volumes (mL) of :data:`REGIONS`, optionally weighted voxel by voxel by ``factor``.
+    """Volumes (mL) of every region of ``regions``, optionally weighted voxel by voxel.
 
     ``tissue`` maps GM/WM/CSF to probability arrays (zero outside the brain
-    mask); ``deep`` maps each deep region (hippocampi, ventricles) to its
-    tissue fraction inside the region mask; all on one grid. With ``factor``
-    the Jacobian determinant of a forward deformation, the result is the
-    regions' volumes after it (``factor - 1`` gives the change). Volumes are
-    linear in the maps, so the derived regions (cortical GM, brain, ICV) are
-    sums and differences of six integrals.
+    mask); ``deep`` maps each deep region to its tissue fraction inside the
+    region mask; all on one grid. With ``factor`` the Jacobian determinant of a
+    forward deformation, the result is the regions' volumes after it. Volumes
+    are linear in the maps, so every region is a weighted sum of these
+    integrals (:meth:`~predictor.regions.RegionSet.volumes`).
     """
 
     def total(values):
         product = values if factor is None else values * factor
         return float(product.sum(dtype=np.float64)) * voxel_ml
 
-    gm, wm, csf = (total(tissue[name]) for name in ("GM", "WM", "CSF"))
-    left, right, ventricles = (
-        total(deep[name]) for name in ("hippocampus_left", "hippocampus_right", "ventricles")
-    )
-    return {
-        "hippocampus_left": left,
-        "hippocampus_right": right,
-        "ventricles": ventricles,
-        "cortical_gm": gm - left - right,
-        "total_gm": gm,
-        "wm": wm,
-        "brain": gm + wm,
-        "icv": gm + wm + csf,
-    }
+    integrals = {name: total(values) for name, values in (*tissue.items(), *deep.items())}
+    return regions.volumes(integrals)
 
 
 def unmixed_fraction(intensity: np.ndarray, pure: float, other: float) -> np.ndarray:
@@ -64,5 +42,6 @@ def unmixed_fraction(intensity: np.ndarray, pure: float, other: float) -> np.nda
 
 
 def percent_of_brain(volumes: dict[str, float]) -> dict[str, float]:
-    """Each region as % of total brain volume (GM + WM)."""
-    return {f"{name}_pct_tbv": 100.0 * value / volumes["brain"] for name, value in volumes.items()}
+    """Each region as % of total brain volume (the region ``brain``: GM + WM)."""
+    brain = volumes[TOTAL_BRAIN]
+    return {f"{name}_pct_tbv": 100.0 * value / brain for name, value in volumes.items()}

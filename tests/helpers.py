@@ -9,14 +9,13 @@ from pathlib import Path
 import torch
 
 from predictor.config import CohortSettings
-from predictor.modelstore import TrainedModel, build_network
-from predictor.pairs import PRIOR_REGIONS
+from predictor.modelstore import PRIOR, SCHEMA, ModelInfo, TrainedModel, build_network
 from predictor.phantoms.generate import true_volume_table
 from predictor.phantoms.scenario import Scenario
 from predictor.prepare import PrepareSettings, cached_template, working_grid
+from predictor.regions import RegionSet
 from predictor.regression import MixedEffectsForecaster
 from predictor.training import TrainConfig
-from predictor.volumes import REGIONS
 
 
 def constant_velocity_model(
@@ -32,24 +31,32 @@ def constant_velocity_model(
     """
     config = config or TrainConfig.from_toml()
     settings = settings or PrepareSettings.from_toml()
-    grid, shape = working_grid(cached_template(template), settings)
-    labels = list(CohortSettings.from_toml().diagnosis_labels)
-    info = {
-        "config": config.to_dict(),
-        "grid": {"affine": grid.tolist(), "shape": list(shape)},
-        "template": template,
-        "prepare_settings": asdict(settings),
-        "regions": list(PRIOR_REGIONS),
-        "condition": {"age_mean": 75.0, "age_sd": 8.0, "labels": labels, "sex_codes": ["F", "M"]},
-        "split": {"train": [], "validation": [], "test": []},
-        "training_range": {
+    regions, coding = RegionSet.from_toml(), CohortSettings.from_toml()
+    grid, shape = working_grid(cached_template(template, regions), settings)
+    labels = list(coding.diagnosis_labels)
+    info = ModelInfo(
+        schema=SCHEMA,
+        config=config.to_dict(),
+        seed=0,
+        grid={"affine": grid.tolist(), "shape": list(shape)},
+        template=template,
+        prepare_settings=asdict(settings),
+        regions=regions.raw,
+        cohort=coding.to_dict(),
+        condition={"age_mean": 75.0, "age_sd": 8.0},
+        split={"train": [], "validation": [], "test": []},
+        training_range={
             "age_years": [60.0, 95.0],
             "max_horizon_years": 5.0,
             "diagnoses": labels,
-            "sexes": ["F", "M"],
+            "sexes": list(coding.sex_codes),
+            "pairs": 0,
         },
-        "weights_sha256": "0" * 64,
-    }
+        prior=PRIOR,
+        prior_warnings=[],
+        fingerprint="synthetic",
+        weights_sha256="0" * 64,
+    )
     network = build_network(info)
     with torch.no_grad():
         network.head.bias.copy_(torch.tensor(velocity, dtype=torch.float32))
@@ -57,5 +64,5 @@ def constant_velocity_model(
     truth, _ = true_volume_table(Scenario.from_toml(), 40, seed=1)
     with warnings.catch_warnings():  # convergence of this stand-in prior does not matter
         warnings.simplefilter("ignore", RuntimeWarning)
-        prior = MixedEffectsForecaster().fit(truth, list(REGIONS))
+        prior = MixedEffectsForecaster(coding=coding).fit(truth, list(regions.names))
     return TrainedModel(Path("synthetic-model"), network, info, prior)

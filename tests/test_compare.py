@@ -14,8 +14,10 @@ from PIL import Image
 
 from predictor.compare import NETWORK, bootstrap_ci, compare, ssim_map
 from predictor.errors import DataError
+from predictor.regions import RegionSet
 from predictor.report import format_number, write_report
-from predictor.volumes import REGIONS
+
+REGIONS = RegionSet.from_toml().names
 
 
 @pytest.fixture(scope="module")

@@ -29,8 +29,11 @@ from predictor.forecast_io import (
 from predictor.nifti import load_scan
 from predictor.prepare import PrepareSettings, cached_template, prepare_scan
 from predictor.preprocess import Registration
-from predictor.volumes import REGIONS, region_volumes
+from predictor.regions import RegionSet
+from predictor.volumes import region_volumes
 
+REGION_SET = RegionSet.from_toml()
+REGIONS = REGION_SET.names
 SHRINKING = [r for r in REGIONS if r != "ventricles"]
 
 
@@ -73,7 +76,7 @@ def test_log_jacobian_file_integrates_to_the_reported_change(tiny_forecast, tiny
         path = tmp_path / f"scan_desc-{horizon_label(horizon)}_logjacobian.nii.gz"
         ratio = np.exp(load_scan(path).data) - 1.0  # read back in RAS order from the file
         change = region_volumes(
-            prepared.native_tissue, prepared.native_deep, scan.voxel_volume_ml, ratio
+            prepared.native_tissue, prepared.native_deep, scan.voxel_volume_ml, REGION_SET, ratio
         )
         for region in REGIONS:
             reported = table.loc[(region, horizon), "network_change_ml"]
@@ -114,7 +117,8 @@ def anatomical_forecast():
     template_to_native[:3, 3] = centre[:3] - np.array([0.0, -18.0, 18.0])
     settings = PrepareSettings.from_toml(checks={"brain_ml": [1.0, 5000.0]})
     registration = Registration(template_to_native, -1.0, 0, "given")
-    prepared = prepare_scan(scan, cached_template("mni152"), settings, None, registration)
+    template = cached_template("mni152", REGION_SET)
+    prepared = prepare_scan(scan, template, settings, None, registration)
     return model, scan, prepared, np.array(velocity)
 
 
@@ -140,7 +144,7 @@ def test_anatomical_nii_outputs_keep_shape_affine_and_orientation(
             assert nib.aff2axcodes(image.affine) == ("L", "A", "S")
     # the pull-back displacement of a constant velocity is the constant -t * 2 v grid voxels
     # (coarse grid: half resolution), carried to RAS mm through grid and template affines
-    grid = np.asarray(model.info["grid"]["affine"])
+    grid = model.info.grid_affine
     expected_mm = result.prepared.template_to_native[:3, :3] @ grid[:3, :3] @ (-2.0 * 2 * velocity)
     field = nib.load(tmp_path / "anatomical_desc-forecast24mo_displacement.nii.gz")
     assert field.shape == (*source.shape, 1, 3)
@@ -166,7 +170,7 @@ def test_held_out_forecasts_beat_no_change(tiny_model, tiny_workspace):
     cohort = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t")
     truth_path = tiny_workspace.parent / "bids" / "derivatives" / "phantom-truth"
     truth = pd.read_csv(truth_path / "true_volumes.tsv", sep="\t")
-    held_out = model.info["split"]["validation"] + model.info["split"]["test"]
+    held_out = model.info.split["validation"] + model.info.split["test"]
     errors = []
     for participant in held_out:
         visits = cohort[cohort.participant_id == participant].sort_values("age")

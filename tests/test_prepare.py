@@ -23,9 +23,11 @@ from predictor.phantoms.participants import build_anatomy
 from predictor.phantoms.scenario import Scenario
 from predictor.prepare import PrepareSettings, parse_shard, prepare_cohort, workspace_volumes
 from predictor.preprocess import head_mask, n4_correct, register_affine
+from predictor.regions import RegionSet
 from predictor.spatial import affine_to_matrix, from_sitk, matrix_to_transform, to_sitk
 from predictor.templates import load_template
-from predictor.volumes import REGIONS
+
+REGIONS = RegionSet.from_toml().names
 
 SETTINGS = PrepareSettings.from_toml()
 
@@ -46,7 +48,7 @@ def test_sitk_conversions_keep_world_positions(rng):
 
 @pytest.fixture(scope="module")
 def mni():
-    return load_template("mni152")
+    return load_template("mni152", RegionSet.from_toml())
 
 
 @pytest.mark.slow

@@ -334,6 +334,12 @@ def _other_regions(folder):
     (folder / MODEL_JSON).write_text(json.dumps(info))
 
 
+def _newer_schema(folder):
+    info = json.loads((folder / MODEL_JSON).read_text())
+    info["schema"] = 99
+    (folder / MODEL_JSON).write_text(json.dumps(info))
+
+
 def _bad_json(folder):
     (folder / MODEL_JSON).write_text("{not json")
 
@@ -345,12 +351,13 @@ def _bad_json(folder):
         (_truncate_and_fix, "unreadable or truncated"),
         (_tamper, "does not match model.json"),
         (_json_mismatch, "does not fit the network"),
-        (_other_regions, "made for the regions"),
+        (_other_regions, "the regions must be a table"),
+        (_newer_schema, "model schema 99 is not this version's 2"),
         (_bad_json, "not valid JSON"),
         (lambda folder: (folder / WEIGHTS).unlink(), "file not found"),
     ],
     ids=["truncated", "truncated-checksum-fixed", "tampered", "json-mismatch", "regions",
-         "bad-json", "missing-weights"],
+         "newer-schema", "bad-json", "missing-weights"],
 )  # fmt: skip
 def test_damaged_model_folders_are_clear_errors(tiny_model, tmp_path, damage, message):
     folder = _damaged(tiny_model, tmp_path, damage)

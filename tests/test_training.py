@@ -15,7 +15,7 @@ import torch
 from typer.testing import CliRunner
 
 from predictor.cli import app
-from predictor.config import CONFIG_DIR
+from predictor.config import CONFIG_DIR, CohortSettings, merged
 from predictor.errors import ConfigError, DataError, OutputError
 from predictor.fields import identity_grid, jacobian_determinant, region_volume_ratio
 from predictor.losses import (
@@ -30,16 +30,17 @@ from predictor.losses import (
 from predictor.modelstore import CHECKPOINT, WEIGHTS, load_model, load_tensors
 from predictor.network import NetworkSettings, VelocityNet, encode_condition
 from predictor.pairs import (
-    PRIOR_REGIONS,
     ScanStore,
-    read_workspace,
-    region_maps,
+    network_input,
+    region_weights,
     split_participants,
     visit_pairs,
 )
 from predictor.training import TrainConfig, train
+from predictor.workspace import read_workspace
 
 TINY = CONFIG_DIR / "train-tiny.toml"
+CODING = CohortSettings.from_toml()
 
 
 # --- configuration --------------------------------------------------------------------------
@@ -55,20 +56,23 @@ def test_default_and_tiny_configs_read():
         ({"network": {"chanels": [4, 8]}}, "unknown key"),
         ({"loss": {"similarity": "ssd"}}, "'ssd' was given"),
         ({"training": {"split": [0.5, 0.1, 0.1]}}, "summing to 1"),
-        ({"training": {"epochs": "ten"}}, "'epochs' must be int"),
-        ({"optimiser": {}}, "unknown table"),
+        ({"training": {"epochs": "ten"}}, r"\[training\] 'epochs': must be int"),
+        ({"optimiser": {}}, "'optimiser': unknown key"),
     ],
 )
 def test_bad_config_is_a_clear_error(raw, message):
     with pytest.raises(ConfigError, match=message):
-        TrainConfig.from_dict(raw, "test.toml")
+        TrainConfig.from_dict(merged(TrainConfig.from_toml().to_dict(), raw), "test.toml")
 
 
 # --- network --------------------------------------------------------------------------------
 def test_untrained_network_forecasts_no_change_and_checks_shapes():
-    network = VelocityNet(NetworkSettings(channels=(4, 8, 8)), condition_size=5)
+    settings = NetworkSettings(
+        channels=(4, 8, 8), tissue_channels=True, condition_width=16, integration_steps=6
+    )
+    network = VelocityNet(settings, condition_size=5)
     image = torch.randn(2, 4, 13, 15, 11)  # odd sides are padded internally
-    condition = encode_condition([70, 80], [0, 1], [0, 2], 75.0, 5.0, 3)
+    condition = encode_condition([70, 80], ["F", "M"], ["CN", "AD"], CODING, 75.0, 5.0)
     velocity = network(image, condition)
     assert velocity.shape == (2, 3, 8, 8, 6)  # half of the sides padded to a multiple of 4
     assert torch.count_nonzero(velocity) == 0  # zero-initialised output layer
@@ -81,8 +85,14 @@ def test_untrained_network_forecasts_no_change_and_checks_shapes():
 
 
 def test_condition_encoding_is_standardised_and_one_hot():
-    condition = encode_condition([70.0, 80.0], [False, True], [2, 0], 75.0, 5.0, 3).numpy()
-    np.testing.assert_allclose(condition, [[-1, -0.5, 0, 0, 1], [1, 0.5, 1, 0, 0]])
+    condition = encode_condition([70.0, 80.0], ["F", "M"], ["AD", "CN"], CODING, 75.0, 5.0)
+    np.testing.assert_allclose(condition.numpy(), [[-1, -0.5, 0, 0, 1], [1, 0.5, 1, 0, 0]])
+    # other codes for the same people, declared in the cohort settings: the same vectors
+    other = CohortSettings.from_dict(
+        CODING.to_dict() | {"sex": {"codes": ["female", "male"], "aliases": {}}}
+    )
+    again = encode_condition([70.0, 80.0], ["female", "male"], ["AD", "CN"], other, 75.0, 5.0)
+    assert torch.equal(again, condition)
 
 
 # --- losses (hand-computed values) -------------------------------------------------------------
@@ -115,7 +125,8 @@ def test_loss_terms_on_hand_checkable_inputs(rng):
 
 
 def test_similarity_warm_up_ramps_linearly():
-    settings = LossSettings(similarity_weight=2.0, similarity_warmup_epochs=3)
+    default = TrainConfig.from_toml().loss.__dict__
+    settings = LossSettings(**default | {"similarity_weight": 2.0, "similarity_warmup_epochs": 3})
     assert [settings.weights(e)["similarity"] for e in range(5)] == [0.5, 1.0, 1.5, 2.0, 2.0]
 
 
@@ -137,7 +148,7 @@ def test_split_is_participant_level_and_test_has_two_year_follow_up(tiny_workspa
 def test_visit_pairs_are_every_earlier_later_pair(tiny_workspace):
     volumes = read_workspace(tiny_workspace).volumes
     participants = sorted(volumes.participant_id.unique())[:5]
-    pairs = visit_pairs(volumes, participants)
+    pairs = visit_pairs(volumes, participants, read_workspace(tiny_workspace).regions)
     visits = volumes[volumes.participant_id.isin(participants)].groupby("participant_id").size()
     assert len(pairs) == int((visits * (visits - 1) // 2).sum())
     assert (pairs.years > 0).all() and (pairs.base_key != pairs.follow_key).all()
@@ -145,23 +156,22 @@ def test_visit_pairs_are_every_earlier_later_pair(tiny_workspace):
 
 # --- training ---------------------------------------------------------------------------------
 def forecast_percent_change(model_dir: Path, work: Path, years: float = 2.0) -> pd.DataFrame:
-    """Each participant's baseline forecast on the grid: % volume change of PRIOR_REGIONS."""
+    """Each participant's baseline forecast on the grid: % volume change of the prior regions."""
     model = load_model(model_dir)
-    store, condition = ScanStore(work), model.info["condition"]
-    labels = condition["labels"]
+    store, condition, regions = ScanStore(work), model.info.condition, model.info.region_set
     rows = []
     for row in read_workspace(work).volumes.groupby("participant_id").head(1).itertuples():
         arrays = store[row.key]
         code = encode_condition(
-            [row.age], [row.sex == "M"], [labels.index(row.diagnosis)],
-            condition["age_mean"], condition["age_sd"], len(labels),
+            [row.age], [row.sex], [row.diagnosis], model.info.coding,
+            condition["age_mean"], condition["age_sd"],
         )  # fmt: skip
         with torch.no_grad():
-            velocity = model.network(torch.cat([arrays[:1], arrays[2:5]])[None], code)
+            velocity = model.network(network_input(arrays, True)[None], code)
             forward = model.network.displacement(velocity, years, tuple(arrays.shape[1:]))
-        regions = region_maps(arrays)[None]
-        ratio = region_volume_ratio(regions, jacobian_determinant(forward))[0].numpy()
-        percent = dict(zip(PRIOR_REGIONS, 100 * (ratio - 1), strict=True))
+        weights = region_weights(arrays, regions, regions.prior)[None]
+        ratio = region_volume_ratio(weights, jacobian_determinant(forward))[0].numpy()
+        percent = dict(zip(regions.prior, 100 * (ratio - 1), strict=True))
         rows.append({"diagnosis": row.diagnosis} | percent)
     return pd.DataFrame(rows)
 

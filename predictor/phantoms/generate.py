@@ -44,9 +44,9 @@ from predictor.phantoms.participants import (
     best_forecast_ml,
     build_anatomy,
     draw_participant,
-    seeded_rng,
 )
 from predictor.phantoms.scenario import Scenario
+from predictor.rng import seeded_rng
 
 TRUTH = Path("derivatives") / "phantom-truth"
 TEMPLATE = Path("derivatives") / "phantom-template"

@@ -21,6 +21,7 @@ from predictor.phantoms.anatomy import (
     region_volumes,
 )
 from predictor.phantoms.scenario import RATE_REGIONS, Scenario
+from predictor.rng import seeded_rng
 
 #: Gauss-Hermite nodes used to average over the unobservable rate noise
 _NODES, _WEIGHTS = hermegauss(40)
@@ -46,11 +47,6 @@ class Draw:
 
     def record(self) -> dict:
         return asdict(self)
-
-
-def seeded_rng(seed: int, *key: int) -> np.random.Generator:
-    """Independent generator for ``key`` (e.g. participant, purpose, visit) under ``seed``."""
-    return np.random.default_rng(np.random.SeedSequence(seed, spawn_key=key))
 
 
 def assign_groups(fractions: dict[str, float], count: int, seed: int) -> list[str]:

@@ -1,4 +1,4 @@
-"""Phantom scenario: the TOML file under ``synthetic_phantoms/`` as frozen dataclasses."""
+"""Phantom scenario: a TOML file of ``synthetic_phantoms/`` (``predictor.scenarios``)."""
 
 from __future__ import annotations
 
@@ -6,10 +6,9 @@ import os
 from dataclasses import dataclass
 from pathlib import Path
 
-from predictor.config import read_toml, require
+from predictor.config import SCENARIO_DIR, read_toml, require
 from predictor.errors import ConfigError
 
-SCENARIO_DIR = Path(__file__).resolve().parent.parent.parent / "synthetic_phantoms"
 DEFAULT_SCENARIO = SCENARIO_DIR / "memory_clinic.toml"
 #: regions whose annual rates a scenario sets
 RATE_REGIONS = ("hippocampus", "ventricles", "cortical_gm", "wm")

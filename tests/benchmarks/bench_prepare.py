@@ -10,9 +10,10 @@ from pathlib import Path
 def _prepare_once(image: Path, template: str) -> dict:
     from predictor.nifti import load_scan
     from predictor.prepare import PrepareSettings, prepare_scan
+    from predictor.regions import RegionSet
     from predictor.templates import load_template
 
-    loaded = load_template(template)
+    loaded = load_template(template, RegionSet.from_toml())
     scan = load_scan(image)
     started = time.perf_counter()
     result = prepare_scan(scan, loaded, PrepareSettings.from_toml())

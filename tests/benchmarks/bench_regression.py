@@ -11,11 +11,11 @@ def all_forecasters_300x9() -> dict:
 
     from predictor.phantoms.generate import true_volume_table
     from predictor.phantoms.scenario import Scenario
+    from predictor.regions import RegionSet
     from predictor.regression import all_forecasters, baseline_rows, check_table
-    from predictor.volumes import REGIONS
 
     truth, _ = true_volume_table(Scenario.from_toml(), 300, seed=1)
-    regions = [*REGIONS, "csf"]
+    regions = [*RegionSet.from_toml().names, "csf"]
     rng = np.random.default_rng(0)
     for region in regions:  # 1% measurement noise, as a real volume table has
         truth[region] = truth[region] * (1 + 0.01 * rng.normal(size=len(truth)))

@@ -2,7 +2,11 @@
 
 from __future__ import annotations
 
+import sys
 import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))  # tests/helpers.py
 
 
 def _default_batch(pairs: int):
@@ -10,18 +14,20 @@ def _default_batch(pairs: int):
 
     from predictor.config import CohortSettings
     from predictor.network import encode_condition
-    from predictor.pairs import PRIOR_REGIONS, Batch
+    from predictor.pairs import Batch
     from predictor.prepare import PrepareSettings, cached_template, working_grid
+    from predictor.regions import RegionSet
 
-    _, shape = working_grid(cached_template("mni152"), PrepareSettings.from_toml())
+    region_set = RegionSet.from_toml()
+    _, shape = working_grid(cached_template("mni152", region_set), PrepareSettings.from_toml())
     generator = torch.Generator().manual_seed(0)
-    labels = len(CohortSettings.from_toml().diagnosis_labels)
+    coding = CohortSettings.from_toml()
 
     def field(channels):
         return torch.rand(pairs, channels, *shape, generator=generator)
 
-    condition = encode_condition([70.0] * pairs, [0] * pairs, [0] * pairs, 75.0, 8.0, labels)
-    regions = len(PRIOR_REGIONS)
+    condition = encode_condition([70.0] * pairs, ["F"] * pairs, ["CN"] * pairs, coding, 75.0, 8.0)
+    regions = len(region_set.prior)
     batch = Batch(
         field(4), field(1), field(1), torch.ones(pairs, 1, *shape), field(1)[:, 0],
         field(regions), condition, torch.full((pairs,), 2.0),
@@ -33,21 +39,24 @@ def _default_batch(pairs: int):
 def default_training_step() -> dict:
     """Seconds per optimiser step of ``batch_pairs`` pairs (configs/train.toml, 3 mm grid)."""
     import torch
+    from helpers import constant_velocity_model
 
     from predictor.modelstore import build_network
+    from predictor.regions import RegionSet
     from predictor.training import TrainConfig, batch_terms, weighted_total
 
     config = TrainConfig.from_toml()
     pairs = config.training.batch_pairs
     batch, shape = _default_batch(pairs)
-    network = build_network({"config": config.to_dict(), "condition": {"labels": [0, 1, 2]}})
+    network = build_network(constant_velocity_model(config=config).info)
+    direction = torch.from_numpy(RegionSet.from_toml().directions(RegionSet.from_toml().prior))
     optimiser = torch.optim.Adam(network.parameters(), lr=1e-3)
     weights = config.loss.weights(100)
     steps, started = 6, None
     for step in range(steps + 1):
         if step == 1:
             started = time.perf_counter()
-        terms, _, _ = batch_terms(network, batch, config.loss)
+        terms, _, _ = batch_terms(network, batch, config.loss, direction)
         optimiser.zero_grad()
         weighted_total(terms, weights).backward()
         optimiser.step()
@@ -64,13 +73,10 @@ def default_training_step() -> dict:
 def network_pass() -> dict:
     """One forward pass and a 2-year integration (no gradients), default config and grid."""
     import torch
+    from helpers import constant_velocity_model
 
-    from predictor.modelstore import build_network
-    from predictor.training import TrainConfig
-
-    config = TrainConfig.from_toml()
     batch, shape = _default_batch(1)
-    network = build_network({"config": config.to_dict(), "condition": {"labels": [0, 1, 2]}})
+    network = constant_velocity_model().network
     network.eval()
     times = []
     with torch.no_grad():

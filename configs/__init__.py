@@ -1,0 +1,1 @@
+"""Default configuration files (TOML), shipped with the package as predictor.configs."""

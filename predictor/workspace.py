@@ -1,0 +1,149 @@
+"""The workspace (WORK) written by ``predictor prepare``: its one owner of file names.
+
+Layout::
+
+    prepare.json         template, settings, regions and cohort coding of this workspace
+    cohort.tsv           the validated cohort with each scan's cache key
+    scans/<key>/         one folder per scan; result.json is written last and
+                         marks the entry complete (anything else is redone)
+        grid_T1w.nii.gz      normalised T1 on the working grid (template space)
+        grid_mask.nii.gz     brain mask on the working grid
+        grid_probseg.nii.gz  GM, WM, CSF probabilities on the working grid (4D)
+        grid_regions.nii.gz  each deep region's tissue fraction inside the region, in
+                             the regions file's order, on the working grid (4D)
+        native_dseg.nii.gz   most likely tissue in the scan's own space (1 GM, 2 WM, 3 CSF)
+        result.json          volumes, native<->template transforms, fit diagnostics
+    volumes.tsv          one row per scan: regions in mL and % of total brain volume
+    failures.tsv         scans that failed, with the reason
+
+No other module spells these names: it asks a :class:`Layout` or a
+:class:`ScanFiles` for the path.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from predictor.config import CohortSettings
+from predictor.errors import DataError
+from predictor.regions import RegionSet
+from predictor.volumes import percent_of_brain
+
+#: identifying columns of volumes.tsv, before the key and the regions
+TSV_ID = ("participant_id", "session_id", "age", "sex", "diagnosis")
+
+
+@dataclass(frozen=True)
+class ScanFiles:
+    """The files of one prepared scan (a cache entry)."""
+
+    folder: Path
+
+    @property
+    def key(self) -> str:
+        return self.folder.name
+
+    @property
+    def lock(self) -> Path:
+        return self.folder.parent / f".{self.folder.name}.lock"
+
+    t1 = property(lambda self: self.folder / "grid_T1w.nii.gz")
+    mask = property(lambda self: self.folder / "grid_mask.nii.gz")
+    tissue = property(lambda self: self.folder / "grid_probseg.nii.gz")
+    regions = property(lambda self: self.folder / "grid_regions.nii.gz")
+    labels = property(lambda self: self.folder / "native_dseg.nii.gz")
+    result = property(lambda self: self.folder / "result.json")
+
+    def read_result(self) -> dict:
+        return json.loads(self.result.read_text())
+
+
+@dataclass(frozen=True)
+class Layout:
+    """Paths of a workspace folder."""
+
+    root: Path
+
+    def __post_init__(self):
+        object.__setattr__(self, "root", Path(self.root))
+
+    prepare_json = property(lambda self: self.root / "prepare.json")
+    cohort = property(lambda self: self.root / "cohort.tsv")
+    volumes = property(lambda self: self.root / "volumes.tsv")
+    failures = property(lambda self: self.root / "failures.tsv")
+
+    def scan(self, key: str) -> ScanFiles:
+        return ScanFiles(self.root / "scans" / key)
+
+    def read_cohort(self) -> pd.DataFrame:
+        if not self.cohort.is_file():
+            raise DataError(f"{self.root}: not a prepared workspace (cohort.tsv missing)")
+        return pd.read_csv(self.cohort, sep="\t", dtype={"key": str})
+
+
+@dataclass(frozen=True)
+class Workspace:
+    """A prepared workspace: its volume table, working grid, regions and cohort coding."""
+
+    layout: Layout
+    volumes: pd.DataFrame  # one row per complete scan (volumes.tsv), sorted by participant, age
+    grid_affine: np.ndarray  # (4, 4) RAS mm
+    grid_shape: tuple[int, int, int]
+    template: str
+    prepare_settings: dict
+    regions: RegionSet
+    cohort: CohortSettings
+
+    @property
+    def root(self) -> Path:
+        return self.layout.root
+
+
+def read_workspace(work: str | os.PathLike[str]) -> Workspace:
+    """Read ``volumes.tsv`` and ``prepare.json`` of a prepared workspace."""
+    layout = Layout(Path(work))
+    for path in (layout.volumes, layout.prepare_json):
+        if not path.is_file():
+            raise DataError(f"{layout.root}: not a prepared workspace ({path.name} missing); "
+                            "run prepare")
+    volumes = pd.read_csv(layout.volumes, sep="\t", dtype={"key": str})
+    if volumes.empty:
+        raise DataError(f"{layout.volumes}: no prepared scans")
+    prepared = json.loads(layout.prepare_json.read_text())
+    if "regions" not in prepared or "cohort" not in prepared:
+        raise DataError(f"{layout.prepare_json}: written by an older version; rerun prepare")
+    diagnostics = layout.scan(volumes["key"].iloc[0]).read_result()["diagnostics"]
+    return Workspace(
+        layout,
+        volumes.sort_values(["participant_id", "age"], kind="stable").reset_index(drop=True),
+        np.asarray(diagnostics["grid_affine"], dtype=float),
+        tuple(int(n) for n in diagnostics["grid_shape"]),
+        prepared["template"],
+        prepared["settings"],
+        RegionSet.from_dict(prepared["regions"], str(layout.prepare_json)),
+        CohortSettings.from_dict(prepared["cohort"], str(layout.prepare_json)),
+    )
+
+
+def volume_table(layout: Layout, regions: RegionSet) -> pd.DataFrame:
+    """Volume table of a workspace's complete entries: mL and % of total brain volume."""
+    rows = []
+    for record in layout.read_cohort().to_dict("records"):
+        files = layout.scan(record["key"])
+        if files.result.is_file():
+            volumes = files.read_result()["volumes_ml"]
+            rows.append(
+                {key: record[key] for key in TSV_ID}
+                | {"key": record["key"]}
+                | volumes
+                | percent_of_brain(volumes)
+            )
+    names = regions.names
+    columns = [*TSV_ID, "key", *names, *(f"{r}_pct_tbv" for r in names)]
+    return pd.DataFrame(rows, columns=columns)

@@ -1,0 +1,1 @@
+"""Phantom scenarios (TOML), shipped with the package as predictor.scenarios."""

@@ -1,0 +1,230 @@
+"""Shared contracts: configuration files, regions, cohort coding, the network's input."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import torch
+from typer.testing import CliRunner
+
+from predictor.cli import app
+from predictor.config import CONFIG_DIR, CohortSettings
+from predictor.demo import DemoSettings
+from predictor.errors import ConfigError
+from predictor.forecast import ForecastSettings
+from predictor.prepare import PrepareSettings
+from predictor.regions import RegionSet
+from predictor.regression import MixedEffectsForecaster, RidgeForecaster
+from predictor.training import TrainConfig
+
+REPOSITORY = Path(__file__).resolve().parent.parent
+
+# (reader, file content, words the one-line error must hold: file section and key)
+BAD_CONFIGS = {
+    "train-unknown": (TrainConfig.from_toml, "[loss]\nprior_weigth = 0.1\n",
+                      r"\[loss\] 'prior_weigth': unknown key \(did you mean 'prior_weight'\?\)"),
+    "train-type": (TrainConfig.from_toml, "[training]\nepochs = 'ten'\n",
+                   r"\[training\] 'epochs': must be int"),
+    "train-value": (TrainConfig.from_toml, "[training]\nmonitor = 'loss'\n",
+                    r"\[training\]: monitor must be one of"),
+    "prepare-unknown": (PrepareSettings.from_toml, "[registration]\niteratons = 3\n",
+                        r"\[registration\] 'iteratons': unknown key \(did you mean 'iterations'"),
+    "prepare-type": (PrepareSettings.from_toml, "[checks]\nbrain_ml = 'big'\n",
+                     r"\[checks\] 'brain_ml': must be"),
+    "prepare-value": (PrepareSettings.from_toml, "grid_mm = 20.0\n", r"'grid_mm' must be within"),
+    "forecast-unknown": (ForecastSettings.from_toml, "interpolaton = 'cubic'\n",
+                         r"'interpolaton': unknown key \(did you mean 'interpolation'"),
+    "forecast-value": (ForecastSettings.from_toml, "interpolation = 'sinc'\n",
+                       r"'interpolation' must be one of"),
+    "cohort-unknown": (CohortSettings.from_toml, "[sex]\ncode = ['F', 'M']\n",
+                       r"\[sex\] 'code': unknown key \(did you mean 'codes'"),
+    "cohort-value": (CohortSettings.from_toml, "[sex]\ncodes = ['F', 'F']\n",
+                     r"\[sex\]: 'codes' must be unique"),
+    "cohort-type": (CohortSettings.from_toml, "[age]\nmin_years = 'old'\n",
+                    r"\[age\] 'min_years': must be float"),
+    "regions-unknown": (RegionSet.from_toml, "[regions.wm]\nchnage = 'shrinks'\n",
+                        r"\[regions.wm\] 'chnage': unknown key \(did you mean 'change'"),
+    "regions-value": (RegionSet.from_toml, "[regions.wm]\nchange = 'melts'\n",
+                      r"\[regions.wm\] 'change': must be one of"),
+    "regions-type": (RegionSet.from_toml, "[regions.wm]\nprior = 'yes'\n",
+                     r"\[regions.wm\] 'prior': must be true or false"),
+    "demo-unknown": (lambda path: DemoSettings.from_toml(True, path), "[quick]\nepoch = 2\n",
+                     r"\[quick\] 'epoch': unknown key \(did you mean 'epochs'"),
+    "demo-type": (lambda path: DemoSettings.from_toml(True, path), "[quick]\nseed = 1.5\n",
+                  r"\[quick\] 'seed': must be int"),
+}  # fmt: skip
+
+
+@pytest.mark.parametrize("case", sorted(BAD_CONFIGS))
+def test_bad_config_files_name_file_section_and_key(tmp_path, case):
+    reader, text, words = BAD_CONFIGS[case]
+    path = tmp_path / "mine.toml"
+    path.write_text(text)
+    with pytest.raises(ConfigError, match=words) as caught:
+        reader(path)
+    assert str(caught.value).startswith(str(path)) and "\n" not in str(caught.value)
+
+
+def test_cli_reports_a_bad_config_in_one_line_with_exit_2(tmp_path):
+    path = tmp_path / "prepare.toml"
+    path.write_text("[registration]\niteratons = 3\n")
+    (tmp_path / "cohort").mkdir()
+    result = CliRunner().invoke(
+        app, ["prepare", str(tmp_path / "cohort"), str(tmp_path / "w"), "--config", str(path)]
+    )
+    assert result.exit_code == 2
+    assert "Traceback" not in result.output and len(result.output.strip().splitlines()) == 1
+
+
+def test_shipped_configs_read_and_hold_each_default_once():
+    """Every dataclass read from configs/ has no defaults of its own (common practice)."""
+    from dataclasses import MISSING, fields
+
+    from predictor.losses import LossSettings
+    from predictor.network import NetworkSettings
+    from predictor.prepare import RegistrationSettings
+    from predictor.training import TrainingSettings
+
+    for kind in (LossSettings, NetworkSettings, TrainingSettings, RegistrationSettings,
+                 PrepareSettings, ForecastSettings, DemoSettings, CohortSettings):  # fmt: skip
+        assert all(item.default is MISSING for item in fields(kind)), kind
+    assert TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml").network.channels == (4, 8, 8)
+    assert RegionSet.from_toml().prior == (
+        "hippocampus_left", "hippocampus_right", "ventricles", "total_gm", "wm", "icv"
+    )  # fmt: skip
+
+
+def test_other_sex_codes_give_the_same_fitted_models():
+    """Sex coded 'female'/'male' through configs/cohort.toml fits what 'F'/'M' fits."""
+    from predictor.phantoms.generate import true_volume_table
+    from predictor.phantoms.scenario import Scenario
+
+    truth, _ = true_volume_table(Scenario.from_toml(), 40, seed=5)
+    standard = CohortSettings.from_toml()
+    other = CohortSettings.from_dict(
+        standard.to_dict() | {"sex": {"codes": ["female", "male"], "aliases": {"w": "female"}}}
+    )
+    recoded = truth.assign(sex=truth["sex"].map({"F": "female", "M": "male"}))
+    regions = ["hippocampus_left", "ventricles"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        a = MixedEffectsForecaster(coding=standard).fit(truth, regions)
+        b = MixedEffectsForecaster(coding=other).fit(recoded, regions)
+    for region in regions:
+        np.testing.assert_allclose(b.fits_[region].beta, a.fits_[region].beta, rtol=1e-9)
+    # the sex effect is estimated (a column that a hard-coded 'M' would leave all zero)
+    assert (recoded["sex"] == "male").any() and a.fits_["ventricles"].beta[2] != 0
+    ridge_a = RidgeForecaster(coding=standard).fit(truth, regions)
+    ridge_b = RidgeForecaster(coding=other).fit(recoded, regions)
+    start = truth.groupby("participant_id").head(1).head(5)
+    np.testing.assert_allclose(
+        ridge_b.predict(start.assign(sex=start["sex"].map({"F": "female", "M": "male"})), [2.0])
+        ["mean_ml"], ridge_a.predict(start, [2.0])["mean_ml"], rtol=1e-12,
+    )  # fmt: skip
+
+
+def test_training_and_forecast_build_bitwise_equal_inputs(tiny_workspace):
+    """One prepared scan: the batch built from the workspace files and the forecast's input."""
+    from helpers import constant_velocity_model
+
+    from predictor.forecast import network_inputs
+    from predictor.nifti import load_scan
+    from predictor.pairs import ScanStore, make_batch
+    from predictor.prepare import cached_template, prepare_scan
+    from predictor.preprocess import single_threaded_itk
+    from predictor.workspace import read_workspace
+
+    workspace = read_workspace(tiny_workspace)
+    row = workspace.volumes.iloc[0]
+    image = workspace.layout.read_cohort().set_index("key").loc[row["key"], "image"]
+    settings = PrepareSettings.from_dict(workspace.prepare_settings)
+    single_threaded_itk()
+    prepared = prepare_scan(
+        load_scan(image), cached_template(workspace.template, workspace.regions), settings
+    )
+    config = TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml")
+    model = constant_velocity_model(workspace.template, config=config, settings=settings)
+    inputs, weights = network_inputs(model, prepared)
+    pair = pd.DataFrame(
+        [{"base_key": row["key"], "follow_key": row["key"], "years": 1.0}
+         | {f"{r}_prior": 1.0 for r in workspace.regions.prior}
+         | {f"{r}_prior_sd": 1.0 for r in workspace.regions.prior}]
+    )  # fmt: skip
+    batch = make_batch(
+        pair, ScanStore(tiny_workspace), torch.zeros(1, 5), True, workspace.regions
+    )
+    assert inputs.dtype == batch.inputs.dtype == torch.float32
+    assert torch.equal(inputs, batch.inputs)
+    assert torch.equal(weights, batch.regions)
+
+
+@pytest.mark.slow
+def test_a_region_added_in_a_regions_file_reaches_volumes_prior_and_forecasts(tmp_path):
+    """No code change: 'hippocampi' (both hippocampal labels) from a user's regions file."""
+    from predictor.cohort import read_cohort
+    from predictor.forecast import forecast
+    from predictor.phantoms.generate import TEMPLATE, generate_cohort
+    from predictor.prepare import prepare_cohort
+    from predictor.training import train
+
+    extra = tmp_path / "regions.toml"
+    extra.write_text(
+        '[regions.hippocampi]\ndescription = "both hippocampi"\ntissue = "GM"\n'
+        'change = "shrinks"\nreference = false\nprior = true\n'
+        '[masks.phantom.hippocampi]\nlabels = [4, 5]\ndilate_mm = 5.0\n'
+    )
+    regions = RegionSet.from_toml(extra)
+    assert regions.names[-1] == "hippocampi" and "hippocampi" in regions.prior
+    cohort = generate_cohort(tmp_path / "bids", participants=12, size="tiny", seed=8, jobs=2)
+    table = read_cohort(cohort)
+    prepare_cohort(table, tmp_path / "work", cohort / TEMPLATE,
+                   PrepareSettings.from_toml(grid_mm=4.0), jobs=2, regions=regions)  # fmt: skip
+    volumes = pd.read_csv(tmp_path / "work" / "volumes.tsv", sep="\t")
+    assert "hippocampi" in volumes and "hippocampi_pct_tbv" in volumes
+    # the two dilated label masks do not meet, so the union is the sum of the sides
+    both = volumes["hippocampus_left"] + volumes["hippocampus_right"]
+    np.testing.assert_allclose(volumes["hippocampi"], both, rtol=1e-6)
+    model = tmp_path / "model"
+    train(tmp_path / "work", model, TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml"),
+          epochs=1)  # fmt: skip
+    prior = json.loads((model / "prior.json").read_text())
+    assert "hippocampi" in prior["regions"] and "hippocampi" in prior["fits"]
+    first = table.iloc[0]
+    result = forecast(model, first["image"], first["age"], first["sex"], first["diagnosis"], [2])
+    assert "hippocampi" in set(result.volumes["region"])
+    assert "hippocampi" in result.horizons[0].grid_ratio
+
+
+@pytest.mark.slow
+def test_a_non_editable_install_runs_outside_the_source_tree(tmp_path):
+    """configs/ and synthetic_phantoms/ ship as package data (pip install, not -e)."""
+    site = tmp_path / "site"
+    subprocess.run(
+        [sys.executable, "-m", "pip", "install", "--quiet", "--no-deps", "--no-build-isolation",
+         "--target", str(site), str(REPOSITORY)],
+        check=True, capture_output=True,
+    )  # fmt: skip
+    assert (site / "predictor" / "configs" / "train.toml").is_file()
+    assert (site / "predictor" / "scenarios" / "memory_clinic.toml").is_file()
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    code = (
+        "import sys, predictor, predictor.config as c; "
+        "assert 'site' in predictor.__file__, predictor.__file__; "
+        "print(c.CONFIG_DIR); from predictor.cli import main; main(sys.argv[1:])"
+    )
+    run = subprocess.run(
+        [sys.executable, "-c", code, "phantoms", "cohort", "--participants", "1"],
+        cwd=elsewhere, env={"PYTHONPATH": str(site), "PATH": "/usr/bin:/bin"},
+        capture_output=True, text=True, timeout=300,
+    )  # fmt: skip
+    assert run.returncode == 0, run.stderr
+    assert str(site) in run.stdout
+    assert (elsewhere / "cohort" / "participants.tsv").is_file()
