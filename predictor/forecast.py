@@ -240,6 +240,35 @@ class NativeSampler:
         return sampled[0, :, : self.shape[0], : self.shape[1], : self.shape[2]]
 
 
+class NativeWarp:
+    """Carries working-grid deformations of one prepared scan to the scan's own grid.
+
+    Holds what every horizon shares: the sampler of grid fields at native voxels,
+    the grid -> native and grid -> RAS mm matrices, and the baseline's resampler.
+    """
+
+    def __init__(self, scan: Scan, prepared: PreparedScan, grid_affine, interpolation: str):
+        self.sampler = NativeSampler(native_to_grid(prepared, grid_affine), scan.data.shape)
+        linear = np.linalg.inv(self.sampler.mapping[:3, :3])
+        self.to_native = torch.from_numpy(linear.astype(np.float32))
+        to_mm = prepared.template_to_native[:3, :3] @ grid_affine[:3, :3]
+        self.to_mm = torch.from_numpy(to_mm.astype(np.float32))
+        self.resample = baseline_resampler(scan.data, interpolation)
+        self.index = identity_grid(scan.data.shape)[0]
+
+    def __call__(self, backward: torch.Tensor, determinant: torch.Tensor):
+        """(forecast image, displacement (X, Y, Z, 3) RAS mm, Jacobian determinant) natively.
+
+        ``backward`` (1, 3, D, H, W) pull-back displacement and ``determinant``
+        (1, D, H, W) of the forward map, both on the working grid.
+        """
+        both = self.sampler(torch.cat([backward, determinant[:, None]], 1))
+        back_native, native_det = both[:3], both[3].numpy()
+        source = self.index + torch.einsum("ij,jxyz->ixyz", self.to_native, back_native)
+        displacement = torch.einsum("ij,jxyz->xyzi", self.to_mm, back_native).numpy()
+        return self.resample(source), displacement, native_det
+
+
 def forecast(
     model: TrainedModel | str | os.PathLike[str],
     image: Scan | str | os.PathLike[str],
@@ -253,9 +282,9 @@ def forecast(
     """Forecast ``image`` at each horizon in ``years`` (see the module docstring).
 
     ``age`` is the baseline age in years; ``sex`` and ``diagnosis`` use the
-    codes of ``configs/cohort.toml``; ``interpolation`` ('cubic' or 'linear')
-    defaults to ``configs/forecast.toml``. Returns arrays in the scan's RAS
-    order and the volume table.
+    model's cohort codes; ``interpolation`` ('cubic' or 'linear') defaults to
+    ``configs/forecast.toml``. Returns arrays in the scan's RAS order and the
+    volume table.
     """
     interpolation = interpolation or ForecastSettings.from_toml().interpolation
     if interpolation not in INTERPOLATIONS:
@@ -263,66 +292,36 @@ def forecast(
             f"interpolation must be one of {list(INTERPOLATIONS)}; '{interpolation}' was given"
         )
     model = as_model(model)
+    info, regions = model.info, model.info.region_set
     scan = image if isinstance(image, Scan) else load_scan(image)
     sex_code, label, horizons, notes = check_request(model, float(age), sex, diagnosis, years)
     prepared = prepared if prepared is not None else prepare_for(model, scan)
     check_grid(model, prepared)
-    grid_affine, grid_shape = model.info.grid_affine, model.info.grid_shape
-    statistics = model.info.condition
     condition = encode_condition(
-        [age],
-        [sex_code],
-        [label],
-        model.info.coding,
-        statistics["age_mean"],
-        statistics["age_sd"],
-    )
+        [age], [sex_code], [label], info.coding, info.condition["age_mean"],
+        info.condition["age_sd"],
+    )  # fmt: skip
     inputs, grid_weights = network_inputs(model, prepared)
-    sampler = NativeSampler(native_to_grid(prepared, grid_affine), scan.data.shape)
-    to_native = torch.from_numpy(np.linalg.inv(sampler.mapping[:3, :3]).astype(np.float32))
-    to_mm = torch.from_numpy(
-        (prepared.template_to_native[:3, :3] @ grid_affine[:3, :3]).astype(np.float32)
-    )
-    resample = baseline_resampler(scan.data, interpolation)
-    index = identity_grid(scan.data.shape)[0]
+    native = NativeWarp(scan, prepared, info.grid_affine, interpolation)
     outputs, network_ml = [], {}
     with torch.no_grad():
         velocity = model.network(inputs, condition)
         for t in horizons:
-            forward = model.network.displacement(velocity, t, grid_shape)
-            backward = model.network.displacement(velocity, -t, grid_shape)
+            forward = model.network.displacement(velocity, t, info.grid_shape)
+            backward = model.network.displacement(velocity, -t, info.grid_shape)
             determinant = jacobian_determinant(forward)
             ratio = region_volume_ratio(grid_weights, determinant)[0].tolist()
-            # backward displacement (grid voxels) and determinant at every native voxel
-            both = sampler(torch.cat([backward, determinant[:, None]], 1))
-            back_native, native_det = both[:3], both[3].numpy()
-            source = index + torch.einsum("ij,jxyz->ixyz", to_native, back_native)
-            warped = resample(source)
-            outputs.append(
-                HorizonForecast(
-                    t,
-                    warped,
-                    np.log(np.maximum(native_det, 1e-3)),
-                    torch.einsum("ij,jxyz->xyzi", to_mm, back_native).numpy(),
-                    dict(zip(model.info.region_set.prior, ratio, strict=True)),
-                )
-            )
+            warped, displacement, native_det = native(backward, determinant)
+            log_jacobian = np.log(np.maximum(native_det, 1e-3))
+            ratios = dict(zip(regions.prior, ratio, strict=True))
+            outputs.append(HorizonForecast(t, warped, log_jacobian, displacement, ratios))
             network_ml[t] = region_volumes(
-                prepared.native_tissue,
-                prepared.native_deep,
-                scan.voxel_volume_ml,
-                model.info.region_set,
+                prepared.native_tissue, prepared.native_deep, scan.voxel_volume_ml, regions,
                 native_det,
-            )
+            )  # fmt: skip
     table, prior_notes = volume_table(model, prepared.volumes, network_ml, age, sex_code, label)
-    return ForecastResult(
-        scan,
-        prepared,
-        outputs,
-        table,
-        notes + prior_notes,
-        {"age": float(age), "sex": sex_code, "diagnosis": label},
-    )
+    condition_used = {"age": float(age), "sex": sex_code, "diagnosis": label}
+    return ForecastResult(scan, prepared, outputs, table, notes + prior_notes, condition_used)
 
 
 def volume_table(

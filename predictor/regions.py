@@ -61,7 +61,7 @@ class RegionSet:
 
     regions: tuple[Region, ...]
     masks: dict[str, dict[str, dict]]  # template kind -> deep region -> mask definition
-    raw: dict  # the validated TOML table (saved in workspaces and models)
+    raw: dict  # the validated table with its region order (saved in workspaces and models)
     source: str
 
     @classmethod
@@ -75,12 +75,17 @@ class RegionSet:
         """Validate a regions table (as in the TOML file, or saved by a workspace or model)."""
         if not isinstance(raw, dict):
             raise ConfigError(f"{source}: the regions must be a table, got {raw!r}")
-        check_keys(raw, ("regions", "masks"), source)
+        check_keys(raw, ("regions", "masks", "order"), source)
         tables = raw.get("regions")
         if not isinstance(tables, dict) or not tables:
             raise ConfigError(f"{source} [regions]: no regions defined")
-        regions = tuple(_region(name, spec, source) for name, spec in tables.items())
-        made = cls(regions, dict(raw.get("masks", {})), raw, source)
+        # the report order: the file's, or the one saved beside a key-sorted JSON copy
+        order = raw.get("order", list(tables))
+        if sorted(order) != sorted(tables):
+            raise ConfigError(f"{source}: 'order' does not list exactly the regions defined")
+        regions = tuple(_region(name, tables[name], source) for name in order)
+        saved = {"regions": tables, "masks": raw.get("masks", {}), "order": list(order)}
+        made = cls(regions, dict(raw.get("masks", {})), saved, source)
         made._check()
         return made
 
@@ -159,14 +164,22 @@ class RegionSet:
         return dict(zip(self.names, (self.coefficients() @ vector).tolist(), strict=True))
 
     def maps(self, bases, names=None):
-        """Region weight maps (R, ...) from base maps (B, ...) (numpy or torch, float32)."""
-        matrix = self.coefficients(names)
+        """Region weight maps (R, ...) from base maps (B, ...) (numpy arrays or torch tensors).
+
+        Summed term by term in a fixed order (no BLAS call, whose sums can depend on
+        memory alignment), so equal inputs give bitwise-equal maps.
+        """
+        rows = []
+        for weights in self.coefficients(names):
+            total = bases[0] * 0.0
+            for k in np.flatnonzero(weights):
+                total = total + (bases[k] if weights[k] == 1.0 else bases[k] * float(weights[k]))
+            rows.append(total)
         if isinstance(bases, np.ndarray):
-            return np.tensordot(matrix.astype(bases.dtype), bases, axes=1)
+            return np.stack(rows)
         import torch
 
-        weights = torch.as_tensor(matrix, dtype=bases.dtype)
-        return torch.tensordot(weights, bases, dims=1)
+        return torch.stack(rows)
 
     def directions(self, names) -> np.ndarray:
         """(R,) -1 / +1 / 0 of each named region (see :attr:`Region.direction`)."""

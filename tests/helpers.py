@@ -23,6 +23,7 @@ def constant_velocity_model(
     velocity=(0.0, 0.0, 0.0),
     config: TrainConfig | None = None,
     settings: PrepareSettings | None = None,
+    regions: RegionSet | None = None,
 ) -> TrainedModel:
     """An untrained model whose network predicts a constant velocity (coarse voxels / year).
 
@@ -31,7 +32,7 @@ def constant_velocity_model(
     """
     config = config or TrainConfig.from_toml()
     settings = settings or PrepareSettings.from_toml()
-    regions, coding = RegionSet.from_toml(), CohortSettings.from_toml()
+    regions, coding = regions or RegionSet.from_toml(), CohortSettings.from_toml()
     grid, shape = working_grid(cached_template(template, regions), settings)
     labels = list(coding.diagnosis_labels)
     info = ModelInfo(
@@ -64,5 +65,6 @@ def constant_velocity_model(
     truth, _ = true_volume_table(Scenario.from_toml(), 40, seed=1)
     with warnings.catch_warnings():  # convergence of this stand-in prior does not matter
         warnings.simplefilter("ignore", RuntimeWarning)
-        prior = MixedEffectsForecaster(coding=coding).fit(truth, list(regions.names))
+        known = [name for name in regions.names if name in truth]  # the phantoms' regions
+        prior = MixedEffectsForecaster(coding=coding).fit(truth, known)
     return TrainedModel(Path("synthetic-model"), network, info, prior)

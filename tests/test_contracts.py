@@ -101,6 +101,17 @@ def test_shipped_configs_read_and_hold_each_default_once():
     )  # fmt: skip
 
 
+def test_region_order_survives_a_key_sorted_json_copy():
+    """Workspaces and models save regions as key-sorted JSON; the report order is kept."""
+    regions = RegionSet.from_toml()
+    copy = RegionSet.from_dict(json.loads(json.dumps(regions.raw, sort_keys=True)))
+    assert copy.names == regions.names and copy.deep == regions.deep
+    np.testing.assert_array_equal(copy.coefficients(), regions.coefficients())
+    broken = json.loads(json.dumps(regions.raw)) | {"order": ["wm"]}
+    with pytest.raises(ConfigError, match="'order' does not list exactly"):
+        RegionSet.from_dict(broken, "model.json")
+
+
 def test_other_sex_codes_give_the_same_fitted_models():
     """Sex coded 'female'/'male' through configs/cohort.toml fits what 'F'/'M' fits."""
     from predictor.phantoms.generate import true_volume_table
@@ -168,11 +179,14 @@ def test_training_and_forecast_build_bitwise_equal_inputs(tiny_workspace):
 @pytest.mark.slow
 def test_a_region_added_in_a_regions_file_reaches_volumes_prior_and_forecasts(tmp_path):
     """No code change: 'hippocampi' (both hippocampal labels) from a user's regions file."""
+    from helpers import constant_velocity_model
+
     from predictor.cohort import read_cohort
     from predictor.forecast import forecast
+    from predictor.pairs import attach_prior, fit_prior, visit_pairs
     from predictor.phantoms.generate import TEMPLATE, generate_cohort
     from predictor.prepare import prepare_cohort
-    from predictor.training import train
+    from predictor.workspace import read_workspace
 
     extra = tmp_path / "regions.toml"
     extra.write_text(
@@ -184,18 +198,24 @@ def test_a_region_added_in_a_regions_file_reaches_volumes_prior_and_forecasts(tm
     assert regions.names[-1] == "hippocampi" and "hippocampi" in regions.prior
     cohort = generate_cohort(tmp_path / "bids", participants=12, size="tiny", seed=8, jobs=2)
     table = read_cohort(cohort)
-    prepare_cohort(table, tmp_path / "work", cohort / TEMPLATE,
-                   PrepareSettings.from_toml(grid_mm=4.0), jobs=2, regions=regions)  # fmt: skip
+    settings = PrepareSettings.from_toml(grid_mm=4.0)
+    prepare_cohort(table, tmp_path / "work", cohort / TEMPLATE, settings, jobs=2, regions=regions)
     volumes = pd.read_csv(tmp_path / "work" / "volumes.tsv", sep="\t")
     assert "hippocampi" in volumes and "hippocampi_pct_tbv" in volumes
     # the two dilated label masks do not meet, so the union is the sum of the sides
     both = volumes["hippocampus_left"] + volumes["hippocampus_right"]
-    np.testing.assert_allclose(volumes["hippocampi"], both, rtol=1e-6)
-    model = tmp_path / "model"
-    train(tmp_path / "work", model, TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml"),
-          epochs=1)  # fmt: skip
-    prior = json.loads((model / "prior.json").read_text())
-    assert "hippocampi" in prior["regions"] and "hippocampi" in prior["fits"]
+    np.testing.assert_allclose(volumes["hippocampi"], both, rtol=2e-5)  # TSV: 6 digits
+    # the training prior (fitted as `train` fits it) and the pairs' prior targets
+    workspace = read_workspace(tmp_path / "work")
+    assert workspace.regions.names == regions.names
+    people = sorted(set(volumes["participant_id"]))
+    prior, _ = fit_prior(workspace.volumes, people, workspace.regions, workspace.cohort)
+    assert "hippocampi" in prior.fits_
+    pairs = attach_prior(visit_pairs(workspace.volumes, people, regions), prior, regions.prior)
+    assert {"hippocampi_prior", "hippocampi_prior_sd"} <= set(pairs.columns)
+    model = constant_velocity_model(str(cohort / TEMPLATE), (0.0, 0.0, 0.2),
+                                    TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml"),
+                                    settings, regions)  # fmt: skip
     first = table.iloc[0]
     result = forecast(model, first["image"], first["age"], first["sex"], first["diagnosis"], [2])
     assert "hippocampi" in set(result.volumes["region"])

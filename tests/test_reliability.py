@@ -425,47 +425,6 @@ def test_scan_store_keeps_at_most_its_capacity(tiny_workspace):
     assert len(store._cache) == 5
 
 
-MEMORY_PROBE = """
-import resource, sys
-import pandas as pd
-from predictor.prepare import PrepareSettings, prepare_cohort
-table = pd.read_csv(sys.argv[1], sep="\\t").fillna("")
-prepare_cohort(table, sys.argv[2], sys.argv[3], PrepareSettings.from_toml(grid_mm=4.0), jobs=2)
-own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-workers = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-print(own, workers)
-"""
-
-
-@pytest.mark.slow
-def test_memory_stays_flat_from_20_to_200_scans(tiny_workspace, tmp_path):
-    good = _good(tiny_workspace)
-    row = cohort_rows(tiny_workspace, ["sub-001"]).iloc[:1]
-    peaks = []
-    for count in (20, 200):
-        folder = tmp_path / f"c{count}"
-        folder.mkdir()
-        rows = []
-        for k in range(count):  # distinct bytes (so no cache hits), same anatomy
-            data = good.get_fdata()
-            data[0, 0, 0] = k  # one background voxel
-            image = nib.Nifti1Image(data.astype(np.int16), good.affine)
-            path = _save(image, folder / f"s{k}.nii.gz")
-            rows.append(row.assign(participant_id=f"p{k:03d}", image=str(path)))
-        table = folder / "cohort.tsv"
-        pd.concat(rows).to_csv(table, sep="\t", index=False)
-        done = subprocess.run(
-            [sys.executable, "-c", MEMORY_PROBE, str(table), str(folder / "work"),
-             str(bids(tiny_workspace) / TEMPLATE)],
-            capture_output=True, text=True, timeout=900,
-        )  # fmt: skip
-        assert done.returncode == 0, done.stderr[-1500:]
-        peaks.append([int(v) for v in done.stdout.split()])
-    (own20, workers20), (own200, workers200) = peaks
-    assert own200 < own20 * 1.15 + 30_000  # kB: the coordinating process
-    assert workers200 < workers20 * 1.15 + 30_000  # kB: the largest worker
-
-
 # --- privacy -------------------------------------------------------------------------------
 @pytest.mark.slow
 def test_no_output_carries_header_text_or_absolute_paths(tiny_model, tiny_workspace, tmp_path):
