@@ -41,6 +41,16 @@ def tiny_workspace(tmp_path_factory) -> Path:
 
 
 @pytest.fixture(scope="session")
+def stand_in_model(tmp_path_factory) -> Path:
+    """An untrained constant-velocity model folder (mni152 grid): for tests of model files
+    that need no training."""
+    from helpers import constant_velocity_model, write_model_folder
+
+    folder = tmp_path_factory.mktemp("standin") / "model"
+    return write_model_folder(constant_velocity_model(velocity=(0.0, 0.0, 0.1)), folder)
+
+
+@pytest.fixture(scope="session")
 def tiny_model(tiny_workspace, tmp_path_factory) -> Path:
     """The tiny config trained on the tiny workspace (configs/train-tiny.toml)."""
     from predictor.config import CONFIG_DIR

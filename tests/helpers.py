@@ -9,12 +9,21 @@ from pathlib import Path
 import torch
 
 from predictor.config import CohortSettings
-from predictor.modelstore import PRIOR, SCHEMA, ModelInfo, TrainedModel, build_network
+from predictor.modelstore import (
+    PRIOR,
+    SCHEMA,
+    WEIGHTS,
+    ModelInfo,
+    TrainedModel,
+    build_network,
+    save_tensors,
+    write_model_json,
+)
 from predictor.phantoms.generate import true_volume_table
 from predictor.phantoms.scenario import Scenario
 from predictor.prepare import PrepareSettings, cached_template, working_grid
 from predictor.regions import RegionSet
-from predictor.regression import MixedEffectsForecaster
+from predictor.regression import MixedEffectsForecaster, save_mixed_model
 from predictor.training import TrainConfig
 
 
@@ -68,3 +77,12 @@ def constant_velocity_model(
         known = [name for name in regions.names if name in truth]  # the phantoms' regions
         prior = MixedEffectsForecaster(coding=coding).fit(truth, known)
     return TrainedModel(Path("synthetic-model"), network, info, prior)
+
+
+def write_model_folder(model: TrainedModel, folder: Path) -> Path:
+    """Save an in-memory model as a model folder (weights, model.json, prior), as train does."""
+    folder.mkdir(parents=True, exist_ok=True)
+    save_tensors(folder / WEIGHTS, model.network.state_dict())
+    save_mixed_model(folder / PRIOR, model.prior)
+    write_model_json(folder, model.info)
+    return folder

@@ -359,13 +359,14 @@ def _bad_json(folder):
     ids=["truncated", "truncated-checksum-fixed", "tampered", "json-mismatch", "regions",
          "newer-schema", "bad-json", "missing-weights"],
 )  # fmt: skip
-def test_damaged_model_folders_are_clear_errors(tiny_model, tmp_path, damage, message):
-    folder = _damaged(tiny_model, tmp_path, damage)
+def test_damaged_model_folders_are_clear_errors(stand_in_model, tmp_path, damage, message):
+    assert load_model(stand_in_model).info.schema == 2  # the undamaged folder loads
+    folder = _damaged(stand_in_model, tmp_path, damage)
     with pytest.raises(ModelError, match=message):
         load_model(folder)
 
 
-def test_pickled_payload_is_refused_never_executed(tiny_model, tmp_path):
+def test_pickled_payload_is_refused_never_executed(stand_in_model, tmp_path):
     marker = tmp_path / "executed"
 
     def plant(folder):
@@ -374,7 +375,7 @@ def test_pickled_payload_is_refused_never_executed(tiny_model, tmp_path):
         _fix_checksum(folder)
         torch.save({"model": Payload(marker)}, folder / CHECKPOINT)
 
-    folder = _damaged(tiny_model, tmp_path, plant)
+    folder = _damaged(stand_in_model, tmp_path, plant)
     with pytest.raises(ModelError, match="refused"):
         load_model(folder)
     with pytest.raises(ModelError, match="refused"):
