@@ -74,8 +74,11 @@ def phantoms(
     ] = "tiny",
     seed: Annotated[int, typer.Option(help="Seed; the same seed gives the same bytes.")] = 0,
     scenario: Annotated[
-        Path | None,
-        typer.Option(help="Scenario TOML [default: synthetic_phantoms/memory_clinic.toml]."),
+        str | None,
+        typer.Option(
+            help="A shipped scenario (memory_clinic, no_individual_signal) or a scenario "
+            "TOML file [default: memory_clinic]."
+        ),
     ] = None,
     jobs: Annotated[int, typer.Option(min=1, help="Parallel worker processes.")] = 1,
     force: Annotated[bool, typer.Option(help="Write into a non-empty folder.")] = False,

@@ -179,3 +179,65 @@ def test_refuses_non_empty_output(tmp_path):
     with pytest.raises(OutputError, match="not empty"):
         generate_cohort(tmp_path, participants=1)
     assert (tmp_path / "keep.txt").read_text() == "user data"
+
+
+# --- scenarios ---------------------------------------------------------------------------------
+def test_scenarios_are_named_or_given_by_path(tmp_path):
+    from predictor.errors import ConfigError
+    from predictor.phantoms.scenario import DEFAULT_SCENARIO, shipped_scenarios
+
+    assert {"memory_clinic", "no_individual_signal"} <= set(shipped_scenarios())
+    assert Scenario.from_toml("memory_clinic").name == Scenario.from_toml(DEFAULT_SCENARIO).name
+    with pytest.raises(ConfigError, match="neither a shipped scenario"):
+        Scenario.from_toml("no_such_scenario")
+    from typer.testing import CliRunner
+
+    from predictor.cli import app
+    from predictor.cohort import read_cohort
+
+    out = tmp_path / "control"
+    result = CliRunner().invoke(
+        app, ["phantoms", str(out), "--participants", "2", "--scenario", "no_individual_signal"]
+    )
+    assert result.exit_code == 0, result.output
+    assert len(read_cohort(out)["participant_id"].unique()) == 2  # the project's BIDS reader
+    refused = CliRunner().invoke(app, ["phantoms", str(tmp_path / "x"), "--scenario", "nope"])
+    assert refused.exit_code == 2 and "neither a shipped scenario" in refused.output
+
+
+@pytest.mark.parametrize("name", ["memory_clinic", "no_individual_signal"])
+def test_negative_control_floor_is_the_diagnosis_and_age_average(name):
+    """In no_individual_signal the best forecast from baseline knows diagnosis and age only.
+
+    Expected ratio at t years: 1 + rate[dx] (1 + slope (age - ref) / 10) E[m] t, with
+    E[m] = E[clip(exp(s Z - s^2 / 2), lo, hi)] for standard normal Z, computed here by
+    scipy's quad (an outside reference for the generator's Gauss-Hermite average). In
+    memory_clinic the stage visible at baseline moves the floor away from it.
+    """
+    from scipy import integrate, stats
+
+    from predictor.phantoms.generate import true_volume_table
+
+    scenario = Scenario.from_toml(name)
+    progression = scenario.progression
+    sd, (low, high) = progression["hidden_sd"], progression["multiplier_range"]
+    mean_factor, _ = integrate.quad(
+        lambda z: np.clip(np.exp(sd * z - sd**2 / 2), low, high) * stats.norm.pdf(z), -12, 12
+    )
+    _, best = true_volume_table(scenario, 60, seed=9)
+    first = best.groupby("participant_id").transform("first")
+    later = best["years"] > 0
+    age = first["age"][later]
+    slope, reference = progression["age_slope_per_decade"], progression["age_reference_years"]
+    factor = 1 + slope * (age - reference) / 10
+    for region, rates in (("hippocampus_left", "hippocampus"), ("ventricles", "ventricles")):
+        rate = best["diagnosis"][later].map(scenario.rates[rates])
+        ratio = best[region][later] / first[region][later]
+        # the participant factor the floor implies, once diagnosis, age and horizon are divided out
+        implied = (ratio - 1) / (rate * factor * best["years"][later])
+        if name == "no_individual_signal":
+            assert implied.max() - implied.min() < 1e-9, region  # one value for everyone
+            # the generator's 40-node Gauss-Hermite average of a clipped factor
+            assert implied.mean() == pytest.approx(mean_factor, abs=2e-3), region
+        else:
+            assert implied.max() - implied.min() > 0.05, region  # the visible stage moves it

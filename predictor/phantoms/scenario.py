@@ -10,6 +10,26 @@ from predictor.config import SCENARIO_DIR, read_toml, require
 from predictor.errors import ConfigError
 
 DEFAULT_SCENARIO = SCENARIO_DIR / "memory_clinic.toml"
+
+
+def shipped_scenarios() -> list[str]:
+    """Names of the scenarios shipped in ``synthetic_phantoms/``."""
+    return sorted(path.stem for path in SCENARIO_DIR.glob("*.toml"))
+
+
+def scenario_file(name_or_path: str | os.PathLike[str] | None) -> Path:
+    """A shipped scenario's file by name (e.g. ``no_individual_signal``), or a TOML path."""
+    if name_or_path is None:
+        return DEFAULT_SCENARIO
+    text = str(name_or_path)
+    if text in shipped_scenarios():
+        return SCENARIO_DIR / f"{text}.toml"
+    if not text.endswith(".toml") or not Path(text).is_file():
+        raise ConfigError(
+            f"scenario '{text}' is neither a shipped scenario "
+            f"({', '.join(shipped_scenarios())}) nor a TOML file"
+        )
+    return Path(text)
 #: regions whose annual rates a scenario sets
 RATE_REGIONS = ("hippocampus", "ventricles", "cortical_gm", "wm")
 
@@ -53,8 +73,8 @@ class Scenario:
 
     @classmethod
     def from_toml(cls, path: str | os.PathLike[str] | None = None) -> Scenario:
-        """Read and check a scenario file (the default one when ``path`` is None)."""
-        path = Path(path) if path is not None else DEFAULT_SCENARIO
+        """Read and check a scenario: a shipped name, a TOML path, or None (the default)."""
+        path = scenario_file(path)
         raw = read_toml(path)
         source = str(path)
         cohort = require(raw, "cohort", source, dict)
