@@ -395,14 +395,10 @@ def compare(
     with progress:
         comparison = run_comparison(model, work, jobs, seed, advance)
     page = write_report(comparison, out)
-    tests = comparison.tests
     if as_json:
-        typer.echo(json.dumps(tests.to_dict("records"), indent=2))
+        typer.echo(json.dumps(comparison.tests.to_dict("records"), indent=2))
         return
-    shown = tests[["region", "network", "network_mean_pct_tbv", "best_regression",
-                   "best_regression_mean_pct_tbv", "p_value", "winner"]]  # fmt: skip
-    typer.echo("mean |error| in % of total brain volume, held-out test pairs:")
-    typer.echo(shown.round(4).to_string(index=False))
+    typer.echo(headline_text(comparison))
     typer.echo(f"report: {page}")
     typer.echo(CAUTION)
 
@@ -514,16 +510,21 @@ def demo(
         progress.advance(overall)
     typer.echo("Prepare: measured against true volumes (% error):")
     typer.echo(result["prepare_accuracy"].round(2).to_string(index=False))
-    tests = result["tests"]
-    typer.echo("Held-out test pairs, mean |error| in % of total brain volume:")
-    typer.echo(
-        tests[["region", "network", "network_mean_pct_tbv", "best_regression",
-               "best_regression_mean_pct_tbv", "winner"]].round(4).to_string(index=False)
-    )  # fmt: skip
+    typer.echo(headline_text(result["comparison"]))
     for key, folder in result["folders"].items():
         typer.echo(f"{key:>10}: {folder}")
     typer.echo(f"report: {result['report']}")
     typer.echo("Synthetic phantoms: invented anatomy, not images of any person. " + CAUTION)
+
+
+def headline_text(comparison) -> str:
+    """The comparison's verdict per region and network variant, as a terminal table."""
+    headlines = comparison.headlines[["region", "network", "role", "verdict"]]
+    return (
+        f"Held-out test participants ({comparison.data['participants']['test']}), each counted "
+        "once; better or worse only where the 95% CI of the error difference excludes 0:\n"
+        + headlines.to_string(index=False)
+    )
 
 
 #: options that take several values after one flag (``--years 1 2 5``)

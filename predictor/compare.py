@@ -30,6 +30,7 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage, stats
 
+from predictor.config import load_settings
 from predictor.errors import DataError
 from predictor.forecast import as_model, forecast, prepare_for
 from predictor.nifti import load_scan
@@ -53,7 +54,8 @@ class Comparison:
 
     errors: pd.DataFrame  # one row per pair, region and method
     summary: pd.DataFrame  # region x method: n, mean, SD, median, 95% CI (% of brain volume)
-    tests: pd.DataFrame  # region: network against the best regression (Wilcoxon)
+    tests: pd.DataFrame  # region x network variant x comparator, participant level
+    headlines: pd.DataFrame  # region x network variant: better / worse than how many
     images: pd.DataFrame  # one row per pair and method: MAE, SSIM, Dice
     by_horizon: pd.DataFrame
     by_diagnosis: pd.DataFrame
@@ -234,8 +236,12 @@ def compare(
     jobs: int = 1,
     seed: int = 0,
     progress=None,
+    settings: CompareSettings | None = None,
 ) -> Comparison:
-    """Compare the model with every regression forecaster on its test participants."""
+    """Compare the model with every regression forecaster on its test participants.
+
+    ``settings`` (primary region, CI level, resamples) default to ``configs/compare.toml``.
+    """
     model = as_model(model_dir)
     split = model.info.split
     check_split(split)
@@ -266,10 +272,14 @@ def compare(
         methods[FLOOR] = floor
     errors = error_table(pairs, methods, names)
     summary = summarise(errors, seed)
+    regions = workspace.regions
+    checks = [name for name in names if regions.get(name).reference or name == TOTAL_BRAIN]
+    tests = paired_tests(errors, names, checks, settings or CompareSettings.from_toml(), seed)
     return Comparison(
         errors=errors,
         summary=summary,
-        tests=paired_tests(errors, summary, names),
+        tests=tests,
+        headlines=headlines(tests),
         images=image_table(pairs),
         by_horizon=grouped(errors.assign(horizon=horizon_bins(errors["years"])), "horizon"),
         by_diagnosis=grouped(errors, "diagnosis"),
@@ -355,43 +365,137 @@ def summarise(errors: pd.DataFrame, seed: int) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def paired_tests(errors: pd.DataFrame, summary: pd.DataFrame, names) -> pd.DataFrame:
-    """Per region and network variant: against the best regression (Wilcoxon signed-rank).
+@dataclass(frozen=True)
+class CompareSettings:
+    """How forecasts are judged (``configs/compare.toml``)."""
 
-    The best regression is the one with the lowest mean |error| (% TBV) in
-    that region; the test pairs the two methods' absolute errors pair by pair.
+    primary_region: str
+    level: float
+    bootstrap: int
+
+    def __post_init__(self):
+        if not 0.5 < self.level < 1.0:
+            raise ValueError(f"'level' must be within (0.5, 1), got {self.level}")
+        if self.bootstrap < 100:
+            raise ValueError(f"'bootstrap' must be at least 100, got {self.bootstrap}")
+
+    @classmethod
+    def from_toml(cls, path: str | os.PathLike[str] | None = None) -> CompareSettings:
+        return load_settings(cls, "compare.toml", path)
+
+
+def participant_means(errors: pd.DataFrame) -> pd.DataFrame:
+    """Mean |error| (% TBV) of each participant over its pairs: rows participants,
+    columns (region, method). Each participant then counts once."""
+    return errors.pivot_table(
+        index="participant_id", columns=["region", "method"], values="abs_error_pct_tbv",
+        aggfunc="mean", sort=False,
+    )  # fmt: skip
+
+
+def cluster_bootstrap_ci(values: np.ndarray, rng, resamples: int, level: float):
+    """Percentile bootstrap CI of the mean of one value per participant (resampled whole)."""
+    values = np.asarray(values, dtype=float)
+    if len(values) < 2:
+        return float("nan"), float("nan")
+    draws = rng.integers(0, len(values), size=(resamples, len(values)))
+    means = values[draws].mean(axis=1)
+    tail = (1 - level) / 2
+    return float(np.quantile(means, tail)), float(np.quantile(means, 1 - tail))
+
+
+def paired_tests(errors: pd.DataFrame, names, checks, settings: CompareSettings, seed: int):
+    """Each network variant against every comparator, region by region, per participant.
+
+    For participant i, d_i = (network's mean |error|) - (comparator's), in % of
+    total brain volume; the table gives the mean of d, its participant-cluster
+    bootstrap CI, and an exact sign test on the participants (scipy's binomtest).
+    The primary region is tested without correction; the other target regions
+    with Holm's correction within each (variant, comparator) family; ``checks``
+    (reference regions, whole brain) are reported, never won. A method is better
+    only when the CI of the difference excludes zero.
     """
+    from statsmodels.stats.multitest import multipletests
+
+    if settings.primary_region not in names or settings.primary_region in checks:
+        raise DataError(
+            f"primary region '{settings.primary_region}' is not a target region here "
+            f"({', '.join(n for n in names if n not in checks)}); set it in configs/compare.toml"
+        )
+    means = participant_means(errors)
+    methods = list(dict.fromkeys(errors["method"]))
+    comparators = [m for m in methods if m not in (*NETWORKS, FLOOR)]
+    rng = seeded_rng(seed, 19)
     rows = []
-    regressions = summary[~summary["method"].isin([*NETWORKS, FLOOR])]
-    for region in names:
-        candidates = regressions[regressions["region"] == region]
-        best = candidates.loc[candidates["mean_pct_tbv"].idxmin()]
-        own = errors[errors["region"] == region].sort_values(["participant_id", "session_id"])
-        for variant in NETWORKS:
-            network = summary[(summary["region"] == region) & (summary["method"] == variant)]
-            network_mean = float(network["mean_pct_tbv"].iloc[0])
-            a, b = (
-                own.loc[own["method"] == method, "abs_error_pct_tbv"].to_numpy()
-                for method in (variant, best["method"])
-            )
-            if len(a) >= 2 and np.any(a != b):
-                statistic, p_value = stats.wilcoxon(a, b)
-            else:
-                statistic, p_value = float("nan"), float("nan")
-            rows.append(
-                {
-                    "region": region,
-                    "network": variant,
-                    "network_mean_pct_tbv": network_mean,
-                    "best_regression": best["method"],
-                    "best_regression_mean_pct_tbv": best["mean_pct_tbv"],
-                    "relative_difference_pct": 100 * (network_mean / best["mean_pct_tbv"] - 1),
-                    "wilcoxon_statistic": float(statistic),
-                    "p_value": float(p_value),
-                    "n_pairs": len(a),
-                    "winner": variant if network_mean <= best["mean_pct_tbv"] else best["method"],
-                }
-            )
+    for variant in NETWORKS:
+        for comparator in comparators:
+            family = []
+            for region in names:
+                both = means[[(region, variant), (region, comparator)]].dropna()
+                difference = (both.iloc[:, 0] - both.iloc[:, 1]).to_numpy()
+                low, high = cluster_bootstrap_ci(
+                    difference, rng, settings.bootstrap, settings.level
+                )
+                better = int((difference < 0).sum())
+                decided = int((difference != 0).sum())
+                sign_p = stats.binomtest(better, decided, 0.5).pvalue if decided else 1.0
+                role = (
+                    "check" if region in checks
+                    else "primary" if region == settings.primary_region
+                    else "secondary"
+                )  # fmt: skip
+                family.append(
+                    {
+                        "region": region, "network": variant, "comparator": comparator,
+                        "role": role, "participants": len(difference),
+                        "network_mean_pct_tbv": float(both.iloc[:, 0].mean()),
+                        "comparator_mean_pct_tbv": float(both.iloc[:, 1].mean()),
+                        "difference_pct_tbv": float(difference.mean()),
+                        "ci_low_pct_tbv": low, "ci_high_pct_tbv": high,
+                        "participants_better": better, "sign_test_p": float(sign_p),
+                    }
+                )  # fmt: skip
+            secondary = [row for row in family if row["role"] == "secondary"]
+            if secondary:
+                adjusted = multipletests([row["sign_test_p"] for row in secondary], method="holm")
+                for row, p in zip(secondary, adjusted[1], strict=True):
+                    row["holm_p"] = float(p)
+            for row in family:
+                row.setdefault("holm_p", row["sign_test_p"] if row["role"] == "primary" else np.nan)
+                row["verdict"] = _verdict(row)
+            rows += family
+    return pd.DataFrame(rows)
+
+
+def _verdict(row: dict) -> str:
+    if row["role"] == "check":
+        return "check"
+    if row["ci_high_pct_tbv"] < 0:
+        return "network better"
+    if row["ci_low_pct_tbv"] > 0:
+        return "comparator better"
+    return "no difference shown"
+
+
+def headlines(tests: pd.DataFrame) -> pd.DataFrame:
+    """Per region and network variant: against how many comparators it is better or worse."""
+    rows = []
+    for (region, variant), group in tests.groupby(["region", "network"], sort=False):
+        role = group["role"].iloc[0]
+        better = group.loc[group["verdict"] == "network better", "comparator"].tolist()
+        worse = group.loc[group["verdict"] == "comparator better", "comparator"].tolist()
+        if role == "check":
+            verdict = "check, not a region to win"
+        elif worse:
+            verdict = "worse than " + ", ".join(worse)
+        elif len(better) == len(group):
+            verdict = "better than every comparator"
+        else:
+            verdict = f"better than {len(better)} of {len(group)} comparators"
+        rows.append(
+            {"region": region, "network": variant, "role": role, "better_than": len(better),
+             "worse_than": len(worse), "comparators": len(group), "verdict": verdict}
+        )  # fmt: skip
     return pd.DataFrame(rows)
 
 

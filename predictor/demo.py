@@ -160,6 +160,6 @@ def run_demo(
         "folders": folders,
         "report": page,
         "prepare_accuracy": accuracy,
-        "tests": comparison.tests,
+        "comparison": comparison,
         "trial": trial,
     }

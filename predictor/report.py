@@ -23,6 +23,7 @@ from predictor.files import write_json, write_text, write_tsv
 
 TABLES = (
     "summary",
+    "headlines",
     "tests",
     "errors",
     "images",
@@ -60,9 +61,7 @@ def write_report(comparison: Comparison, out: str | Path) -> Path:
     figures = {
         "error_by_region.png": figure_error_by_region(tables["summary"]),
         "error_by_horizon.png": figure_error_by_horizon(tables["by_horizon"]),
-        "forecast_vs_observed.png": figure_forecast_vs_observed(
-            tables["errors"], tables["tests"]
-        ),
+        "forecast_vs_observed.png": figure_forecast_vs_observed(tables["errors"]),
     }
     if comparison.examples:
         figures["examples.png"] = figure_examples(comparison.examples)
@@ -127,9 +126,12 @@ def figure_error_by_horizon(by_horizon: pd.DataFrame):
     return figure
 
 
-def figure_forecast_vs_observed(errors: pd.DataFrame, tests: pd.DataFrame):
+def figure_forecast_vs_observed(errors: pd.DataFrame):
     figure, panels = region_axes(list(dict.fromkeys(errors["region"])), 3.25)
-    best = tests.groupby("region")["best_regression"].first()
+    regressions = errors[~errors["method"].isin([*NETWORKS, FLOOR, "no-change"])]
+    # the lowest-error regression of each region, shown for orientation (descriptive only)
+    best = regressions.groupby(["region", "method"])["abs_error_pct_tbv"].mean().groupby(
+        level="region").idxmin().map(lambda key: key[1])  # fmt: skip
     colours = method_colours(dict.fromkeys(errors["method"]))
     for axis, region in panels:
         own = errors[errors["region"] == region]
@@ -204,34 +206,37 @@ def table_html(frame: pd.DataFrame, source: str, columns: list[str] | None = Non
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
-def verdicts(tests: pd.DataFrame) -> str:
-    """Plain-words statement of the winner per region, numbers tagged with their TSV cells."""
+def verdicts(headlines: pd.DataFrame, tests: pd.DataFrame) -> str:
+    """Plain words per region: against how many comparators each network variant is better
+    or worse (participant-level CIs of the difference), numbers tagged with their TSV cells."""
     items = []
-    for region, rows in tests.groupby("region", sort=False):
+    for region, rows in headlines.groupby("region", sort=False):
+        if rows["role"].iloc[0] == "check":
+            items.append(
+                f"<li><b>{region.replace('_', ' ')}</b>: a check (a reference or the "
+                "denominator of % of total brain volume), not a region to win.</li>"
+            )
+            continue
         parts = []
         for index, row in rows.iterrows():
 
             def tagged(column, index=index, row=row):
                 return (
-                    f'<span data-source="tests.tsv" data-row="{index}" data-column="{column}">'
-                    f"{format_number(row[column])}</span>"
+                    f'<span data-source="headlines.tsv" data-row="{index}" '
+                    f'data-column="{column}">{format_number(row[column])}</span>'
                 )
 
-            label = VARIANT_WORDS[row["network"]]
-            verb = "beats" if row["winner"] == row["network"] else "does not beat"
+            worse = tests[(tests["region"] == region) & (tests["network"] == row["network"])
+                          & (tests["verdict"] == "comparator better")]["comparator"]  # fmt: skip
+            named = f" (worse than {html.escape(', '.join(worse))})" if len(worse) else ""
             parts.append(
-                f"{label} {verb} the best regression ({html.escape(row['best_regression'])}): "
-                f"{tagged('network_mean_pct_tbv')}% against "
-                f"{tagged('best_regression_mean_pct_tbv')}% of total brain volume "
-                f"(Wilcoxon p = {tagged('p_value')}, {tagged('n_pairs')} pairs)"
+                f"{VARIANT_WORDS[row['network']]} is better than {tagged('better_than')} and "
+                f"worse than {tagged('worse_than')} of {tagged('comparators')} comparators"
+                + named
             )
-        best = rows.loc[rows["network_mean_pct_tbv"].idxmin()]
-        if best["network_mean_pct_tbv"] <= best["best_regression_mean_pct_tbv"]:
-            headline = f"<b>{html.escape(best['network'])}</b> wins"
-        else:
-            headline = f"<b>{html.escape(best['best_regression'])}</b> wins"
+        role = " (primary endpoint)" if rows["role"].iloc[0] == "primary" else ""
         items.append(
-            f"<li><b>{region.replace('_', ' ')}</b>: {headline}. " + "; ".join(parts) + ".</li>"
+            f"<li><b>{region.replace('_', ' ')}</b>{role}: " + "; ".join(parts) + ".</li>"
         )
     return "<ul>" + "".join(items) + "</ul>"
 
@@ -281,12 +286,20 @@ def render_page(tables: dict[str, pd.DataFrame], data: dict, figures: list[str],
         f"forecast, at horizons of {data['horizon_years'][0]:.2f} to "
         f"{data['horizon_years'][1]:.2f} years. The network's volumes were measured on its "
         "forecast scans by the same measurement as the real follow-ups.</p>",
-        "<h2>Which method wins each region</h2>",
-        verdicts(tests),
+        "<h2>Does the network beat the other forecasts, region by region?</h2>",
+        "<p>Each participant counts once: its errors are averaged over its pairs, the "
+        "network's error is compared with each comparator's participant by participant, and "
+        "the network is called better (or worse) only when the bootstrap 95% CI of the mean "
+        "difference over participants excludes zero. With few test participants most "
+        "differences stay undecided; that is the honest answer.</p>",
+        verdicts(tables["headlines"], tests),
         "<h2>Forecast error (% of total brain volume)</h2>",
         floor_note,
         table_html(summary, "summary.tsv"),
-        "<h2>Network against the best regression (paired Wilcoxon signed-rank test)</h2>",
+        "<h2>Network minus each comparator, per participant (% of total brain volume)</h2>",
+        "<p>Mean difference with its participant-cluster bootstrap CI; exact sign test over "
+        "participants, uncorrected for the primary region and Holm-corrected for the other "
+        "target regions within each comparator.</p>",
         table_html(tests, "tests.tsv"),
         "<h2>Image agreement with the real follow-up (working grid, inside the brain)</h2>",
         table_html(images, "images_mean.tsv"),

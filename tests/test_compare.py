@@ -12,7 +12,15 @@ import pandas as pd
 import pytest
 from PIL import Image
 
-from predictor.compare import NETWORK, bootstrap_ci, compare, ssim_map
+from predictor.compare import (
+    NETWORK,
+    CompareSettings,
+    bootstrap_ci,
+    cluster_bootstrap_ci,
+    compare,
+    paired_tests,
+    ssim_map,
+)
 from predictor.errors import DataError
 from predictor.regions import RegionSet
 from predictor.report import format_number, write_report
@@ -89,10 +97,19 @@ def test_page_is_self_contained_and_names_the_winners(comparison):
     assert not parser.links  # no stylesheet, script or link is fetched
     assert "http://" not in page and "https://" not in page
     for region in REGIONS:
-        assert f"<b>{region.replace('_', ' ')}</b>:" in page and "wins" in page
+        assert f"<b>{region.replace('_', ' ')}</b>" in page
+    assert "a check" in page and "(primary endpoint)" in page
     assert "Research use only" in page
-    assert set(result.tests["region"]) == set(REGIONS)
-    assert (result.tests["network"].unique() == [NETWORK, "network-jacobian"]).all()
+    tests = result.tests
+    assert set(tests["region"]) == set(REGIONS)
+    assert list(tests["network"].unique()) == [NETWORK, "network-jacobian"]
+    # each participant counted once; the floor is never a comparator
+    assert (tests["participants"] == result.data["participants"]["test"]).all()
+    assert "floor (best possible)" not in set(tests["comparator"])
+    assert set(tests.loc[tests["role"] == "check", "region"]) == {"brain", "icv"}
+    assert (tests.loc[tests["role"] == "check", "verdict"] == "check").all()
+    decided = tests[tests["verdict"].isin(["network better", "comparator better"])]
+    assert ((decided["ci_high_pct_tbv"] < 0) | (decided["ci_low_pct_tbv"] > 0)).all()
 
 
 def test_a_leaked_split_fails_loudly(tiny_model, tiny_workspace, tmp_path):
@@ -118,6 +135,57 @@ def test_ssim_matches_scikit_image(rng):
     ours = ssim_map(a, b, data_range=4.0)
     inner = (slice(6, -6),) * 3  # border handling may differ
     np.testing.assert_allclose(ours[inner], expected[inner], atol=1e-6)
+
+
+def _errors(values: dict[str, list[float]]) -> pd.DataFrame:
+    """An error table of two regions: method -> |error| per pair (two pairs a participant)."""
+    rows = []
+    for method, numbers in values.items():
+        for region in ("hippocampus_left", "ventricles"):
+            for k, number in enumerate(numbers):
+                rows.append({"participant_id": f"p{k // 2}", "region": region, "method": method,
+                             "abs_error_pct_tbv": number})  # fmt: skip
+    return pd.DataFrame(rows)
+
+
+def test_participant_level_tests_count_each_participant_once():
+    """Hand case: 4 participants x 2 pairs; the network is better for every participant.
+
+    Pair-level Wilcoxon would see 8 pairs; here the sign test sees 4 participants:
+    p = 2 (1/2)^4 = 0.125 (scipy's binomtest), and Holm over the one secondary region
+    equals it (statsmodels' multipletests).
+    """
+    from statsmodels.stats.multitest import multipletests
+
+    errors = _errors({
+        "network": [0.1, 0.3, 0.2, 0.2, 0.1, 0.1, 0.5, 0.3],
+        "network-jacobian": [0.1] * 8,
+        "ridge": [0.4, 0.4, 0.3, 0.5, 0.2, 0.2, 0.6, 0.6],
+    })  # fmt: skip
+    settings = CompareSettings(primary_region="hippocampus_left", level=0.95, bootstrap=2000)
+    tests = paired_tests(errors, ["hippocampus_left", "ventricles"], [], settings, seed=0)
+    row = tests[(tests["network"] == "network") & (tests["region"] == "hippocampus_left")].iloc[0]
+    # participant means: network 0.2, 0.2, 0.1, 0.4; ridge 0.4, 0.4, 0.2, 0.6
+    assert row["difference_pct_tbv"] == pytest.approx(np.mean([-0.2, -0.2, -0.1, -0.2]))
+    assert row["participants"] == 4 and row["participants_better"] == 4
+    assert row["sign_test_p"] == pytest.approx(0.125)
+    assert row["role"] == "primary" and row["holm_p"] == pytest.approx(0.125)
+    # every bootstrap mean of {-0.2, -0.2, -0.1, -0.2} lies in [-0.2, -0.1]: CI below zero
+    assert -0.2 - 1e-12 <= row["ci_low_pct_tbv"] <= row["ci_high_pct_tbv"] <= -0.1 + 1e-12
+    assert row["verdict"] == "network better"
+    secondary = tests[(tests["region"] == "ventricles")]
+    expected = multipletests(secondary["sign_test_p"].to_numpy()[:1], method="holm")[1][0]
+    assert secondary["holm_p"].iloc[0] == pytest.approx(expected)
+    with pytest.raises(DataError, match="primary region 'wm' is not a target region"):
+        paired_tests(errors, ["hippocampus_left", "ventricles"], [],
+                     CompareSettings("wm", 0.95, 2000), seed=0)  # fmt: skip
+
+
+def test_cluster_bootstrap_ci_against_a_hand_case(rng):
+    # two participants: every resample mean is one of 1, 2 or 3 (each pair of draws)
+    low, high = cluster_bootstrap_ci(np.array([1.0, 3.0]), rng, 4000, 0.95)
+    assert (low, high) == (1.0, 3.0)
+    assert np.isnan(cluster_bootstrap_ci(np.array([1.0]), rng, 100, 0.95)[0])
 
 
 def test_cluster_bootstrap_of_a_constant_is_that_constant(rng):

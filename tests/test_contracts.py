@@ -15,6 +15,7 @@ import torch
 from typer.testing import CliRunner
 
 from predictor.cli import app
+from predictor.compare import CompareSettings
 from predictor.config import CONFIG_DIR, CohortSettings
 from predictor.demo import DemoSettings
 from predictor.errors import ConfigError
@@ -55,6 +56,10 @@ BAD_CONFIGS = {
                       r"\[regions.wm\] 'change': must be one of"),
     "regions-type": (RegionSet.from_toml, "[regions.wm]\nprior = 'yes'\n",
                      r"\[regions.wm\] 'prior': must be true or false"),
+    "compare-unknown": (lambda path: CompareSettings.from_toml(path), "primary = 'wm'\n",
+                        r"'primary': unknown key \(did you mean 'primary_region'"),
+    "compare-value": (lambda path: CompareSettings.from_toml(path), "level = 1.5\n",
+                      r"'level' must be within"),
     "demo-unknown": (lambda path: DemoSettings.from_toml(True, path), "[quick]\nepoch = 2\n",
                      r"\[quick\] 'epoch': unknown key \(did you mean 'epochs'"),
     "demo-type": (lambda path: DemoSettings.from_toml(True, path), "[quick]\nseed = 1.5\n",
@@ -93,7 +98,8 @@ def test_shipped_configs_read_and_hold_each_default_once():
     from predictor.training import TrainingSettings
 
     for kind in (LossSettings, NetworkSettings, TrainingSettings, RegistrationSettings,
-                 PrepareSettings, ForecastSettings, DemoSettings, CohortSettings):  # fmt: skip
+                 PrepareSettings, ForecastSettings, DemoSettings, CohortSettings,
+                 CompareSettings):  # fmt: skip
         assert all(item.default is MISSING for item in fields(kind)), kind
     assert TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml").network.channels == (4, 8, 8)
     assert RegionSet.from_toml().prior == (

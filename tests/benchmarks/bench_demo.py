@@ -30,12 +30,12 @@ def full_demo() -> dict:
         log = pd.read_csv(result["folders"]["model"] / "log.tsv", sep="\t")
     ends = [t for _, t in stamps[1:]] + [finished]
     stages = {name: round(end - start, 1) for (name, start), end in zip(stamps, ends, strict=True)}
-    tests = result["tests"]
+    tests = result["comparison"].tests
     rows = {
-        f"{row.region}/{row.network}": {
-            "network": round(row.network_mean_pct_tbv, 4),
-            "best_regression": row.best_regression,
-            "best": round(row.best_regression_mean_pct_tbv, 4),
+        f"{row.region}/{row.network}/{row.comparator}": {
+            "difference": round(row.difference_pct_tbv, 4),
+            "ci": [round(row.ci_low_pct_tbv, 4), round(row.ci_high_pct_tbv, 4)],
+            "verdict": row.verdict,
         }
         for row in tests.itertuples()
     }
