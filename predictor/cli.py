@@ -377,6 +377,13 @@ def compare(
     out: Annotated[Path, typer.Argument(help="Report folder (HTML, TSV, PNG).")],
     jobs: Annotated[int, typer.Option(min=1, help="Participants processed in parallel.")] = 1,
     seed: Annotated[int, typer.Option(help="Seed of the bootstrap and conformal splits.")] = 0,
+    population: Annotated[
+        Path | None,
+        typer.Option(
+            help="A population-field model (trained with image_input = \"template\" on the "
+            "same workspace and seed): the comparator for subject-specific skill."
+        ),
+    ] = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print the verdicts as JSON.")] = False,
 ) -> None:
     """Compare the network with the regression forecasters on held-out participants.
@@ -393,7 +400,7 @@ def compare(
 
     progress, advance = progress_bar("test participants", None)
     with progress:
-        comparison = run_comparison(model, work, jobs, seed, advance)
+        comparison = run_comparison(model, work, jobs, seed, advance, population=population)
     page = write_report(comparison, out)
     if as_json:
         typer.echo(json.dumps(comparison.tests.to_dict("records"), indent=2))
@@ -519,7 +526,9 @@ def demo(
 
 def headline_text(comparison) -> str:
     """The comparison's verdict per region and network variant, as a terminal table."""
-    headlines = comparison.headlines[["region", "network", "role", "verdict"]]
+    headlines = comparison.headlines[
+        ["region", "network", "role", "verdict", "subject_specific_skill"]
+    ]
     return (
         f"Held-out test participants ({comparison.data['participants']['test']}), each counted "
         "once; better or worse only where the 95% CI of the error difference excludes 0:\n"

@@ -44,6 +44,8 @@ from predictor.workspace import Layout, ScanFiles, read_workspace
 #: the network's volumes measured on its forecast scans, and its own Jacobian-integral volumes
 NETWORK, JACOBIAN = "network", "network-jacobian"
 FLOOR = "floor (best possible)"
+#: the same network and training with the template as everyone's image input
+POPULATION = "population-field"
 NETWORKS = (NETWORK, JACOBIAN)
 BOOTSTRAP = 2000
 
@@ -125,12 +127,16 @@ def _grid_arrays(files: ScanFiles):
     return t1, mask, tissue
 
 
-def network_pairs(model_dir: str, work: str, pairs: pd.DataFrame) -> list[dict]:
+def network_pairs(
+    model_dir: str, work: str, pairs: pd.DataFrame, population_dir: str | None = None
+) -> list[dict]:
     """Network forecasts of one participant's pairs (same baseline), measured like real scans.
 
     Returns one dict per pair: measured and Jacobian volumes (mL) and the
     image agreement of the forecast and of no change with the real follow-up;
-    the longest-horizon pair also carries its working-grid images (``example``).
+    with ``population_dir``, the population-field model's Jacobian volumes of
+    the participant's own regions (``population_<region>``); the longest-horizon
+    pair also carries its working-grid images (``example``).
     """
     model = as_model(model_dir)
     first = pairs.iloc[0]
@@ -143,6 +149,11 @@ def network_pairs(model_dir: str, work: str, pairs: pd.DataFrame) -> list[dict]:
         model, scan, first.age, first.sex, first.diagnosis, horizons, prepared=prepared
     )
     jacobian = result.volumes.set_index(["region", "years"])["network_ml"]
+    population = None
+    if population_dir is not None:
+        field = forecast(as_model(population_dir), scan, first.age, first.sex, first.diagnosis,
+                         horizons, prepared=prepared, interpolation="linear")  # fmt: skip
+        population = field.volumes.set_index(["region", "years"])["network_ml"]
     base_t1, base_mask, base_tissue = _grid_arrays(layout.scan(first.base_key))
     rows = []
     for horizon, pair in zip(result.horizons, pairs.itertuples(index=False), strict=True):
@@ -153,6 +164,8 @@ def network_pairs(model_dir: str, work: str, pairs: pd.DataFrame) -> list[dict]:
         for region in model.info.region_set.names:
             row[f"measured_{region}"] = measured.volumes[region]
             row[f"jacobian_{region}"] = float(jacobian.loc[(region, horizon.years)])
+            if population is not None:
+                row[f"population_{region}"] = float(population.loc[(region, horizon.years)])
         network = image_agreement(
             measured.grid_t1, measured.grid_tissue, follow_t1, follow_tissue, mask
         )
@@ -222,6 +235,16 @@ def phantom_floor(work: Path, pairs: pd.DataFrame, names) -> np.ndarray | None:
     return np.array(rows)
 
 
+def _population(folder, model) -> str:
+    """The population-field model folder, checked against the model it is compared with."""
+    population = as_model(folder)
+    if population.info.config["training"]["image_input"] != "template":
+        raise DataError(f"{folder}: not a population-field model (image_input is not template)")
+    if population.info.split != model.info.split:
+        raise DataError(f"{folder}: trained on another participant split than the model")
+    return str(Path(folder).resolve())
+
+
 def _phantom_truth(image: Path) -> Path | None:
     for folder in image.parents:
         candidate = folder / "derivatives" / "phantom-truth"
@@ -237,10 +260,14 @@ def compare(
     seed: int = 0,
     progress=None,
     settings: CompareSettings | None = None,
+    population: str | os.PathLike[str] | None = None,
 ) -> Comparison:
     """Compare the model with every regression forecaster on its test participants.
 
     ``settings`` (primary region, CI level, resamples) default to ``configs/compare.toml``.
+    ``population`` is a population-field model folder (``image_input = "template"``,
+    trained on the same workspace and split): the comparator that shows whether the
+    network's use of the participant's own scan adds anything to age, sex and diagnosis.
     """
     model = as_model(model_dir)
     split = model.info.split
@@ -255,7 +282,11 @@ def compare(
     if pairs.empty:
         raise DataError("the test participants have no follow-up visits to compare")
     groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
-    arguments = [(str(Path(model_dir).resolve()), str(Path(work).resolve()), g) for g in groups]
+    population_dir = _population(population, model) if population is not None else None
+    arguments = [
+        (str(Path(model_dir).resolve()), str(Path(work).resolve()), group, population_dir)
+        for group in groups
+    ]
     measured = [row for rows in run_all(network_pairs, arguments, jobs, progress) for row in rows]
     examples = [row.pop("example") for row in measured if "example" in row][:3]
     measured = pd.DataFrame(measured)
@@ -264,6 +295,8 @@ def compare(
         NETWORK: pairs[[f"measured_{r}" for r in names]].to_numpy(),
         JACOBIAN: pairs[[f"jacobian_{r}" for r in names]].to_numpy(),
     }
+    if population_dir is not None:
+        methods[POPULATION] = pairs[[f"population_{r}" for r in names]].to_numpy()
     methods |= regression_forecasts(
         volumes, split["train"], pairs, names, workspace.cohort, seed, jobs
     )
@@ -478,7 +511,12 @@ def _verdict(row: dict) -> str:
 
 
 def headlines(tests: pd.DataFrame) -> pd.DataFrame:
-    """Per region and network variant: against how many comparators it is better or worse."""
+    """Per region and network variant: against how many comparators it is better or worse.
+
+    ``subject_specific_skill`` is "shown" only where the variant beats the population
+    field (the same network fed the template), "not shown" otherwise, and "not tested"
+    without a population-field model.
+    """
     rows = []
     for (region, variant), group in tests.groupby(["region", "network"], sort=False):
         role = group["role"].iloc[0]
@@ -492,9 +530,13 @@ def headlines(tests: pd.DataFrame) -> pd.DataFrame:
             verdict = "better than every comparator"
         else:
             verdict = f"better than {len(better)} of {len(group)} comparators"
+        skill = "not tested"
+        if POPULATION in set(group["comparator"]) and role != "check":
+            skill = "shown" if POPULATION in better else "not shown"
         rows.append(
             {"region": region, "network": variant, "role": role, "better_than": len(better),
-             "worse_than": len(worse), "comparators": len(group), "verdict": verdict}
+             "worse_than": len(worse), "comparators": len(group), "verdict": verdict,
+             "subject_specific_skill": skill}
         )  # fmt: skip
     return pd.DataFrame(rows)
 

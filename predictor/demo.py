@@ -6,6 +6,8 @@ folder (settings in ``configs/demo.toml``)::
     OUT/cohort/      BIDS phantom cohort with its ground truth and template
     OUT/work/        prepared workspace (volumes.tsv)
     OUT/model/       trained model, training log and loss curves
+    OUT/population/  the same training with the template as every participant's image
+                     (the population field the comparison holds the network against)
     OUT/forecasts/   forecasts of every participant's baseline scan
     OUT/report/      held-out comparison (report.html, TSVs, PNGs)
     OUT/trial/       sample size per arm against enrichment (TSV, JSON, PNG)
@@ -23,7 +25,7 @@ import pandas as pd
 
 from predictor.config import CONFIG_DIR, load_settings
 
-STAGES = ("phantoms", "prepare", "train", "forecast", "compare", "trial-size")
+STAGES = ("phantoms", "prepare", "train", "population", "forecast", "compare", "trial-size")
 
 
 @dataclass(frozen=True)
@@ -94,7 +96,10 @@ def run_demo(
 
     settings = DemoSettings.from_toml(quick)
     out = Path(out)
-    folders = {name: out / name for name in ("cohort", "work", "model", "forecasts", "report")}
+    folders = {
+        name: out / name
+        for name in ("cohort", "work", "model", "population", "forecasts", "report")
+    }
     folders["trial"] = out / "trial"
 
     def stage(name, items):
@@ -123,16 +128,18 @@ def run_demo(
 
     raw = TrainConfig.from_toml(CONFIG_DIR / settings.train_config).to_dict()
     raw["training"]["max_pairs_per_epoch"] = settings.max_pairs_per_epoch
-    epoch_done = stage("train", settings.epochs)
-    train(
-        folders["work"],
-        folders["model"],
-        TrainConfig.from_dict(raw, "demo"),
-        epochs=settings.epochs,
-        seed=settings.seed,
-        force=True,
-        on_epoch=(lambda row: epoch_done()) if epoch_done else None,
-    )
+    for name, image_input in (("train", "scan"), ("population", "template")):
+        raw["training"]["image_input"] = image_input
+        epoch_done = stage(name, settings.epochs)
+        train(
+            folders["work"],
+            folders["model" if image_input == "scan" else "population"],
+            TrainConfig.from_dict(raw, "demo"),
+            epochs=settings.epochs,
+            seed=settings.seed,
+            force=True,
+            on_epoch=(lambda row, done=epoch_done: done()) if epoch_done else None,
+        )
     forecast_cohort(
         folders["model"],
         table,
@@ -143,7 +150,10 @@ def run_demo(
     )
     test = as_model(folders["model"]).info.split["test"]
     progress = stage("compare", len(test))
-    comparison = compare(folders["model"], folders["work"], jobs, progress=progress)
+    comparison = compare(
+        folders["model"], folders["work"], jobs, progress=progress,
+        population=folders["population"],
+    )  # fmt: skip
     page = write_report(comparison, folders["report"])
     trial_done = stage("trial-size", 1)
     trial = trial_report(

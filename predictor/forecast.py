@@ -41,7 +41,7 @@ from predictor.fields import identity_grid, jacobian_determinant, region_volume_
 from predictor.modelstore import TrainedModel, load_model, read_model_json
 from predictor.network import encode_condition
 from predictor.nifti import Scan, load_scan
-from predictor.pairs import grid_entry, network_input, region_weights
+from predictor.pairs import grid_entry, network_input, region_weights, template_entry
 from predictor.prepare import PreparedScan, PrepareSettings, cached_template, prepare_scan
 from predictor.preprocess import single_threaded_itk
 from predictor.regression import Z90
@@ -201,12 +201,16 @@ def network_inputs(model: TrainedModel, prepared: PreparedScan):
     """Network input (1, C, D, H, W) and grid region weights (1, R, D, H, W) of a prepared scan.
 
     Built by the same functions as training's batches; regions are the model's prior regions.
+    A population-field model (``image_input = "template"``) sees the template instead.
     """
     entry = grid_entry(
         prepared.grid_t1, prepared.grid_mask, prepared.grid_tissue, prepared.grid_regions
     )
-    regions = model.info.region_set
-    inputs = network_input(entry, model.network.settings.tissue_channels)
+    info, regions = model.info, model.info.region_set
+    seen = entry
+    if info.config["training"]["image_input"] == "template":
+        seen = template_entry(info.template, regions, info.prepare_settings)
+    inputs = network_input(seen, model.network.settings.tissue_channels)
     return inputs[None], region_weights(entry, regions, regions.prior)[None]
 
 

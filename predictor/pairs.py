@@ -168,6 +168,27 @@ def grid_entry(t1, mask, tissue, deep) -> torch.Tensor:
     return torch.from_numpy(np.ascontiguousarray(np.concatenate(arrays, axis=0)))
 
 
+_TEMPLATE_ENTRIES: dict[tuple, torch.Tensor] = {}
+
+
+def template_entry(template: str, regions: RegionSet, prepare_settings: dict) -> torch.Tensor:
+    """The template as a :func:`grid_entry` on the working grid (kept for the process).
+
+    The image input of a population-field model (``image_input = "template"``).
+    """
+    import json
+
+    from predictor.prepare import PrepareSettings, cached_template, template_on_grid
+
+    key = (template, regions.fingerprint, json.dumps(prepare_settings, sort_keys=True))
+    if key not in _TEMPLATE_ENTRIES:
+        settings = PrepareSettings.from_dict(prepare_settings)
+        arrays = template_on_grid(cached_template(template, regions), settings)
+        _TEMPLATE_ENTRIES.clear()  # one at a time: a process works with one workspace
+        _TEMPLATE_ENTRIES[key] = grid_entry(*arrays)
+    return _TEMPLATE_ENTRIES[key]
+
+
 def network_input(entry: torch.Tensor, tissue_channels: bool, gain: float = 1.0) -> torch.Tensor:
     """The network's input (C, D, H, W) from a :func:`grid_entry`: T1 x gain [, GM, WM, CSF]."""
     t1 = entry[:1] * gain if gain != 1.0 else entry[:1]
@@ -235,13 +256,16 @@ def make_batch(
     rngs: list[np.random.Generator] | None = None,
     gain_sd: float = 0.0,
     flip_probability: float = 0.0,
+    image: torch.Tensor | None = None,
 ) -> Batch:
     """Stack the pairs' arrays; with ``rngs`` (one per pair), draw a flip and an input gain.
 
     A left-right flip mirrors every array along the first (R-L) axis and
     swaps mirror partners (e.g. the hippocampi) in the regions and the prior;
     the gain multiplies only the network's input T1, never the images the
-    loss compares. The regions are ``regions.prior``.
+    loss compares. The regions are ``regions.prior``. ``image`` (a
+    :func:`template_entry`) replaces the baseline as the network's input of
+    every pair (a population field); regions and losses stay the pair's own.
     """
     names = regions.prior
     items = []
@@ -252,14 +276,15 @@ def make_batch(
         if rngs is not None:
             gain = float(np.exp(rngs[k].normal(0.0, gain_sd)))
             flip = bool(rngs[k].random() < flip_probability)
+        seen = base if image is None else image
         if flip:
-            base, follow = base.flip(1), follow.flip(1)
+            base, follow, seen = base.flip(1), follow.flip(1), seen.flip(1)
             order = regions.mirrored(names)
         prior = np.array([getattr(pair, f"{r}_prior") for r in names])[order]
         prior_sd = np.array([getattr(pair, f"{r}_prior_sd") for r in names])[order]
         items.append(
             (
-                network_input(base, tissue_channels, gain),
+                network_input(seen, tissue_channels, gain),
                 base[:1],
                 follow[:1],
                 torch.maximum(base[1:2], follow[1:2]),

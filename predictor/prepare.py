@@ -232,6 +232,31 @@ def prepare_scan(
     )
 
 
+def template_on_grid(template: Template, settings: PrepareSettings):
+    """The template itself as a prepared scan would be on the working grid.
+
+    Returns (T1, brain mask, tissue (D, H, W, 3), deep regions (D, H, W, n)): the
+    image input of a population-field model, which sees the same template for
+    every participant and so learns from age, sex and diagnosis alone.
+    """
+    grid, shape = working_grid(template, settings)
+
+    def onto_grid(array):
+        return resample(array, template.affine, grid, shape, np.eye(4))
+
+    tissue = {name: onto_grid(template.priors[name]) for name in TISSUES}
+    deep = [
+        onto_grid(spec.mask.astype(np.float32) * template.priors[spec.tissue])
+        for spec in template.regions
+    ]
+    return (
+        onto_grid(template.t1),
+        onto_grid(template.brain_mask.astype(np.float32)) > 0.5,
+        np.stack([tissue[name] for name in TISSUES], axis=-1),
+        np.stack(deep, axis=-1),
+    )
+
+
 def _checked_registration(corrected, affine, template, settings, registration) -> Registration:
     """The template -> native registration (computed unless given), checked for plausibility."""
     if registration is None:

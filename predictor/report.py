@@ -229,10 +229,15 @@ def verdicts(headlines: pd.DataFrame, tests: pd.DataFrame) -> str:
             worse = tests[(tests["region"] == region) & (tests["network"] == row["network"])
                           & (tests["verdict"] == "comparator better")]["comparator"]  # fmt: skip
             named = f" (worse than {html.escape(', '.join(worse))})" if len(worse) else ""
+            skill = {
+                "shown": "; subject-specific skill shown (it beats the population field)",
+                "not shown": "; no subject-specific skill shown (it does not beat the "
+                "population field)",
+            }.get(row["subject_specific_skill"], "")
             parts.append(
                 f"{VARIANT_WORDS[row['network']]} is better than {tagged('better_than')} and "
                 f"worse than {tagged('worse_than')} of {tagged('comparators')} comparators"
-                + named
+                + named + skill
             )
         role = " (primary endpoint)" if rows["role"].iloc[0] == "primary" else ""
         items.append(

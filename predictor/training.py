@@ -64,6 +64,7 @@ from predictor.pairs import (
     fit_prior,
     make_batch,
     split_participants,
+    template_entry,
     visit_pairs,
 )
 from predictor.regions import TOTAL_BRAIN, RegionSet
@@ -75,6 +76,10 @@ TERMS = ("similarity", "smoothness", "monotone", "prior")
 #: validation figures that early stopping can follow: the mean volume error of the forecast
 #: against the measured follow-ups (% of brain volume), or the weighted validation loss
 MONITORS = ("val_volume_error", "val_total")
+#: what the network sees: the participant's baseline scan, or the template for everyone (a
+#: population field: conditioning on age, sex and diagnosis only, applied to the participant's
+#: own regions; the comparator that exposes a network without subject-specific skill)
+IMAGE_INPUTS = ("scan", "template")
 
 
 @dataclass(frozen=True)
@@ -93,10 +98,15 @@ class TrainingSettings:
     seed: int
     threads: int
     monitor: str  # early stopping and best weights follow this
+    image_input: str  # "scan": the participant's baseline; "template": a population field
 
     def __post_init__(self):
         if self.monitor not in MONITORS:
             raise ValueError(f"monitor must be one of {list(MONITORS)}; '{self.monitor}' was given")
+        if self.image_input not in IMAGE_INPUTS:
+            raise ValueError(
+                f"image_input must be one of {list(IMAGE_INPUTS)}; '{self.image_input}' was given"
+            )
         if self.epochs < 1 or self.batch_pairs < 1 or self.patience < 1:
             raise ValueError("epochs, batch_pairs and patience must be >= 1")
         if len(self.split) != 3 or abs(sum(self.split) - 1) > 1e-6 or min(self.split) < 0:
@@ -195,7 +205,16 @@ class Run:
             rngs,
             training.gain_sd if rngs else 0.0,
             training.flip_probability if rngs else 0.0,
+            self.image,
         )
+
+    @cached_property
+    def image(self) -> torch.Tensor | None:
+        """The template's grid entry for a population-field run, else None (the scan)."""
+        if self.config.training.image_input != "template":
+            return None
+        workspace = self.workspace
+        return template_entry(workspace.template, workspace.regions, workspace.prepare_settings)
 
     @cached_property
     def store(self) -> ScanStore:

@@ -29,8 +29,21 @@ REGIONS = RegionSet.from_toml().names
 
 
 @pytest.fixture(scope="module")
-def comparison(tiny_model, tiny_workspace, tmp_path_factory):
-    result = compare(tiny_model, tiny_workspace, jobs=2)
+def population_model(tiny_workspace, tmp_path_factory):
+    """The tiny config with the template as every participant's image (2 epochs)."""
+    from predictor.config import CONFIG_DIR
+    from predictor.training import TrainConfig, train
+
+    raw = TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml").to_dict()
+    raw["training"]["image_input"] = "template"
+    folder = tmp_path_factory.mktemp("population") / "model"
+    train(tiny_workspace, folder, TrainConfig.from_dict(raw), epochs=2)
+    return folder
+
+
+@pytest.fixture(scope="module")
+def comparison(tiny_model, population_model, tiny_workspace, tmp_path_factory):
+    result = compare(tiny_model, tiny_workspace, jobs=2, population=population_model)
     out = tmp_path_factory.mktemp("report")
     write_report(result, out)
     return result, out
@@ -110,6 +123,31 @@ def test_page_is_self_contained_and_names_the_winners(comparison):
     assert (tests.loc[tests["role"] == "check", "verdict"] == "check").all()
     decided = tests[tests["verdict"].isin(["network better", "comparator better"])]
     assert ((decided["ci_high_pct_tbv"] < 0) | (decided["ci_low_pct_tbv"] > 0)).all()
+    # the population field is a comparator, and skill is claimed only by beating it
+    assert "population-field" in set(tests["comparator"])
+    heads = result.headlines.set_index(["region", "network"])
+    against = tests[tests["comparator"] == "population-field"].set_index(["region", "network"])
+    for key, row in heads.iterrows():
+        if row["role"] == "check":
+            assert row["subject_specific_skill"] == "not tested"
+        else:
+            shown = against.loc[key, "verdict"] == "network better"
+            assert row["subject_specific_skill"] == ("shown" if shown else "not shown")
+
+
+def test_population_model_must_share_the_split(tiny_model, population_model, tmp_path):
+    moved = tmp_path / "moved"
+    shutil.copytree(population_model, moved)
+    info = json.loads((moved / "model.json").read_text())
+    info["split"]["test"], info["split"]["train"] = info["split"]["train"], info["split"]["test"]
+    (moved / "model.json").write_text(json.dumps(info))
+    from predictor.compare import _population
+    from predictor.forecast import as_model
+
+    with pytest.raises(DataError, match="another participant split"):
+        _population(moved, as_model(tiny_model))
+    with pytest.raises(DataError, match="not a population-field model"):
+        _population(tiny_model, as_model(tiny_model))
 
 
 def test_a_leaked_split_fails_loudly(tiny_model, tiny_workspace, tmp_path):

@@ -182,6 +182,31 @@ def test_training_and_forecast_build_bitwise_equal_inputs(tiny_workspace):
     assert torch.equal(weights, batch.regions)
 
 
+def test_a_population_field_sees_the_template_for_everyone(tiny_workspace):
+    """image_input = "template": the same input for every pair, each pair's own regions."""
+    from predictor.pairs import ScanStore, make_batch, template_entry
+    from predictor.workspace import read_workspace
+
+    workspace = read_workspace(tiny_workspace)
+    image = template_entry(workspace.template, workspace.regions, workspace.prepare_settings)
+    keys = workspace.volumes.groupby("participant_id")["key"].first().iloc[:2].tolist()
+    names = workspace.regions.prior
+    pairs = pd.DataFrame(
+        [{"base_key": key, "follow_key": key, "years": 1.0}
+         | {f"{r}_prior": 1.0 for r in names} | {f"{r}_prior_sd": 1.0 for r in names}
+         for key in keys]
+    )  # fmt: skip
+    store = ScanStore(tiny_workspace)
+    batch = make_batch(pairs, store, torch.zeros(2, 5), True, workspace.regions, image=image)
+    assert torch.equal(batch.inputs[0], batch.inputs[1])
+    assert not torch.equal(batch.regions[0], batch.regions[1])  # the participants' own regions
+    own = make_batch(pairs, store, torch.zeros(2, 5), True, workspace.regions)
+    assert not torch.equal(own.inputs[0], own.inputs[1])
+    # the template on the working grid: T1 with white matter near 1, tissue priors sum to 1
+    inside = image[1] > 0
+    assert image[2:5].sum(0)[inside].mean() == pytest.approx(1.0, abs=0.05)
+
+
 @pytest.mark.slow
 def test_a_region_added_in_a_regions_file_reaches_volumes_prior_and_forecasts(tmp_path):
     """No code change: 'hippocampi' (both hippocampal labels) from a user's regions file."""
