@@ -9,7 +9,7 @@ OUT ?= demo-output
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
-	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet --upgrade pip 'setuptools>=77'
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	touch $(STAMP)
 
