@@ -446,7 +446,7 @@ def paired_tests(errors: pd.DataFrame, names, checks, settings: CompareSettings,
     The primary region is tested without correction; the other target regions
     with Holm's correction within each (variant, comparator) family; ``checks``
     (reference regions, whole brain) are reported, never won. A method is better
-    only when the CI of the difference excludes zero.
+    only when the CI of the difference excludes zero and its sign test is significant.
     """
     from statsmodels.stats.multitest import multipletests
 
@@ -495,17 +495,22 @@ def paired_tests(errors: pd.DataFrame, names, checks, settings: CompareSettings,
                     row["holm_p"] = float(p)
             for row in family:
                 row.setdefault("holm_p", row["sign_test_p"] if row["role"] == "primary" else np.nan)
-                row["verdict"] = _verdict(row)
+                row["verdict"] = _verdict(row, 1 - settings.level)
             rows += family
     return pd.DataFrame(rows)
 
 
-def _verdict(row: dict) -> str:
+def _verdict(row: dict, alpha: float) -> str:
+    """Better or worse only when the bootstrap CI excludes zero *and* the sign test (Holm-
+    adjusted, uncorrected for the primary region) is below ``alpha``: a percentile bootstrap
+    of a handful of participants excludes zero far too easily (with 3 participants all on
+    one side it always does, while the exact sign test cannot go below p = 0.25)."""
     if row["role"] == "check":
         return "check"
-    if row["ci_high_pct_tbv"] < 0:
+    significant = row["holm_p"] < alpha
+    if row["ci_high_pct_tbv"] < 0 and significant:
         return "network better"
-    if row["ci_low_pct_tbv"] > 0:
+    if row["ci_low_pct_tbv"] > 0 and significant:
         return "comparator better"
     return "no difference shown"
 

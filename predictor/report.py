@@ -295,8 +295,10 @@ def render_page(tables: dict[str, pd.DataFrame], data: dict, figures: list[str],
         "<p>Each participant counts once: its errors are averaged over its pairs, the "
         "network's error is compared with each comparator's participant by participant, and "
         "the network is called better (or worse) only when the bootstrap 95% CI of the mean "
-        "difference over participants excludes zero. With few test participants most "
-        "differences stay undecided; that is the honest answer.</p>",
+        "difference over participants excludes zero and the exact sign test over participants "
+        "is below 0.05 (Holm-adjusted except for the primary region). Fewer than six test "
+        "participants can never reach that, so with few test participants every difference "
+        "stays undecided; that is the honest answer.</p>",
         verdicts(tables["headlines"], tests),
         "<h2>Forecast error (% of total brain volume)</h2>",
         floor_note,

@@ -123,6 +123,8 @@ def test_page_is_self_contained_and_names_the_winners(comparison):
     assert (tests.loc[tests["role"] == "check", "verdict"] == "check").all()
     decided = tests[tests["verdict"].isin(["network better", "comparator better"])]
     assert ((decided["ci_high_pct_tbv"] < 0) | (decided["ci_low_pct_tbv"] > 0)).all()
+    if result.data["participants"]["test"] < 6:  # a sign test cannot reach 0.05
+        assert decided.empty
     # the population field is a comparator, and skill is claimed only by beating it
     assert "population-field" in set(tests["comparator"])
     heads = result.headlines.set_index(["region", "network"])
@@ -187,11 +189,12 @@ def _errors(values: dict[str, list[float]]) -> pd.DataFrame:
 
 
 def test_participant_level_tests_count_each_participant_once():
-    """Hand case: 4 participants x 2 pairs; the network is better for every participant.
+    """Hand cases: 2 pairs a participant; the network is better for every participant.
 
-    Pair-level Wilcoxon would see 8 pairs; here the sign test sees 4 participants:
-    p = 2 (1/2)^4 = 0.125 (scipy's binomtest), and Holm over the one secondary region
-    equals it (statsmodels' multipletests).
+    Pair-level Wilcoxon would count pairs; here the sign test counts participants:
+    p = 2 (1/2)^n (scipy's binomtest), 0.125 for n = 4 and 0.03125 for n = 6. With 4
+    participants the bootstrap CI lies below zero but the sign test cannot reach 0.05:
+    no verdict. With 6 it can.
     """
     from statsmodels.stats.multitest import multipletests
 
@@ -210,6 +213,15 @@ def test_participant_level_tests_count_each_participant_once():
     assert row["role"] == "primary" and row["holm_p"] == pytest.approx(0.125)
     # every bootstrap mean of {-0.2, -0.2, -0.1, -0.2} lies in [-0.2, -0.1]: CI below zero
     assert -0.2 - 1e-12 <= row["ci_low_pct_tbv"] <= row["ci_high_pct_tbv"] <= -0.1 + 1e-12
+    assert row["verdict"] == "no difference shown"  # 4 participants can never be enough
+    six = _errors({
+        "network": [0.1, 0.3, 0.2, 0.2, 0.1, 0.1, 0.5, 0.3, 0.2, 0.2, 0.3, 0.1],
+        "network-jacobian": [0.1] * 12,
+        "ridge": [0.4, 0.4, 0.3, 0.5, 0.2, 0.2, 0.6, 0.6, 0.5, 0.3, 0.4, 0.4],
+    })  # fmt: skip
+    tests = paired_tests(six, ["hippocampus_left", "ventricles"], [], settings, seed=0)
+    row = tests[(tests["network"] == "network") & (tests["region"] == "hippocampus_left")].iloc[0]
+    assert row["sign_test_p"] == pytest.approx(0.03125)
     assert row["verdict"] == "network better"
     secondary = tests[(tests["region"] == "ventricles")]
     expected = multipletests(secondary["sign_test_p"].to_numpy()[:1], method="holm")[1][0]
