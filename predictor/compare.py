@@ -305,8 +305,7 @@ def compare(
         methods[FLOOR] = floor
     errors = error_table(pairs, methods, names)
     summary = summarise(errors, seed)
-    regions = workspace.regions
-    checks = [name for name in names if regions.get(name).reference or name == TOTAL_BRAIN]
+    checks = workspace.regions.checks
     tests = paired_tests(errors, names, checks, settings or CompareSettings.from_toml(), seed)
     return Comparison(
         errors=errors,

@@ -138,9 +138,14 @@ class RegionSet:
         return tuple(region.name for region in self.regions if region.prior)
 
     @property
-    def targets(self) -> tuple[str, ...]:
-        """Regions a forecaster is judged on (references such as the ICV are checks only)."""
-        return tuple(region.name for region in self.regions if not region.reference)
+    def checks(self) -> tuple[str, ...]:
+        """Regions reported but never won: references (the ICV) and the whole brain, the
+        denominator of every "% of total brain volume"."""
+        return tuple(
+            region.name
+            for region in self.regions
+            if region.reference or region.name == TOTAL_BRAIN
+        )
 
     @cached_property
     def fingerprint(self) -> str:

@@ -46,10 +46,6 @@ class ScanFiles:
     folder: Path
 
     @property
-    def key(self) -> str:
-        return self.folder.name
-
-    @property
     def lock(self) -> Path:
         return self.folder.parent / f".{self.folder.name}.lock"
 
