@@ -10,7 +10,7 @@ import pytest
 from predictor.phantoms.anatomy import Progression, region_volumes
 from predictor.phantoms.generate import TRUTH, generate_cohort
 from predictor.phantoms.imaging import acquire, scanner_grid
-from predictor.phantoms.participants import assign_groups, draw_participant
+from predictor.phantoms.participants import assign_groups, draw_participant, trajectory
 from predictor.phantoms.scenario import RATE_REGIONS, Scenario
 
 
@@ -64,15 +64,43 @@ def test_group_mean_rates_equal_configured_rates(scenario):
     assert hippocampus["AD"] < hippocampus["MCI"] < hippocampus["CN"] < 0
 
 
+def test_regional_factors_are_correlated_and_visible_at_baseline(scenario):
+    # memory_clinic: each region has its own participant factor, correlated about 0.5
+    # between regions (the scenario's assumption), and each region's stage deviation
+    # shows in that region's own baseline size (Pearson r via scipy.stats).
+    from scipy import stats
+
+    draws = [draw_participant(scenario, k, "MCI", seed=3) for k in range(300)]
+    factors = {
+        region: np.log([d.multipliers[region] for d, _ in draws])
+        for region in ("hippocampus", "ventricles", "cortical_gm")
+    }
+    for a, b in (("hippocampus", "ventricles"), ("hippocampus", "cortical_gm")):
+        r = stats.pearsonr(factors[a], factors[b]).statistic
+        assert 0.35 < r < 0.65, (a, b, r)
+    volumes = [anatomy.baseline_volumes_ml for _, anatomy in draws]
+    icv = np.array([v["icv"] for v in volumes])
+    for region, compartment, sign in (
+        ("hippocampus", "hippocampus_left", -1),
+        ("ventricles", "ventricle_left", 1),
+        ("cortical_gm", "cortical_gm", -1),
+    ):
+        size = np.array([v[compartment] for v in volumes]) / icv
+        deviation = [d.deviations[region] for d, _ in draws]
+        assert sign * stats.pearsonr(deviation, size).statistic > 0.3, region
+
+
 def test_label_geometry_follows_the_rates(scenario):
-    # Count labels on a fine grid at baseline and at 4 years: the measured annual
-    # rate of each region equals the participant's own rate within 5%.
+    # Count labels on a fine grid at baseline and at 4 years: each region's change
+    # equals the participant's own (accelerating) trajectory within 5%.
     draw, anatomy = draw_participant(scenario, 2, "AD", seed=4)
-    progression = Progression.at(anatomy, draw.rates, 4.0)
+    assert draw.acceleration > 0
+    ratios = draw.ratios(4.0)
+    progression = Progression.at(anatomy, ratios)
     half = anatomy.semi_axes + 1
     points = _grid(-half, half, 1.0)
     before = anatomy.labels(points)
-    after = anatomy.labels(progression.pullback(points))
+    after = progression.labels(points)
     for region, labels in [
         ("hippocampus", (4, 5)),
         ("ventricles", (6, 7)),
@@ -80,15 +108,24 @@ def test_label_geometry_follows_the_rates(scenario):
         ("wm", (3,)),
     ]:
         ratio = np.isin(after, labels).sum() / np.isin(before, labels).sum()
-        measured = (ratio - 1) / 4  # annualised change, % of baseline per year
-        assert measured == pytest.approx(draw.rates[region], rel=0.05), region
+        assert ratio - 1 == pytest.approx(ratios[region] - 1, rel=0.05), region
+    # Around each shrinking hippocampus the white matter does not grow: the space
+    # it leaves fills with CSF (counted in the ball the hippocampus occupied).
+    origin, _ = progression.pullback(points)
+    for hippocampus in anatomy.hippocampi:
+        ball_before = np.linalg.norm(hippocampus.local(points), axis=1) <= 1.2
+        ball_after = np.linalg.norm(hippocampus.local(origin), axis=1) <= 1.2
+        assert (after[ball_after] == 3).sum() <= (before[ball_before] == 3).sum()
+        assert (after[ball_after] == 1).sum() > 0 == (before[ball_before] == 1).sum()
 
 
 def test_progression_is_invertible_and_fixes_the_skull(scenario, rng):
     draw, anatomy = draw_participant(scenario, 1, "MCI", seed=2)
-    progression = Progression.at(anatomy, draw.rates, 5.0)
+    progression = Progression.at(anatomy, draw.ratios(5.0))
     points = rng.uniform(-100, 100, size=(20_000, 3))
-    np.testing.assert_allclose(progression.pullback(progression.forward(points)), points, atol=1e-9)
+    origin, vacated = progression.pullback(progression.forward(points))
+    np.testing.assert_allclose(origin, points, atol=1e-9)
+    assert not vacated.any()  # every moved baseline point came from somewhere
     outside = np.linalg.norm(points / anatomy.semi_axes, axis=1) > 1
     np.testing.assert_array_equal(progression.forward(points)[outside], points[outside])
 
@@ -101,10 +138,12 @@ def test_cohort_truth_tables_show_progression(tiny_cohort):
         assert last.ventricles > first.ventricles  # ventricular expansion
         assert last.hippocampus_left < first.hippocampus_left  # hippocampal shrinkage
         assert last.cortical_gm < first.cortical_gm  # cortical thinning
-        annual = (last.hippocampus_right / first.hippocampus_right - 1) / last.years
-        assert 100 * annual == pytest.approx(
-            rates.loc[pid, "hippocampus_percent_per_year"], rel=1e-4
+        expected = trajectory(
+            rates.loc[pid, "hippocampus_percent_per_year"] / 100,
+            rates.loc[pid, "acceleration_per_year"],
+            last.years,
         )
+        assert last.hippocampus_right / first.hippocampus_right == pytest.approx(expected, rel=1e-5)
     assert ((truth.icv > 1100) & (truth.icv < 1900)).all()
     # Plausible adult baseline volumes (the issue's targets): lateral ventricles
     # 20-60 mL rising with age and disease, hippocampus about 3.3 mL per side.
@@ -164,9 +203,9 @@ def test_template_tissue_maps(tiny_cohort, scenario):
     affine, shape = scanner_grid(scenario.size("tiny"))
     assert maps["GM"].shape == shape
     voxel_ml = abs(np.linalg.det(affine[:3, :3])) / 1000
-    from predictor.phantoms.participants import build_anatomy
+    from predictor.phantoms.participants import mean_anatomy
 
-    anatomy, _ = build_anatomy(scenario, "F", 0.0, 75.0, rng=None)
+    anatomy = mean_anatomy(scenario)
     volumes = region_volumes(anatomy.baseline_volumes_ml)
     assert maps["GM"].sum() * voxel_ml == pytest.approx(volumes["total_gm"], rel=0.03)
     assert maps["WM"].sum() * voxel_ml == pytest.approx(volumes["wm"], rel=0.03)
@@ -209,10 +248,11 @@ def test_scenarios_are_named_or_given_by_path(tmp_path):
 def test_negative_control_floor_is_the_diagnosis_and_age_average(name):
     """In no_individual_signal the best forecast from baseline knows diagnosis and age only.
 
-    Expected ratio at t years: 1 + rate[dx] (1 + slope (age - ref) / 10) E[m] t, with
-    E[m] = E[clip(exp(s Z - s^2 / 2), lo, hi)] for standard normal Z, computed here by
-    scipy's quad (an outside reference for the generator's Gauss-Hermite average). In
-    memory_clinic the stage visible at baseline moves the floor away from it.
+    Expected ratio at t years: 1 + rate[dx] (1 + slope (age - ref) / 10) E[m] t (1 + k (t - 2) / 2),
+    with k the group's acceleration and E[m] = E[clip(exp(s Z - s^2 / 2), lo, hi)] for
+    standard normal Z, computed here by scipy's quad (an outside reference for the
+    generator's Gauss-Hermite average). In memory_clinic the stages visible at baseline
+    move the floor away from it.
     """
     from scipy import integrate, stats
 
@@ -229,12 +269,16 @@ def test_negative_control_floor_is_the_diagnosis_and_age_average(name):
     later = best["years"] > 0
     age = first["age"][later]
     slope, reference = progression["age_slope_per_decade"], progression["age_reference_years"]
-    factor = 1 + slope * (age - reference) / 10
+    years = best["years"][later]
+    shape = years * (
+        1 + best["diagnosis"][later].map(progression["acceleration"]) * (years - 2) / 2
+    )
+    factor = (1 + slope * (age - reference) / 10) * shape
     for region, rates in (("hippocampus_left", "hippocampus"), ("ventricles", "ventricles")):
         rate = best["diagnosis"][later].map(scenario.rates[rates])
         ratio = best[region][later] / first[region][later]
         # the participant factor the floor implies, once diagnosis, age and horizon are divided out
-        implied = (ratio - 1) / (rate * factor * best["years"][later])
+        implied = (ratio - 1) / (rate * factor)
         if name == "no_individual_signal":
             assert implied.max() - implied.min() < 1e-9, region  # one value for everyone
             # the generator's 40-node Gauss-Hermite average of a clipped factor

@@ -19,7 +19,7 @@ from predictor.cohort import read_cohort
 from predictor.errors import ConfigError
 from predictor.phantoms.generate import TEMPLATE, TRUTH, generate_cohort
 from predictor.phantoms.imaging import Pose, bias_field, render, scanner_grid, tissue_intensities
-from predictor.phantoms.participants import build_anatomy
+from predictor.phantoms.participants import mean_anatomy
 from predictor.phantoms.scenario import Scenario
 from predictor.prepare import PrepareSettings, parse_shard, prepare_cohort, workspace_volumes
 from predictor.preprocess import head_mask, n4_correct, register_affine
@@ -94,7 +94,7 @@ def test_n4_lowers_white_matter_variation(rng):
     # coefficient of variation inside white matter.
     scenario = Scenario.from_toml()
     size = scenario.size("tiny")
-    anatomy, _ = build_anatomy(scenario, "F", 0.0, 75.0, rng=None)
+    anatomy = mean_anatomy(scenario)
     clean, labels, _ = render(
         anatomy, None, size, Pose.identity(), 2, tissue_intensities(scenario.imaging)
     )

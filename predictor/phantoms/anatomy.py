@@ -40,6 +40,7 @@ LABELS = {
     8: "skull",
     9: "scalp",
 }
+LABEL_CSF = 1
 GM_LABELS = (2, 4, 5)
 WM_LABELS = (3,)
 CSF_LABELS = (1, 6, 7)
@@ -168,8 +169,12 @@ class Anatomy:
         return np.cbrt(q)[:, None] * directions * self.semi_axes
 
     # --- labels -----------------------------------------------------------------
-    def labels(self, points: np.ndarray) -> np.ndarray:
-        """Baseline label (see :data:`LABELS`) at anatomical points (N, 3) mm, uint8 (N,)."""
+    def labels(self, points: np.ndarray, knots: np.ndarray | None = None) -> np.ndarray:
+        """Baseline label (see :data:`LABELS`) at anatomical points (N, 3) mm, uint8 (N,).
+
+        ``knots`` (N, 4), when given, are the layer knots of the points' directions
+        (rows of points outside the skull are ignored); they are computed otherwise.
+        """
         label = np.zeros(len(points), dtype=np.uint8)
         skull = row_norm(points / (self.semi_axes + self.skull_mm)) <= 1
         head = row_norm(points / (self.semi_axes + self.skull_mm + self.scalp_mm))
@@ -177,7 +182,7 @@ class Anatomy:
         label[skull] = 8
         q, directions = self.polar(points)
         inside = np.flatnonzero(q <= 1)
-        knots = self.layer_knots(directions[inside])
+        knots = self.layer_knots(directions[inside]) if knots is None else knots[inside]
         qi = q[inside]
         inner = np.full(len(inside), 1, dtype=np.uint8)
         inner[qi <= knots[:, 2]] = 2
@@ -237,7 +242,16 @@ class Anatomy:
 
 @dataclass(frozen=True, eq=False)
 class Progression:
-    """Slopes of the progression map at one horizon (all volume ratios, follow-up/baseline)."""
+    """Slopes of the progression map at one horizon (all volume ratios, follow-up/baseline).
+
+    The white-matter layer (white matter and the hippocampi in it) scales
+    radially by ``wm_layer``. Inside it, each hippocampus scales in its own
+    volume coordinate by ``hippocampi``: when that local ratio is below 1 the
+    hippocampus shrinks in place and cerebrospinal fluid fills the shell it
+    leaves (the surrounding white matter does not grow); when above 1 (a
+    hippocampus declining more slowly than the white matter around it) it
+    grows into a shell reaching ``reach`` that is compressed to make room.
+    """
 
     anatomy: Anatomy
     ventricles: float
@@ -247,34 +261,32 @@ class Progression:
     ratios: dict[str, float]  # follow-up/baseline volume of each rate region
 
     @classmethod
-    def at(cls, anatomy: Anatomy, annual_rates: dict[str, float], years: float) -> Progression:
-        """Slopes that make every region follow ``1 + rate * years`` exactly.
+    def at(cls, anatomy: Anatomy, ratios: dict[str, float]) -> Progression:
+        """Slopes that give each rate region its follow-up/baseline volume ratio exactly.
 
-        Rates are annualised fractions of the baseline volume (linear change,
-        the usual definition of annual percentage change).
-
-        ``annual_rates`` holds signed fractions per year for 'hippocampus',
-        'ventricles', 'cortical_gm' and 'wm'.
+        ``ratios`` maps 'hippocampus', 'ventricles', 'cortical_gm' and 'wm' to
+        positive volume ratios.
         """
-        ratio = {region: 1.0 + rate * years for region, rate in annual_rates.items()}
-        if min(ratio.values()) <= 0:
-            raise ValueError(f"a region vanishes within {years:g} years")
+        if min(ratios.values()) <= 0:
+            raise ValueError("a region vanishes")
         volumes = anatomy.baseline_volumes_ml
         hippocampus_total = volumes["hippocampus_left"] + volumes["hippocampus_right"]
-        wm_layer = (
-            volumes["wm"] * ratio["wm"] + hippocampus_total * ratio["hippocampus"]
-        ) / volumes["wm_layer"]
+        hippocampus, wm = ratios["hippocampus"], ratios["wm"]
+        # the layer keeps its white matter's ratio unless a hippocampus outgrows it
+        wm_layer = (volumes["wm"] * wm + hippocampus_total * max(hippocampus, wm)) / volumes[
+            "wm_layer"
+        ]
         progression = cls(
             anatomy=anatomy,
-            ventricles=ratio["ventricles"],
+            ventricles=ratios["ventricles"],
             wm_layer=wm_layer,
-            cortical_gm=ratio["cortical_gm"],
-            hippocampi=(ratio["hippocampus"] / wm_layer,) * 2,
-            ratios=ratio,
+            cortical_gm=ratios["cortical_gm"],
+            hippocampi=(hippocampus / wm_layer,) * 2,
+            ratios=dict(ratios),
         )
         moved = progression.moved_knots(anatomy._quadrature_knots)
         if np.any(np.diff(moved, axis=1) <= 0):
-            raise ValueError(f"progression at {years:g} years leaves no room for sulcal CSF")
+            raise ValueError("the progression leaves no room for sulcal CSF")
         return progression
 
     def moved_knots(self, knots: np.ndarray) -> np.ndarray:
@@ -284,7 +296,12 @@ class Progression:
         pial = white + (knots[:, 2] - knots[:, 1]) * self.cortical_gm
         return np.stack([ventricle, white, pial, knots[:, 3]], axis=1)
 
-    def _radial(self, points: np.ndarray, forward: bool) -> np.ndarray:
+    def _radial(self, points: np.ndarray, forward: bool) -> tuple[np.ndarray, np.ndarray]:
+        """Points moved along their rays, and the layer knots of their directions (N, 4).
+
+        The map keeps every direction, so the knots hold for the moved points too
+        (rows outside the skull are zero).
+        """
         anatomy = self.anatomy
         q, directions = anatomy.polar(points)
         out = points.copy()
@@ -297,36 +314,60 @@ class Progression:
             source, target = target, source
         mapped = piecewise_linear(q[inside], source, target)
         out[inside] = anatomy.from_polar(mapped, directions[inside])
-        return out
+        knots = np.zeros((len(points), 4))
+        knots[inside] = base
+        return out, knots
 
-    def _local(self, points: np.ndarray, forward: bool) -> np.ndarray:
+    def _local(self, points: np.ndarray, forward: bool) -> tuple[np.ndarray, np.ndarray]:
+        """Points moved by the hippocampal maps; and which follow-up points were vacated."""
         out = points.copy()
+        vacated = np.zeros(len(points), dtype=bool)
         for hippocampus, ratio in zip(self.anatomy.hippocampi, self.hippocampi, strict=True):
-            candidates = hippocampus.near(out, hippocampus.reach)
+            reach = hippocampus.reach if ratio > 1 else 1.0
+            candidates = hippocampus.near(out, reach)
             local = hippocampus.local(out[candidates])
             radius = row_norm(local)
-            reach_q = hippocampus.reach**3
-            keep = radius < hippocampus.reach
+            keep = radius < reach
             near, local = candidates[keep], local[keep]
             if len(near) == 0:
                 continue
             q = radius[keep] ** 3
-            source = np.tile([0.0, 1.0, reach_q], (len(near), 1))
-            target = np.tile([0.0, ratio, reach_q], (len(near), 1))
-            if not forward:
-                source, target = target, source
-            mapped = piecewise_linear(q, source, target)
+            if ratio > 1:
+                source = np.tile([0.0, 1.0, reach**3], (len(near), 1))
+                target = np.tile([0.0, ratio, reach**3], (len(near), 1))
+                if not forward:
+                    source, target = target, source
+                mapped = piecewise_linear(q, source, target)
+            elif forward:
+                mapped = q * ratio
+            else:
+                vacated[near[q >= ratio]] = True
+                mapped = np.minimum(q / ratio, 1.0)
             scale = np.cbrt(mapped / np.maximum(q, 1e-30))
             out[near] = hippocampus.from_local(local * scale[:, None])
-        return out
+        return out, vacated
 
     def forward(self, points: np.ndarray) -> np.ndarray:
         """Baseline anatomical points (N, 3) mm -> where they are at this horizon."""
-        return self._radial(self._local(points, forward=True), forward=True)
+        return self._radial(self._local(points, forward=True)[0], forward=True)[0]
 
-    def pullback(self, points: np.ndarray) -> np.ndarray:
-        """Follow-up points (N, 3) mm -> the baseline points they came from."""
-        return self._local(self._radial(points, forward=False), forward=False)
+    def pullback(self, points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Follow-up points (N, 3) mm -> the baseline points they came from.
+
+        Also returns which follow-up points lie where a hippocampus has shrunk
+        away (bool, N): those came from no baseline point and hold CSF.
+        """
+        return self._local(self._radial(points, forward=False)[0], forward=False)
+
+    def labels(self, points: np.ndarray) -> np.ndarray:
+        """Follow-up label (see :data:`LABELS`) at anatomical points (N, 3) mm, uint8 (N,)."""
+        along_rays, knots = self._radial(points, forward=False)
+        origin, vacated = self._local(along_rays, forward=False)
+        moved = np.flatnonzero(np.any(origin != along_rays, axis=1))
+        knots[moved] = self.anatomy.layer_knots(self.anatomy.polar(origin[moved])[1])
+        label = self.anatomy.labels(origin, knots)
+        label[vacated] = LABEL_CSF
+        return label
 
     def volumes_ml(self) -> dict[str, float]:
         """True raw compartment volumes (mL) at this horizon, exact by construction."""
@@ -338,7 +379,8 @@ def raw_volumes_at(base: dict[str, float], ratios: dict[str, float]) -> dict[str
 
     ``base`` is :attr:`Anatomy.baseline_volumes_ml`; ``ratios`` maps
     'hippocampus', 'ventricles', 'cortical_gm' and 'wm' to follow-up/baseline.
-    Sulcal CSF fills what the others leave inside the fixed skull.
+    Sulcal CSF (with the CSF where hippocampi shrank) fills what the others
+    leave inside the fixed skull.
     """
     left = base["hippocampus_left"] * ratios["hippocampus"]
     right = base["hippocampus_right"] * ratios["hippocampus"]
@@ -351,7 +393,6 @@ def raw_volumes_at(base: dict[str, float], ratios: dict[str, float]) -> dict[str
         "hippocampus_right": right,
         "ventricle_left": ventricle_left,
         "ventricle_right": ventricle_right,
-        "wm_layer": wm + left + right,
         "wm": wm,
         "cortical_gm": cortical,
         "sulcal_csf": base["icv"] - ventricle_left - ventricle_right - wm - left - right - cortical,

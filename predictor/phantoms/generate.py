@@ -9,7 +9,8 @@ Layout under OUT::
         dataset_description.json, labels.tsv, draws.json
         true_volumes.tsv            every visit's true regional volumes (mL)
         best_forecast_volumes.tsv   the best forecast from baseline (mL), the error floor
-        rates.tsv                   each participant's true annual rates (% per year)
+        rates.tsv                   each participant's true mean annual rates over the first
+                                    two years (% per year), acceleration and regional factors
         sub-001/ses-01/anat/sub-001_ses-01_dseg.nii.gz   label map on the scan's grid
     derivatives/phantom-template/
         template_T1w.nii.gz, template_probseg-{GM,WM,CSF}.nii.gz,
@@ -42,8 +43,8 @@ from predictor.phantoms.imaging import Pose, acquire, render, scanner_grid, tiss
 from predictor.phantoms.participants import (
     assign_groups,
     best_forecast_ml,
-    build_anatomy,
     draw_participant,
+    mean_anatomy,
 )
 from predictor.phantoms.scenario import Scenario
 from predictor.rng import seeded_rng
@@ -59,7 +60,7 @@ def _session(number: int) -> str:
 
 def _visit_truth(scenario: Scenario, draw, anatomy, number: int, years: float):
     """Keys, true volumes and best forecast (mL) of one visit, and its progression map."""
-    progression = Progression.at(anatomy, draw.rates, years)
+    progression = Progression.at(anatomy, draw.ratios(years))
     key = {
         "participant_id": draw.participant_id,
         "session_id": _session(number),
@@ -132,16 +133,17 @@ def _make_participant(
         )
     write_tsv(root / pid / f"{pid}_sessions.tsv", pd.DataFrame(session_rows))
     rates = {f"{region}_percent_per_year": 100 * rate for region, rate in draw.rates.items()}
+    multipliers = {f"{region}_factor": value for region, value in draw.multipliers.items()}
     return {
         "participant": {"participant_id": pid, "sex": draw.sex, "diagnosis": diagnosis},
         "rates": {
             "participant_id": pid,
             "diagnosis": diagnosis,
             "baseline_age": draw.baseline_age,
-            "stage": draw.stage,
-            "multiplier": draw.multiplier,
+            "acceleration_per_year": draw.acceleration,
         }
-        | rates,
+        | rates
+        | multipliers,
         "truth": truth_rows,
         "best": best_rows,
         "draw": draw.record() | {"visits": visits},
@@ -151,9 +153,7 @@ def _make_participant(
 def write_template(scenario: Scenario, size_name: str, out: Path) -> None:
     """The population-mean anatomy (age at the reference, stage 0): T1, tissue maps, labels."""
     size = scenario.size(size_name)
-    anatomy, _ = build_anatomy(
-        scenario, "F", 0.0, scenario.progression["age_reference_years"], rng=None
-    )
+    anatomy = mean_anatomy(scenario)
     affine, _ = scanner_grid(size)
     image, labels, fractions = render(
         anatomy, None, size, Pose.identity(), 3, tissue_intensities(scenario.imaging)

@@ -71,9 +71,9 @@ def bias_field(points_mm: np.ndarray, coefficients: np.ndarray) -> np.ndarray:
 
 def sample(anatomy: Anatomy, progression: Progression | None, points: np.ndarray) -> np.ndarray:
     """Labels at anatomical follow-up points (N, 3) mm; ``progression=None`` is the baseline."""
-    if progression is not None:
-        points = progression.pullback(points)
-    return anatomy.labels(points)
+    if progression is None:
+        return anatomy.labels(points)
+    return progression.labels(points)
 
 
 def render(

@@ -8,7 +8,7 @@ processes build it. The drawn values are written beside the phantoms.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 
 import numpy as np
 from numpy.polynomial.hermite_e import hermegauss
@@ -20,7 +20,7 @@ from predictor.phantoms.anatomy import (
     raw_volumes_at,
     region_volumes,
 )
-from predictor.phantoms.scenario import RATE_REGIONS, Scenario
+from predictor.phantoms.scenario import FACTOR_OF, FACTOR_REGIONS, RATE_REGIONS, Scenario
 from predictor.rng import seeded_rng
 
 #: Gauss-Hermite nodes used to average over the unobservable rate noise
@@ -30,23 +30,39 @@ _WEIGHTS = _WEIGHTS / _WEIGHTS.sum()
 
 @dataclass(frozen=True)
 class Draw:
-    """What was drawn for one participant (ages and times in years)."""
+    """What was drawn for one participant (ages and times in years).
+
+    ``deviations`` and ``hidden`` are keyed by factor region
+    (:data:`FACTOR_REGIONS`); ``multipliers`` and ``rates`` by rate region.
+    """
 
     participant_id: str
     sex: str
     diagnosis: str
     baseline_age: float
-    stage: float  # latent disease stage (units of its SD); visible at baseline
-    stage_deviation: float  # stage minus the group mean
-    hidden: float  # unobservable standard-normal rate noise
+    deviations: dict[str, float]  # regional stage deviation z_g; visible at baseline
+    hidden: dict[str, float]  # unobservable standard-normal rate noise e_g
     age_factor: float
-    multiplier: float
-    rates: dict[str, float]  # signed annual fractions per rate region
+    multipliers: dict[str, float]
+    acceleration: float  # k: fraction per year by which the rates grow
+    rates: dict[str, float]  # signed mean annual fractions over the first two years
     visit_years: tuple[float, ...]  # time since baseline of each visit, first is 0
     head_scale: float
 
     def record(self) -> dict:
         return asdict(self)
+
+    def ratios(self, years: float) -> dict[str, float]:
+        """True follow-up/baseline volume ratio of each rate region after ``years``."""
+        return {
+            region: trajectory(rate, self.acceleration, years)
+            for region, rate in self.rates.items()
+        }
+
+
+def trajectory(rate, acceleration: float, years: float):
+    """Volume ratio 1 + r t (1 + k (t - 2) / 2): mean rate r over two years, accelerating by k."""
+    return 1.0 + rate * years * (1.0 + acceleration * (years - 2.0) / 2.0)
 
 
 def assign_groups(fractions: dict[str, float], count: int, seed: int) -> list[str]:
@@ -61,11 +77,26 @@ def assign_groups(fractions: dict[str, float], count: int, seed: int) -> list[st
 
 
 def rate_multiplier(scenario: Scenario, deviation: float, hidden) -> np.ndarray:
-    """Participant factor on all rates; mean 1 before clipping (see the scenario file)."""
+    """One region's participant factor; mean 1 before clipping (see the scenario file)."""
     gain, noise = scenario.progression["stage_gain"], scenario.progression["hidden_sd"]
     low, high = scenario.progression["multiplier_range"]
     factor = np.exp(gain * deviation + noise * np.asarray(hidden) - (gain**2 + noise**2) / 2)
     return np.clip(factor, low, high)
+
+
+def correlated_normals(rng: np.random.Generator, count: int, correlation: float) -> np.ndarray:
+    """``count`` standard normals with one common pairwise correlation (shared-factor form)."""
+    shared = rng.normal()
+    return np.sqrt(correlation) * shared + np.sqrt(1.0 - correlation) * rng.normal(size=count)
+
+
+def acceleration(scenario: Scenario, diagnosis: str, deviations: dict[str, float]) -> float:
+    """The participant's k: group value plus a share of the mean stage deviation, clipped."""
+    progression = scenario.progression
+    value = progression["acceleration"][diagnosis] + progression["acceleration_per_stage"] * float(
+        np.mean(list(deviations.values()))
+    )
+    return float(np.clip(value, 0.0, progression["acceleration_max"]))
 
 
 def age_factor(scenario: Scenario, age: float) -> float:
@@ -86,11 +117,15 @@ def population_waves(scenario: Scenario) -> tuple[np.ndarray, np.ndarray]:
 def build_anatomy(
     scenario: Scenario,
     sex: str,
-    stage: float,
+    stages: dict[str, float],
     age: float,
     rng: np.random.Generator | None,
 ) -> tuple[Anatomy, float]:
-    """A participant's baseline anatomy and head scale; ``rng=None`` gives the mean shape."""
+    """A participant's baseline anatomy and head scale; ``rng=None`` gives the mean shape.
+
+    ``stages`` maps each factor region to its stage (group mean plus deviation):
+    each shows in that region's own baseline size.
+    """
     spec, progression = scenario.anatomy, scenario.progression
 
     def jitter(sd: float, size=None):
@@ -104,7 +139,7 @@ def build_anatomy(
     stretch = axes / mean_axes
     reference = progression["age_reference_years"]
     ventricle_volume = np.exp(
-        progression["baseline_ventricles_per_stage"] * stage
+        progression["baseline_ventricles_per_stage"] * stages["ventricles"]
         + progression["baseline_ventricles_per_year_of_age"] * (age - reference)
     )
     mirror = np.array([-1.0, 1.0, 1.0])
@@ -121,7 +156,10 @@ def build_anatomy(
     rotation = np.array(
         [[1, 0, 0], [0, np.cos(pitch), np.sin(pitch)], [0, -np.sin(pitch), np.cos(pitch)]]
     )
-    hippocampus_scale = np.cbrt(np.exp(progression["baseline_hippocampus_per_stage"] * stage))
+    hippocampus_scale = np.cbrt(
+        np.exp(progression["baseline_hippocampus_per_stage"] * stages["hippocampus"])
+    )
+    cortex_scale = np.exp(progression["baseline_cortex_per_stage"] * stages["cortical_gm"])
     hippocampi = []
     for label, side in ((4, mirror), (5, np.ones(3))):
         hippocampi.append(
@@ -148,7 +186,7 @@ def build_anatomy(
         pial_radius=float(spec["pial_radius"]),
         sulcal_depth=float(spec["sulcal_depth"]),
         sulcal_width=float(spec["sulcal_width"]),
-        cortex_thickness=float(spec["cortex_thickness"]),
+        cortex_thickness=float(spec["cortex_thickness"]) * cortex_scale,
         wave_directions=directions,
         wave_phases=phases,
         frequency=float(spec["folding_frequency"]),
@@ -158,6 +196,13 @@ def build_anatomy(
     )
     anatomy.check_layout()
     return anatomy, head_scale
+
+
+def mean_anatomy(scenario: Scenario) -> Anatomy:
+    """The population-mean anatomy: a woman at the reference age with every stage 0."""
+    stages = dict.fromkeys(FACTOR_REGIONS, 0.0)
+    age = scenario.progression["age_reference_years"]
+    return build_anatomy(scenario, "F", stages, age, rng=None)[0]
 
 
 def draw_participant(
@@ -170,12 +215,21 @@ def draw_participant(
     sex = "F" if rng.random() < sex_fractions["F"] else "M"
     low, high = cohort["baseline_age_years"]
     age = round(float(rng.uniform(low, high)), 2)
-    deviation, hidden = (float(value) for value in rng.normal(size=2))
-    stage = progression["stage_mean"][diagnosis] + deviation
+    correlation = progression["factor_correlation"]
+    z = correlated_normals(rng, len(FACTOR_REGIONS), correlation)
+    e = correlated_normals(rng, len(FACTOR_REGIONS), correlation)
+    deviations = {region: float(v) for region, v in zip(FACTOR_REGIONS, z, strict=True)}
+    hidden = {region: float(v) for region, v in zip(FACTOR_REGIONS, e, strict=True)}
     factor = age_factor(scenario, age)
-    multiplier = float(rate_multiplier(scenario, deviation, hidden))
+    multipliers = {
+        region: float(
+            rate_multiplier(scenario, deviations[FACTOR_OF[region]], hidden[FACTOR_OF[region]])
+        )
+        for region in RATE_REGIONS
+    }
     rates = {
-        region: scenario.rates[region][diagnosis] * factor * multiplier for region in RATE_REGIONS
+        region: scenario.rates[region][diagnosis] * factor * multipliers[region]
+        for region in RATE_REGIONS
     }
     first, last = cohort["follow_up_years"]
     follow_up = int(rng.integers(first, last + 1))
@@ -183,49 +237,52 @@ def draw_participant(
     years = (0.0,) + tuple(
         round(float(k + rng.uniform(-jitter, jitter)), 2) for k in range(1, follow_up + 1)
     )
-    anatomy, head_scale = build_anatomy(scenario, sex, stage, age, rng)
-    years = _until_dropout(anatomy, rates, years)
+    stages = {
+        region: progression["stage_mean"][diagnosis] + value for region, value in deviations.items()
+    }
+    anatomy, head_scale = build_anatomy(scenario, sex, stages, age, rng)
     draw = Draw(
         participant_id=f"sub-{index + 1:03d}",
         sex=sex,
         diagnosis=diagnosis,
         baseline_age=age,
-        stage=float(stage),
-        stage_deviation=deviation,
+        deviations=deviations,
         hidden=hidden,
         age_factor=factor,
-        multiplier=multiplier,
+        multipliers=multipliers,
+        acceleration=acceleration(scenario, diagnosis, deviations),
         rates=rates,
         visit_years=years,
         head_scale=head_scale,
     )
-    return draw, anatomy
+    return replace(draw, visit_years=_until_dropout(anatomy, draw)), anatomy
 
 
-def _until_dropout(anatomy: Anatomy, rates: dict, years: tuple[float, ...]) -> tuple:
+def _until_dropout(anatomy: Anatomy, draw: Draw) -> tuple[float, ...]:
     """Visits up to the first one the anatomy cannot reach (drop-out of extreme progressors).
 
     A very fast progressor's ventricles can outgrow the sulcal room left in the
     phantom's geometry; such a participant leaves the study before that visit.
     """
-    for count, horizon in enumerate(years):
+    for count, horizon in enumerate(draw.visit_years):
         try:
-            Progression.at(anatomy, rates, horizon)
+            Progression.at(anatomy, draw.ratios(horizon))
         except ValueError:
-            return years[:count]
-    return years
+            return draw.visit_years[:count]
+    return draw.visit_years
 
 
 def best_forecast_ml(scenario: Scenario, draw: Draw, anatomy: Anatomy, years: float) -> dict:
     """Region volumes (mL) expected at ``years`` given all that is visible at baseline.
 
-    Visible: anatomy, age, diagnosis and the latent stage; the hidden rate noise
-    is averaged out (Gauss-Hermite quadrature over its standard normal law).
+    Visible: anatomy, age, diagnosis, the regional stage deviations and hence
+    the acceleration; each region's hidden rate noise is averaged out
+    (Gauss-Hermite quadrature over its standard normal law).
     This is the best forecast any method could make: its error is the floor.
     """
-    multipliers = rate_multiplier(scenario, draw.stage_deviation, _NODES)
     ratios = {}
     for region in RATE_REGIONS:
+        multipliers = rate_multiplier(scenario, draw.deviations[FACTOR_OF[region]], _NODES)
         rate = scenario.rates[region][draw.diagnosis] * draw.age_factor * multipliers
-        ratios[region] = float(_WEIGHTS @ (1.0 + rate * years))
+        ratios[region] = float(_WEIGHTS @ trajectory(rate, draw.acceleration, years))
     return region_volumes(raw_volumes_at(anatomy.baseline_volumes_ml, ratios))

@@ -6,7 +6,7 @@ import os
 from dataclasses import dataclass
 from pathlib import Path
 
-from predictor.config import SCENARIO_DIR, read_toml, require
+from predictor.config import SCENARIO_DIR, merged, read_toml, require
 from predictor.errors import ConfigError
 
 DEFAULT_SCENARIO = SCENARIO_DIR / "memory_clinic.toml"
@@ -30,8 +30,29 @@ def scenario_file(name_or_path: str | os.PathLike[str] | None) -> Path:
             f"({', '.join(shipped_scenarios())}) nor a TOML file"
         )
     return Path(text)
+
+
+def read_scenario(path: Path) -> dict:
+    """A scenario file's table, laid over the shipped scenario it ``extends`` (if any)."""
+    raw = read_toml(path)
+    base = raw.pop("extends", None)
+    if base is None:
+        return raw
+    if base not in shipped_scenarios() or SCENARIO_DIR / f"{base}.toml" == path:
+        raise ConfigError(f"{path}: 'extends' must name another shipped scenario, not '{base}'")
+    return merged(read_scenario(SCENARIO_DIR / f"{base}.toml"), raw)
+
+
 #: regions whose annual rates a scenario sets
 RATE_REGIONS = ("hippocampus", "ventricles", "cortical_gm", "wm")
+#: the region whose participant factor each rate region follows
+FACTOR_OF = {
+    "hippocampus": "hippocampus",
+    "ventricles": "ventricles",
+    "cortical_gm": "cortical_gm",
+    "wm": "cortical_gm",
+}
+FACTOR_REGIONS = ("hippocampus", "ventricles", "cortical_gm")
 
 
 @dataclass(frozen=True)
@@ -44,6 +65,10 @@ class Size:
     @property
     def shape(self) -> tuple[int, int, int]:
         return tuple(int(round(side / self.voxel_mm)) for side in self.field_of_view_mm)
+
+    def scaled(self, factor: float) -> Size:
+        """The same field of view with voxels ``factor`` times larger."""
+        return Size(self.voxel_mm * factor, self.field_of_view_mm)
 
 
 @dataclass(frozen=True)
@@ -59,6 +84,7 @@ class Scenario:
     imaging: dict
     sizes: dict[str, Size]
     source: str
+    scanner_change: dict  # empty, or 'fraction', 'voxel_factor' and 'imaging' overrides
 
     @property
     def diagnoses(self) -> tuple[str, ...]:
@@ -75,7 +101,7 @@ class Scenario:
     def from_toml(cls, path: str | os.PathLike[str] | None = None) -> Scenario:
         """Read and check a scenario: a shipped name, a TOML path, or None (the default)."""
         path = scenario_file(path)
-        raw = read_toml(path)
+        raw = read_scenario(path)
         source = str(path)
         cohort = require(raw, "cohort", source, dict)
         fractions = require(cohort, "diagnosis_fractions", source, dict)
@@ -103,4 +129,28 @@ class Scenario:
             imaging=require(raw, "imaging", source, dict),
             sizes=sizes,
             source=source,
+            scanner_change=_scanner_change(raw, source),
         )
+
+    def imaging_at(self, changed: bool) -> dict:
+        """Imaging settings of the first protocol, or of the second after a change."""
+        if not changed:
+            return self.imaging
+        return self.imaging | self.scanner_change["imaging"]
+
+
+def _scanner_change(raw: dict, source: str) -> dict:
+    """The optional ``[scanner_change]`` table, checked."""
+    change = raw.get("scanner_change", {})
+    if not change:
+        return {}
+    fraction = require(change, "fraction", source, (int, float))
+    if not 0 <= fraction <= 1:
+        raise ConfigError(f"{source} [scanner_change] 'fraction': must lie in [0, 1]")
+    require(change, "voxel_factor", source, (int, float))
+    unknown = set(require(change, "imaging", source, dict)) - set(raw["imaging"])
+    if unknown:
+        raise ConfigError(
+            f"{source} [scanner_change.imaging]: unknown {', '.join(sorted(unknown))}"
+        )
+    return change
