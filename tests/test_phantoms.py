@@ -285,3 +285,34 @@ def test_negative_control_floor_is_the_diagnosis_and_age_average(name):
             assert implied.mean() == pytest.approx(mean_factor, abs=2e-3), region
         else:
             assert implied.max() - implied.min() > 0.05, region  # the visible stage moves it
+
+
+def test_scanner_change_crosses_protocols(tmp_path):
+    # Some participants change protocol mid-study: larger voxels (the NIfTI header's
+    # zooms, read by nibabel), another contrast; the project's BIDS reader accepts the
+    # dataset, and each label map still matches the true volumes (label counts times
+    # voxel volume, as in test_label_maps_agree_with_true_volumes).
+    from predictor.cohort import read_cohort
+
+    scenario = Scenario.from_toml("scanner_change")
+    out = generate_cohort(tmp_path / "bids", participants=4, seed=6, scenario_path="scanner_change")
+    visits = read_cohort(out)
+    assert len(visits["participant_id"].unique()) == 4
+    truth = pd.read_csv(out / TRUTH / "true_volumes.tsv", sep="\t")
+    protocols = {}
+    for row in truth.itertuples():
+        sessions = pd.read_csv(
+            out / row.participant_id / f"{row.participant_id}_sessions.tsv", sep="\t"
+        )
+        protocol = int(sessions.set_index("session_id").loc[row.session_id, "protocol"])
+        protocols[(row.participant_id, row.session_id)] = protocol
+        anat = f"{row.participant_id}/{row.session_id}/anat/{row.participant_id}_{row.session_id}"
+        image = nib.load(out / f"{anat}_T1w.nii.gz")
+        expected = scenario.size("tiny").voxel_mm * (1.25 if protocol == 2 else 1.0)
+        np.testing.assert_allclose(image.header.get_zooms(), [expected] * 3)
+        labels = nib.load(out / TRUTH / f"{anat}_dseg.nii.gz")
+        voxel_ml = expected**3 / 1000
+        counted = (np.asarray(labels.dataobj) == 3).sum() * voxel_ml
+        assert counted == pytest.approx(row.wm, rel=0.05)
+    assert 1 in protocols.values() and 2 in protocols.values()
+    assert all(protocols[(pid, "ses-01")] == 1 for pid, _ in protocols)

@@ -93,25 +93,43 @@ def true_volume_table(
     return pd.DataFrame(truth), pd.DataFrame(best)
 
 
+def protocol_change(scenario: Scenario, index: int, seed: int, visits: int) -> int | None:
+    """Number (1-based) of the participant's first visit on the new protocol, or None."""
+    change = scenario.scanner_change
+    if not change or visits < 2:
+        return None
+    rng = seeded_rng(seed, index, 2)
+    if rng.random() >= change["fraction"]:
+        return None
+    return int(rng.integers(2, visits + 1))
+
+
 def _make_participant(
     scenario_source: str, size_name: str, index: int, diagnosis: str, seed: int, out: str
 ) -> dict:
     """Render and write all visits of one participant; return its table rows."""
     scenario = Scenario.from_toml(scenario_source)
-    size = scenario.size(size_name)
-    imaging = scenario.imaging
     draw, anatomy = draw_participant(scenario, index, diagnosis, seed)
-    affine, _ = scanner_grid(size)
-    intensities = tissue_intensities(imaging)
+    switch = protocol_change(scenario, index, seed, len(draw.visit_years))
     root, pid = Path(out), draw.participant_id
     truth_rows, best_rows, session_rows, visits = [], [], [], []
     for number, years in enumerate(draw.visit_years, start=1):
+        changed = switch is not None and number >= switch
+        size = scenario.size(size_name)
+        size = size.scaled(scenario.scanner_change["voxel_factor"]) if changed else size
+        imaging = scenario.imaging_at(changed)
+        affine, _ = scanner_grid(size)
         session = _session(number)
         rng = seeded_rng(seed, index, 1, number)
         pose = Pose.draw(rng, imaging["rotation_degrees"], imaging["translation_mm"])
         true_row, best_row, progression = _visit_truth(scenario, draw, anatomy, number, years)
         clean, labels, _ = render(
-            anatomy, progression, size, pose, int(imaging["supersample"]), intensities
+            anatomy,
+            progression,
+            size,
+            pose,
+            int(imaging["supersample"]),
+            tissue_intensities(imaging),
         )
         image, acquisition = acquire(clean, size, imaging, rng)
         stem = f"{pid}_{session}"
@@ -121,11 +139,20 @@ def _make_participant(
         )
         truth_rows.append(true_row)
         best_rows.append(best_row)
-        session_rows.append({"session_id": session, "age": true_row["age"], "diagnosis": diagnosis})
+        session_rows.append(
+            {
+                "session_id": session,
+                "age": true_row["age"],
+                "diagnosis": diagnosis,
+                "protocol": 2 if changed else 1,
+            }
+        )
         visits.append(
             {
                 "session_id": session,
                 "years": years,
+                "protocol": 2 if changed else 1,
+                "voxel_mm": size.voxel_mm,
                 "pose_rotation": pose.rotation.tolist(),
                 "pose_translation_mm": pose.translation.tolist(),
             }
@@ -235,6 +262,17 @@ def _write_tables(out: Path, scenario: Scenario, size: str, seed: int, results: 
         {
             "sex": {"Description": "sex", "Levels": {"F": "female", "M": "male"}},
             "diagnosis": {"Description": "diagnosis group (constant over visits)"},
+        },
+    )
+    write_json(
+        out / "sessions.json",
+        {
+            "age": {"Description": "age at the visit", "Units": "year"},
+            "diagnosis": {"Description": "diagnosis group (constant over visits)"},
+            "protocol": {
+                "Description": "scanner protocol of the visit's scan",
+                "Levels": {"1": "first protocol", "2": "protocol after a scanner change"},
+            },
         },
     )
     truth = out / TRUTH
