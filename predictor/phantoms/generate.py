@@ -12,7 +12,7 @@ Layout under OUT::
         rates.tsv                   each participant's true mean annual rates over the first
                                     two years (% per year), acceleration and regional factors
         sub-001/ses-01/anat/sub-001_ses-01_dseg.nii.gz   label map on the scan's grid
-    derivatives/phantom-template/
+    derivatives/phantom-template/   (geometric scenarios; a template scenario uses mni152)
         template_T1w.nii.gz, template_probseg-{GM,WM,CSF}.nii.gz,
         template_dseg.nii.gz, template_mask.nii.gz, labels.tsv
 """
@@ -58,10 +58,8 @@ def _session(number: int) -> str:
     return f"ses-{number:02d}"
 
 
-def _visit_truth(scenario: Scenario, draw, anatomy, number: int, years: float):
-    """Keys, true volumes and best forecast (mL) of one visit, and its progression map."""
-    progression = Progression.at(anatomy, draw.ratios(years))
-    key = {
+def _visit_key(draw, number: int, years: float) -> dict:
+    return {
         "participant_id": draw.participant_id,
         "session_id": _session(number),
         "years": years,
@@ -69,6 +67,12 @@ def _visit_truth(scenario: Scenario, draw, anatomy, number: int, years: float):
         "sex": draw.sex,
         "diagnosis": draw.diagnosis,
     }
+
+
+def _visit_truth(scenario: Scenario, draw, anatomy, number: int, years: float):
+    """Keys, true volumes and best forecast (mL) of one visit, and its progression map."""
+    progression = Progression.at(anatomy, draw.ratios(years))
+    key = _visit_key(draw, number, years)
     truth = key | region_volumes(progression.volumes_ml())
     best = key | best_forecast_ml(scenario, draw, anatomy, years)
     return truth, best, progression
@@ -80,8 +84,11 @@ def true_volume_table(
     """True and best-forecast volume tables (mL) of a cohort, without rendering images.
 
     Equal to ``true_volumes.tsv`` and ``best_forecast_volumes.tsv`` of
-    :func:`generate_cohort` with the same scenario, size-independent, and fast.
+    :func:`generate_cohort` with the same scenario, size-independent, and fast
+    (geometric scenarios only: a template scenario's truth needs its warps).
     """
+    if scenario.kind != "geometric":
+        raise ValueError(f"{scenario.source}: true_volume_table needs a geometric scenario")
     groups = assign_groups(scenario.cohort["diagnosis_fractions"], participants, seed)
     truth, best = [], []
     for index in range(participants):
@@ -111,6 +118,11 @@ def _make_participant(
     scenario = Scenario.from_toml(scenario_source)
     draw, anatomy = draw_participant(scenario, index, diagnosis, seed)
     switch = protocol_change(scenario, index, seed, len(draw.visit_years))
+    subject = None
+    if scenario.kind == "template":
+        from predictor.phantoms.template_anatomy import Subject
+
+        subject = Subject.build(scenario, draw, seeded_rng(seed, index, 3))
     root, pid = Path(out), draw.participant_id
     truth_rows, best_rows, session_rows, visits = [], [], [], []
     for number, years in enumerate(draw.visit_years, start=1):
@@ -122,15 +134,20 @@ def _make_participant(
         session = _session(number)
         rng = seeded_rng(seed, index, 1, number)
         pose = Pose.draw(rng, imaging["rotation_degrees"], imaging["translation_mm"])
-        true_row, best_row, progression = _visit_truth(scenario, draw, anatomy, number, years)
-        clean, labels, _ = render(
-            anatomy,
-            progression,
-            size,
-            pose,
-            int(imaging["supersample"]),
-            tissue_intensities(imaging),
-        )
+        if subject is None:
+            true_row, best_row, progression = _visit_truth(scenario, draw, anatomy, number, years)
+            clean, labels, _ = render(
+                anatomy,
+                progression,
+                size,
+                pose,
+                int(imaging["supersample"]),
+                tissue_intensities(imaging),
+            )
+        else:
+            clean, labels, truth, best = subject.visit(years, size, pose)
+            key = _visit_key(draw, number, years)
+            true_row, best_row = key | truth, key | best
         image, acquisition = acquire(clean, size, imaging, rng)
         stem = f"{pid}_{session}"
         save_array(image, affine, root / pid / session / "anat" / f"{stem}_T1w.nii.gz", np.int16)
@@ -233,7 +250,8 @@ def generate_cohort(
     arguments = [(scenario.source, size, k, groups[k], seed, str(out)) for k in range(count)]
     results = run_all(_make_participant, arguments, jobs, progress)
     _write_tables(out, scenario, size, seed, results)
-    write_template(scenario, size, out)
+    if scenario.kind == "geometric":  # a "template" scenario's template is mni152 itself
+        write_template(scenario, size, out)
     return out
 
 

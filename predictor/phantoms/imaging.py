@@ -53,6 +53,13 @@ def scanner_grid(size: Size) -> tuple[np.ndarray, tuple[int, int, int]]:
     return affine, shape
 
 
+def scanner_points(size: Size) -> np.ndarray:
+    """Scanner coordinates (N, 3) mm of every voxel centre of the grid, C order."""
+    affine, shape = scanner_grid(size)
+    index = np.indices(shape).reshape(3, -1).T.astype(float)
+    return index @ affine[:3, :3].T + affine[:3, 3]
+
+
 def tissue_intensities(imaging: dict) -> np.ndarray:
     """Relative T1 intensity of each label value (see anatomy.LABELS), shape (10,)."""
     csf, gm, wm = imaging["csf"], imaging["gm"], imaging["wm"]
@@ -95,9 +102,8 @@ def render(
     labels : uint8 (X, Y, Z), label at each voxel centre
     fractions : float32 (X, Y, Z, L), share of each label value among the samples
     """
-    affine, shape = scanner_grid(size)
-    index = np.indices(shape).reshape(3, -1).T.astype(float)
-    centres = index @ affine[:3, :3].T + affine[:3, 3]
+    shape = size.shape
+    centres = scanner_points(size)
     labels = np.empty(len(centres), dtype=np.uint8)
     for start in range(0, len(centres), CHUNK_POINTS):
         block = centres[start : start + CHUNK_POINTS]
@@ -139,11 +145,10 @@ def acquire(
     (Gudbjartsson and Patz 1995, Magnetic Resonance in Medicine).
     Returns the image and the drawn parameters.
     """
-    affine, shape = scanner_grid(size)
+    shape = size.shape
     gain = float(rng.normal(1.0, imaging["gain_sd"]))
     coefficients = rng.normal(0.0, imaging["bias_sd"], BIAS_TERMS)
-    index = np.indices(shape).reshape(3, -1).T.astype(float)
-    field = bias_field(index @ affine[:3, :3].T + affine[:3, 3], coefficients).reshape(shape)
+    field = bias_field(scanner_points(size), coefficients).reshape(shape)
     signal = clean * field * gain * imaging["scale"]
     sigma = imaging["noise_fraction"] * imaging["scale"]
     real = signal + rng.normal(0.0, sigma, shape)

@@ -84,6 +84,11 @@ def rate_multiplier(scenario: Scenario, deviation: float, hidden) -> np.ndarray:
     return np.clip(factor, low, high)
 
 
+def expected_multiplier(scenario: Scenario, deviation: float) -> float:
+    """A region's participant factor averaged over its hidden noise (Gauss-Hermite)."""
+    return float(_WEIGHTS @ rate_multiplier(scenario, deviation, _NODES))
+
+
 def correlated_normals(rng: np.random.Generator, count: int, correlation: float) -> np.ndarray:
     """``count`` standard normals with one common pairwise correlation (shared-factor form)."""
     shared = rng.normal()

@@ -85,6 +85,8 @@ class Scenario:
     sizes: dict[str, Size]
     source: str
     scanner_change: dict  # empty, or 'fraction', 'voxel_factor' and 'imaging' overrides
+    kind: str  # "geometric" (layered shapes) or "template" (the MNI152 template deformed)
+    template_anatomy: dict  # settings of the "template" kind (empty otherwise)
 
     @property
     def diagnoses(self) -> tuple[str, ...]:
@@ -130,6 +132,8 @@ class Scenario:
             sizes=sizes,
             source=source,
             scanner_change=_scanner_change(raw, source),
+            kind=_kind(raw, source),
+            template_anatomy=raw.get("template_anatomy", {}),
         )
 
     def imaging_at(self, changed: bool) -> dict:
@@ -137,6 +141,22 @@ class Scenario:
         if not changed:
             return self.imaging
         return self.imaging | self.scanner_change["imaging"]
+
+
+KINDS = ("geometric", "template")
+TEMPLATE_KEYS = ("subject_warp_mm", "subject_warp_smoothness_mm", "baseline_exposure_years")
+
+
+def _kind(raw: dict, source: str) -> str:
+    """The anatomy kind; a "template" scenario needs its ``[template_anatomy]`` keys."""
+    kind = raw.get("kind", "geometric")
+    if kind not in KINDS:
+        raise ConfigError(f"{source}: 'kind' must be one of {', '.join(KINDS)}, got {kind!r}")
+    if kind == "template":
+        table = require(raw, "template_anatomy", source, dict)
+        for key in TEMPLATE_KEYS:
+            require(table, key, source, (int, float, dict))
+    return kind
 
 
 def _scanner_change(raw: dict, source: str) -> dict:
