@@ -44,3 +44,10 @@ def run_all(
         if progress:
             progress()
     return results
+
+
+def single_threaded_torch() -> None:
+    """One PyTorch thread in this process (for workers that share the cores)."""
+    import torch
+
+    torch.set_num_threads(1)

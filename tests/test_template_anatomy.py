@@ -80,7 +80,7 @@ def test_truth_follows_the_jacobian_and_the_rates(scenario):
         subject.volumes_ml(subject.pullback(2.0)),
     )
     baseline_maps = sample_at(base.maps, identity_grid(base.shape) + subject.before_baseline)[0]
-    forward = exp_velocity(subject.velocity, progression_time(draw, 2.0), 5)[0].numpy()
+    forward = exp_velocity(subject.velocity, progression_time(draw, 2.0), 4)[0].numpy()
     jacobian = _forward_jacobian(forward)
     for name, region, rate in (
         ("hippocampus_left", "hippocampus_left", "hippocampus"),

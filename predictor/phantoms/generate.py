@@ -30,7 +30,7 @@ from predictor import __version__
 from predictor.errors import OutputError
 from predictor.files import write_json, write_tsv
 from predictor.nifti import save_array
-from predictor.parallel import run_all
+from predictor.parallel import run_all, single_threaded_torch
 from predictor.phantoms.anatomy import (
     CSF_LABELS,
     GM_LABELS,
@@ -248,7 +248,7 @@ def generate_cohort(
         raise ValueError(f"participants must be at least 1, got {count}")
     groups = assign_groups(scenario.cohort["diagnosis_fractions"], count, seed)
     arguments = [(scenario.source, size, k, groups[k], seed, str(out)) for k in range(count)]
-    results = run_all(_make_participant, arguments, jobs, progress)
+    results = run_all(_make_participant, arguments, jobs, progress, single_threaded_torch)
     _write_tables(out, scenario, size, seed, results)
     if scenario.kind == "geometric":  # a "template" scenario's template is mni152 itself
         write_template(scenario, size, out)
