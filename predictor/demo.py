@@ -3,7 +3,7 @@
 phantoms -> prepare -> train -> forecast -> compare -> trial-size, into one
 folder (settings in ``configs/demo.toml``)::
 
-    OUT/cohort/      BIDS phantom cohort with its ground truth and template
+    OUT/cohort/      BIDS phantom cohort (scenario in the settings) with its ground truth
     OUT/work/        prepared workspace (volumes.tsv)
     OUT/model/       trained model, training log and loss curves
     OUT/population/  the same training with the template as every participant's image
@@ -33,6 +33,8 @@ class DemoSettings:
     """One demo size (a table of ``configs/demo.toml``)."""
 
     participants: int
+    scenario: str
+    template: str
     size: str
     grid_mm: float
     train_config: str
@@ -67,6 +69,41 @@ def prepare_accuracy(work: Path, cohort: Path) -> pd.DataFrame:
                 "region": region,
                 "mean_error_pct": error.mean(),
                 "max_abs_error_pct": error.abs().max(),
+            }
+        )
+    return pd.DataFrame(rows)
+
+
+def change_agreement(work: Path, cohort: Path) -> pd.DataFrame:
+    """Measured against true % change from each participant's first visit, per region.
+
+    Least-squares slope of measured on true change (1 is unbiased) and Pearson r,
+    over every later visit of every participant.
+    """
+    import numpy as np
+
+    from predictor.phantoms.generate import TRUTH
+    from predictor.workspace import read_workspace
+
+    workspace = read_workspace(work)
+    truth = pd.read_csv(cohort / TRUTH / "true_volumes.tsv", sep="\t")
+    both = workspace.volumes.merge(
+        truth, on=["participant_id", "session_id"], suffixes=("", "_true")
+    ).sort_values(["participant_id", "age"])
+    first = both.groupby("participant_id").transform("first")
+    later = both["years"] > 0
+    rows = []
+    for region in workspace.regions.names:
+        measured = 100 * (both[region] / first[region] - 1)[later]
+        true = 100 * (both[f"{region}_true"] / first[f"{region}_true"] - 1)[later]
+        rows.append(
+            {
+                "region": region,
+                "pairs": int(later.sum()),
+                "slope": float(np.polyfit(true, measured, 1)[0]) if later.sum() > 1 else np.nan,
+                "pearson_r": float(np.corrcoef(true, measured)[0, 1])
+                if later.sum() > 1
+                else np.nan,
             }
         )
     return pd.DataFrame(rows)
@@ -110,15 +147,17 @@ def run_demo(
         settings.participants,
         settings.size,
         settings.seed,
+        scenario_path=settings.scenario,
         jobs=jobs,
         force=True,
         progress=stage("phantoms", settings.participants),
     )
     table = read_cohort(folders["cohort"])
+    template = folders["cohort"] / TEMPLATE if settings.template == "phantom" else settings.template
     prepare_cohort(
         table,
         folders["work"],
-        folders["cohort"] / TEMPLATE,
+        template,
         PrepareSettings.from_toml(grid_mm=settings.grid_mm),
         jobs,
         progress=stage("prepare", len(table)),

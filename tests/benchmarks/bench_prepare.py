@@ -43,4 +43,35 @@ def mni152_1mm_scan() -> dict:
         return _prepare_once(image, "mni152")
 
 
-BENCHMARKS = {"demo_phantom_scan": demo_phantom_scan, "mni152_1mm_scan": mni152_1mm_scan}
+def template_anatomy_accuracy() -> dict:
+    """Five template_anatomy participants (2 mm) prepared against mni152: volume and change
+    errors against the phantom truth (the accuracy the full demo's cohort gets)."""
+    from predictor.cohort import read_cohort
+    from predictor.demo import change_agreement, prepare_accuracy
+    from predictor.phantoms.generate import generate_cohort
+    from predictor.prepare import PrepareSettings, prepare_cohort
+
+    with tempfile.TemporaryDirectory() as folder:
+        cohort = generate_cohort(
+            Path(folder) / "bids", 5, "demo", seed=0, scenario_path="template_anatomy", jobs=2
+        )
+        work = Path(folder) / "work"
+        started = time.perf_counter()
+        prepare_cohort(read_cohort(cohort), work, "mni152", PrepareSettings.from_toml(), 2)
+        seconds = time.perf_counter() - started
+        accuracy = prepare_accuracy(work, cohort).set_index("region")
+        agreement = change_agreement(work, cohort).set_index("region")
+    figures = {"prepare_s": round(seconds, 1)}
+    for region in ("brain", "ventricles", "hippocampus_left", "hippocampus_right", "wm"):
+        figures[f"{region}_mean_error_pct"] = round(accuracy.loc[region, "mean_error_pct"], 1)
+        figures[f"{region}_max_abs_error_pct"] = round(accuracy.loc[region, "max_abs_error_pct"], 1)
+        figures[f"{region}_change_slope"] = round(agreement.loc[region, "slope"], 2)
+        figures[f"{region}_change_r"] = round(agreement.loc[region, "pearson_r"], 2)
+    return figures
+
+
+BENCHMARKS = {
+    "demo_phantom_scan": demo_phantom_scan,
+    "mni152_1mm_scan": mni152_1mm_scan,
+    "template_anatomy_accuracy": template_anatomy_accuracy,
+}
