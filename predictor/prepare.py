@@ -98,6 +98,27 @@ class ChecksSettings:
 
 
 @dataclass(frozen=True)
+class LongitudinalSettings:
+    """Change between visits by registration (``[longitudinal]``; predictor.longitudinal)."""
+
+    enabled: bool
+    rigid_shrink_factors: tuple[int, ...]
+    rigid_smoothing_mm: tuple[float, ...]
+    rigid_iterations: int
+    demons_shrink_factors: tuple[int, ...]
+    demons_iterations: tuple[int, ...]
+    demons_field_sd_voxels: float
+    histogram_levels: int
+    boundary_width_voxels: int
+
+    def __post_init__(self):
+        if len(self.rigid_shrink_factors) != len(self.rigid_smoothing_mm):
+            raise ValueError("'rigid_shrink_factors' and 'rigid_smoothing_mm' need equal lengths")
+        if len(self.demons_shrink_factors) != len(self.demons_iterations):
+            raise ValueError("'demons_shrink_factors' and 'demons_iterations' need equal lengths")
+
+
+@dataclass(frozen=True)
 class PrepareSettings:
     """All settings of the prepare stage (``configs/prepare.toml``)."""
 
@@ -108,6 +129,7 @@ class PrepareSettings:
     mask: MaskSettings
     segmentation: SegmentationSettings
     checks: ChecksSettings
+    longitudinal: LongitudinalSettings
 
     def __post_init__(self):
         if not 1.0 <= self.grid_mm <= 8.0:
@@ -126,7 +148,9 @@ class PrepareSettings:
         return load_settings(cls, "prepare.toml", overrides=stored)
 
     def fingerprint(self) -> str:
-        return json.dumps(asdict(self), sort_keys=True)
+        """The settings that shape one scan's entry (the longitudinal stage has its own)."""
+        per_scan = {k: v for k, v in asdict(self).items() if k != "longitudinal"}
+        return json.dumps(per_scan, sort_keys=True)
 
 
 @dataclass(frozen=True, eq=False)
@@ -142,6 +166,7 @@ class PreparedScan:
     native_tissue: dict[str, np.ndarray]  # GM, WM, CSF probabilities, the scan's RAS grid
     native_deep: dict[str, np.ndarray]  # each deep region's tissue fraction, same grid
     native_labels: np.ndarray  # uint8, the scan's RAS grid
+    native_t1: np.ndarray  # bias-corrected, white matter 1, the scan's RAS grid
     native_affine: np.ndarray
     diagnostics: dict
 
@@ -220,6 +245,7 @@ def prepare_scan(
         native_tissue=tissue,
         native_deep=deep,
         native_labels=labels,
+        native_t1=np.where(brain, normalised, 0.0).astype(np.float32),
         native_affine=affine,
         diagnostics={
             "registration_metric": registration.metric,
@@ -305,7 +331,7 @@ def _deep_regions(template, tissue, normalised, brain, mixture, to_native, scan)
 
 # --- workspace: cache, parallel scans, shards -------------------------------------------------
 #: bumped whenever a cache entry gains or changes a file, so older entries are redone
-CACHE_FORMAT = 3
+CACHE_FORMAT = 4
 _TEMPLATES: dict[tuple[str, str], Template] = {}
 
 
@@ -392,6 +418,10 @@ def _prepare_entry(row: dict, files: ScanFiles, template: Template, settings) ->
     save_array(prepared.grid_tissue, grid, files.tissue)
     save_array(prepared.grid_regions, grid, files.regions)
     save_array(prepared.native_labels, prepared.native_affine, files.labels, np.uint8)
+    save_array(prepared.native_t1, prepared.native_affine, files.native_t1)
+    maps = [prepared.native_tissue[name] for name in TISSUES]
+    maps += [prepared.native_deep[name] for name in template.region_set.deep]
+    save_array(np.stack(maps, axis=-1), prepared.native_affine, files.native_maps)
     result = {
         "volumes_ml": prepared.volumes,
         "template_to_native": prepared.template_to_native.tolist(),
@@ -413,13 +443,16 @@ def prepare_cohort(
     progress=None,
     regions: RegionSet | None = None,
     coding: CohortSettings | None = None,
+    progress_pairs=None,
 ) -> dict:
     """Prepare every scan of a validated cohort (or one shard of it) into ``work``.
 
     ``regions`` and ``coding`` (the cohort settings the table was read with)
     default to the shipped ``configs/``; both are recorded in the workspace.
-    Returns counts: prepared, cached, failed; writes ``volumes.tsv`` and
-    ``failures.tsv`` from all complete entries of the cohort.
+    Returns counts: prepared, cached, failed (and, with the longitudinal stage
+    on and no shard, pairs and pairs_failed); writes ``volumes.tsv``,
+    ``changes.tsv`` and ``failures.tsv`` from all complete entries.
+    ``progress_pairs()`` is called after each visit pair.
     """
     settings = settings or PrepareSettings.from_toml()
     regions = regions or RegionSet.from_toml()
@@ -463,11 +496,19 @@ def prepare_cohort(
         for i, r in sorted(results.items())
         if "failed" in r
     ]
+    write_tsv(layout.volumes, volume_table(layout, regions))
+    if settings.longitudinal.enabled and parts == 1:
+        from predictor.longitudinal import measure_changes
+
+        changes, pair_failures = measure_changes(
+            layout.root, regions, settings.longitudinal, jobs, progress_pairs
+        )
+        failures += pair_failures
+        summary |= {"pairs": len(changes), "pairs_failed": len(pair_failures)}
     write_tsv(
         layout.failures,
         pd.DataFrame(failures, columns=["participant_id", "session_id", "image", "reason"]),
     )
-    write_tsv(layout.volumes, volume_table(layout, regions))
     return summary
 
 

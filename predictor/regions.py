@@ -33,7 +33,7 @@ TISSUES = ("GM", "WM", "CSF")
 CHANGES = {"shrinks": -1, "grows": 1, "none": 0}
 #: the region every "% of total brain volume" divides by
 TOTAL_BRAIN = "brain"
-_KEYS = ("description", "tissue", "sum", "change", "mirror", "reference", "prior")
+_KEYS = ("description", "tissue", "sum", "change", "mirror", "reference", "prior", "boundary")
 
 
 @dataclass(frozen=True)
@@ -48,6 +48,7 @@ class Region:
     tissue: str | None = None  # deep region: this tissue inside a template mask
     weights: dict[str, float] = field(default_factory=dict)  # sum region: base -> weight
     mirror: str | None = None  # left-right partner
+    boundary: tuple[str, str] | None = None  # (outside, inside) tissues of its edge (BSI window)
 
     @property
     def direction(self) -> int:
@@ -142,9 +143,7 @@ class RegionSet:
         """Regions reported but never won: references (the ICV) and the whole brain, the
         denominator of every "% of total brain volume"."""
         return tuple(
-            region.name
-            for region in self.regions
-            if region.reference or region.name == TOTAL_BRAIN
+            region.name for region in self.regions if region.reference or region.name == TOTAL_BRAIN
         )
 
     @cached_property
@@ -228,6 +227,15 @@ def _region(name: str, spec, source: str) -> Region:
     for key in ("reference", "prior"):
         if not isinstance(spec[key], bool):
             raise ConfigError(f"{where} '{key}': must be true or false, got {spec[key]!r}")
+    boundary = spec.get("boundary")
+    if boundary is not None:
+        if not isinstance(boundary, dict) or set(boundary) != {"outside", "inside"}:
+            raise ConfigError(
+                f"{where} 'boundary': must be {{ outside = TISSUE, inside = TISSUE }}"
+            )
+        if any(value not in TISSUES for value in boundary.values()):
+            raise ConfigError(f"{where} 'boundary': tissues must be {', '.join(TISSUES)}")
+        boundary = (boundary["outside"], boundary["inside"])
     weights = spec.get("sum", {})
     if not isinstance(weights, dict) or any(
         isinstance(w, bool) or not isinstance(w, int | float) for w in weights.values()
@@ -242,4 +250,5 @@ def _region(name: str, spec, source: str) -> Region:
         tissue=spec.get("tissue"),
         weights={base: float(w) for base, w in weights.items()},
         mirror=spec.get("mirror"),
+        boundary=boundary,
     )

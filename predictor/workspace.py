@@ -12,9 +12,16 @@ Layout::
         grid_regions.nii.gz  each deep region's tissue fraction inside the region, in
                              the regions file's order, on the working grid (4D)
         native_dseg.nii.gz   most likely tissue in the scan's own space (1 GM, 2 WM, 3 CSF)
+        native_T1w.nii.gz    bias-corrected, normalised T1 in the scan's own space
+        native_probseg.nii.gz  GM, WM, CSF probabilities, then each deep region's
+                             tissue fraction, in the scan's own space (4D)
         result.json          volumes, native<->template transforms, fit diagnostics
+    pairs/<key>.json     change between two visits of a participant measured by
+                         registration (predictor.longitudinal); one file per pair
     volumes.tsv          one row per scan: regions in mL and % of total brain volume
-    failures.tsv         scans that failed, with the reason
+    changes.tsv          per participant and pair of visits: each region's change
+                         by registration and by segmentation
+    failures.tsv         scans (and visit pairs) that failed, with the reason
 
 No other module spells these names: it asks a :class:`Layout` or a
 :class:`ScanFiles` for the path.
@@ -54,6 +61,8 @@ class ScanFiles:
     tissue = property(lambda self: self.folder / "grid_probseg.nii.gz")
     regions = property(lambda self: self.folder / "grid_regions.nii.gz")
     labels = property(lambda self: self.folder / "native_dseg.nii.gz")
+    native_t1 = property(lambda self: self.folder / "native_T1w.nii.gz")
+    native_maps = property(lambda self: self.folder / "native_probseg.nii.gz")
     result = property(lambda self: self.folder / "result.json")
 
     def read_result(self) -> dict:
@@ -73,6 +82,10 @@ class Layout:
     cohort = property(lambda self: self.root / "cohort.tsv")
     volumes = property(lambda self: self.root / "volumes.tsv")
     failures = property(lambda self: self.root / "failures.tsv")
+    changes = property(lambda self: self.root / "changes.tsv")
+
+    def pair(self, key: str) -> Path:
+        return self.root / "pairs" / f"{key}.json"
 
     def scan(self, key: str) -> ScanFiles:
         return ScanFiles(self.root / "scans" / key)
