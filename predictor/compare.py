@@ -33,6 +33,7 @@ from scipy import ndimage, stats
 from predictor.config import load_settings
 from predictor.errors import DataError
 from predictor.forecast import as_model, forecast, prepare_for
+from predictor.longitudinal import observed_by_registration
 from predictor.nifti import load_scan
 from predictor.pairs import SETS, visit_pairs
 from predictor.parallel import run_all
@@ -269,6 +270,7 @@ def compare(
     trained on the same workspace and split): the comparator that shows whether the
     network's use of the participant's own scan adds anything to age, sex and diagnosis.
     """
+    settings = settings or CompareSettings.from_toml()
     model = as_model(model_dir)
     split = model.info.split
     check_split(split)
@@ -281,6 +283,8 @@ def compare(
     pairs = baseline_pairs(volumes, split["test"], workspace.regions)
     if pairs.empty:
         raise DataError("the test participants have no follow-up visits to compare")
+    if settings.observed_change == "registration":
+        pairs = observed_by_registration(pairs, volumes, workspace.layout, names)
     groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
     population_dir = _population(population, model) if population is not None else None
     arguments = [
@@ -306,7 +310,7 @@ def compare(
     errors = error_table(pairs, methods, names)
     summary = summarise(errors, seed)
     checks = workspace.regions.checks
-    tests = paired_tests(errors, names, checks, settings or CompareSettings.from_toml(), seed)
+    tests = paired_tests(errors, names, checks, settings, seed)
     return Comparison(
         errors=errors,
         summary=summary,
@@ -322,6 +326,7 @@ def compare(
             "scans": len(volumes),
             "horizon_years": [float(pairs["years"].min()), float(pairs["years"].max())],
             "phantom_floor": floor is not None,
+            "observed_change": settings.observed_change,
             "model": Path(model_dir).name,
         },
         examples=examples,
@@ -404,8 +409,14 @@ class CompareSettings:
     primary_region: str
     level: float
     bootstrap: int
+    observed_change: str  # "registration" (changes.tsv) or "segmentation" (volumes.tsv)
 
     def __post_init__(self):
+        if self.observed_change not in ("registration", "segmentation"):
+            raise ValueError(
+                f"'observed_change' must be 'registration' or 'segmentation', "
+                f"got {self.observed_change!r}"
+            )
         if not 0.5 < self.level < 1.0:
             raise ValueError(f"'level' must be within (0.5, 1), got {self.level}")
         if self.bootstrap < 100:

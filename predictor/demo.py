@@ -12,6 +12,7 @@ folder (settings in ``configs/demo.toml``)::
     OUT/report/      held-out comparison (report.html, TSVs, PNGs)
     OUT/trial/       sample size per arm against enrichment (TSV, JSON, PNG)
     OUT/prepare_accuracy.tsv   measured against true volumes (% error)
+    OUT/change_accuracy.tsv    measured against true change, by registration and segmentation
 """
 
 from __future__ import annotations
@@ -75,37 +76,40 @@ def prepare_accuracy(work: Path, cohort: Path) -> pd.DataFrame:
 
 
 def change_agreement(work: Path, cohort: Path) -> pd.DataFrame:
-    """Measured against true % change from each participant's first visit, per region.
+    """Measured against true % change from baseline, per region and measurement.
 
-    Least-squares slope of measured on true change (1 is unbiased) and Pearson r,
-    over every later visit of every participant.
+    From ``changes.tsv``: the change by registration and by segmentation of
+    every (baseline, later visit) pair; least-squares slope of measured on true
+    change (1 is unbiased), Pearson r and the median absolute error (points).
     """
     import numpy as np
 
     from predictor.phantoms.generate import TRUTH
-    from predictor.workspace import read_workspace
+    from predictor.workspace import Layout, read_workspace
 
-    workspace = read_workspace(work)
-    truth = pd.read_csv(cohort / TRUTH / "true_volumes.tsv", sep="\t")
-    both = workspace.volumes.merge(
-        truth, on=["participant_id", "session_id"], suffixes=("", "_true")
-    ).sort_values(["participant_id", "age"])
-    first = both.groupby("participant_id").transform("first")
-    later = both["years"] > 0
+    regions = read_workspace(work).regions
+    changes = pd.read_csv(Layout(Path(work)).changes, sep="\t")
+    truth = pd.read_csv(cohort / TRUTH / "true_volumes.tsv", sep="\t").set_index(
+        ["participant_id", "session_id"]
+    )
     rows = []
-    for region in workspace.regions.names:
-        measured = 100 * (both[region] / first[region] - 1)[later]
-        true = 100 * (both[f"{region}_true"] / first[f"{region}_true"] - 1)[later]
-        rows.append(
-            {
-                "region": region,
-                "pairs": int(later.sum()),
-                "slope": float(np.polyfit(true, measured, 1)[0]) if later.sum() > 1 else np.nan,
-                "pearson_r": float(np.corrcoef(true, measured)[0, 1])
-                if later.sum() > 1
-                else np.nan,
-            }
-        )
+    for region in regions.names:
+        start = truth.loc[list(zip(changes.participant_id, changes.session_from, strict=True))]
+        end = truth.loc[list(zip(changes.participant_id, changes.session_to, strict=True))]
+        true = 100 * (end[region].to_numpy() / start[region].to_numpy() - 1)
+        for method in ("registration", "segmentation"):
+            measured = changes[f"{region}_pct_{method}"].to_numpy()
+            enough = len(changes) > 1
+            rows.append(
+                {
+                    "region": region,
+                    "method": method,
+                    "pairs": len(changes),
+                    "slope": float(np.polyfit(true, measured, 1)[0]) if enough else np.nan,
+                    "pearson_r": float(np.corrcoef(true, measured)[0, 1]) if enough else np.nan,
+                    "median_abs_error_pts": float(np.median(np.abs(measured - true))),
+                }
+            )
     return pd.DataFrame(rows)
 
 
@@ -164,6 +168,7 @@ def run_demo(
     )
     accuracy = prepare_accuracy(folders["work"], folders["cohort"])
     write_tsv(out / "prepare_accuracy.tsv", accuracy)
+    write_tsv(out / "change_accuracy.tsv", change_agreement(folders["work"], folders["cohort"]))
 
     raw = TrainConfig.from_toml(CONFIG_DIR / settings.train_config).to_dict()
     raw["training"]["max_pairs_per_epoch"] = settings.max_pairs_per_epoch

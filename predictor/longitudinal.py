@@ -365,3 +365,38 @@ def _change_columns(regions: RegionSet) -> list[str]:
         for name in regions.names
         for method in ("registration", "segmentation")
     ]
+
+
+def observed_by_registration(
+    pairs: pd.DataFrame, volumes: pd.DataFrame, layout: Layout, names
+) -> pd.DataFrame:
+    """Baseline-to-follow-up ``pairs`` whose ``<region>_follow`` volumes (mL) become the
+    baseline volume times the change measured by registration, where changes.tsv has it.
+
+    Columns as :func:`predictor.pairs.visit_pairs`; other pairs and regions are unchanged.
+    """
+    if not layout.changes.is_file():
+        return pairs
+    changes = pd.read_csv(layout.changes, sep="\t")
+    sessions = volumes.set_index("key")["session_id"]
+    keyed = changes.set_index(["participant_id", "session_from", "session_to"])
+    out = pairs.copy()
+    index = list(
+        zip(
+            pairs["participant_id"],
+            sessions.loc[pairs["base_key"]],
+            sessions.loc[pairs["follow_key"]],
+            strict=True,
+        )
+    )
+    found = [key in keyed.index for key in index]
+    for name in names:
+        column = f"{name}_pct_registration"
+        if column not in keyed.columns:
+            continue
+        for row, (key, present) in enumerate(zip(index, found, strict=True)):
+            if present and np.isfinite(keyed.loc[key, column]):
+                out.loc[row, f"{name}_follow"] = pairs.loc[row, name] * (
+                    1.0 + keyed.loc[key, column] / 100.0
+                )
+    return out

@@ -264,6 +264,22 @@ figcaption { font-size: 0.85em; color: #4a5a5a; }
 """
 
 
+def observed_note(data: dict) -> str:
+    """How the observed follow-up volumes (and the network's scan volumes) were measured."""
+    if data.get("observed_change") == "registration":
+        return (
+            "Observed follow-up volumes are the baseline volume times the change measured "
+            "between the two visits after aligning them (boundary shift integral or demons "
+            "Jacobian, changes.tsv of the workspace). The network's scan volumes were "
+            "measured on its forecast scans by segmentation, which is not the same "
+            "measurement; its Jacobian-integral volumes are in the consistency table."
+        )
+    return (
+        "The network's volumes were measured on its forecast scans by the same "
+        "segmentation as the real follow-ups."
+    )
+
+
 def render_page(tables: dict[str, pd.DataFrame], data: dict, figures: list[str], out: Path):
     summary, tests = tables["summary"], tables["tests"]
     participants = data["participants"]
@@ -289,8 +305,7 @@ def render_page(tables: dict[str, pd.DataFrame], data: dict, figures: list[str],
         f"test. The regression forecasters were refitted on the training participants only. "
         f"{data['test_pairs']} baseline-to-follow-up pairs of the test participants were "
         f"forecast, at horizons of {data['horizon_years'][0]:.2f} to "
-        f"{data['horizon_years'][1]:.2f} years. The network's volumes were measured on its "
-        "forecast scans by the same measurement as the real follow-ups.</p>",
+        f"{data['horizon_years'][1]:.2f} years. {observed_note(data)}</p>",
         "<h2>Does the network beat the other forecasts, region by region?</h2>",
         "<p>Each participant counts once: its errors are averaged over its pairs, the "
         "network's error is compared with each comparator's participant by participant, and "

@@ -100,3 +100,70 @@ def test_jacobian_filter_on_axis_aligned_fields_is_numpys_determinant(rng):
     matrix = np.moveaxis(grad, (0, 1), (-2, -1)) + np.eye(3)
     inner = (slice(1, -1),) * 3
     np.testing.assert_allclose(filtered[inner], np.linalg.det(matrix)[inner], atol=1e-6)
+
+
+def test_changes_table_resumes_from_cached_pairs(tiny_workspace):
+    # prepare wrote changes.tsv: one row per later visit; a lost pair (as after kill -9,
+    # whose pair files are written atomically) is redone, the rest are cache hits, and
+    # the table comes out identical.
+    import pandas as pd
+
+    from predictor.longitudinal import measure_changes, pair_key, visit_pairs
+    from predictor.workspace import Layout, read_workspace
+
+    layout = Layout(tiny_workspace)
+    first = pd.read_csv(layout.changes, sep="\t")
+    volumes = pd.read_csv(layout.volumes, sep="\t")
+    pairs = visit_pairs(volumes)
+    assert len(first) == len(pairs) == (volumes.groupby("participant_id").size() - 1).sum()
+    lost = layout.pair(pair_key(pairs[0][0]["key"], pairs[0][1]["key"], SETTINGS))
+    lost.unlink()
+    stamps = {path: path.stat().st_mtime_ns for path in layout.pair("x").parent.glob("*.json")}
+    again, failures = measure_changes(
+        tiny_workspace, read_workspace(tiny_workspace).regions, SETTINGS
+    )
+    assert not failures and lost.is_file()
+    assert all(path.stat().st_mtime_ns == stamp for path, stamp in stamps.items())
+    pd.testing.assert_frame_equal(pd.read_csv(layout.changes, sep="\t"), first)
+
+
+@pytest.fixture(scope="module")
+def realistic_workspace(tmp_path_factory):
+    """Three template_anatomy participants (2 mm) prepared against mni152, with changes."""
+    from predictor.cohort import read_cohort
+    from predictor.phantoms.generate import generate_cohort
+    from predictor.prepare import prepare_cohort
+
+    root = tmp_path_factory.mktemp("realistic")
+    cohort = generate_cohort(
+        root / "bids", 3, "demo", seed=0, scenario_path="template_anatomy", jobs=2
+    )
+    prepare_cohort(read_cohort(cohort), root / "work", "mni152", PrepareSettings.from_toml(), 2)
+    return cohort, root / "work"
+
+
+@pytest.mark.slow
+def test_change_by_registration_beats_independent_segmentation(realistic_workspace):
+    # Measured % change from baseline of each region against the phantom truth, both
+    # paths in this one run, on realistic anatomy prepared against a template that did
+    # not generate it. Whole brain and ventricles: the registration's median absolute
+    # error is at least 2x smaller than two independent segmentations' (the issue's
+    # goal; measured 0.32 vs 1.97 and 1.24 vs 7.77 points). Hippocampi (mni152's box
+    # proxies): registration follows the true change (Pearson r via numpy; measured
+    # 0.91-0.93 against 0.24-0.29) but overshoots it (slope 1.25-1.41), so its error is
+    # only required to be smaller (measured 3.15 vs 3.61 and 2.66 vs 6.15 points).
+    from predictor.demo import change_agreement
+
+    cohort, work = realistic_workspace
+    agreement = change_agreement(work, cohort).set_index(["region", "method"])
+    for region, factor in (
+        ("brain", 2),
+        ("ventricles", 2),
+        ("hippocampus_left", 1),
+        ("hippocampus_right", 1),
+    ):
+        registration = agreement.loc[(region, "registration")]
+        segmentation = agreement.loc[(region, "segmentation")]
+        error = registration["median_abs_error_pts"]
+        assert factor * error <= segmentation["median_abs_error_pts"], region
+        assert registration["pearson_r"] > 0.8, region

@@ -248,7 +248,10 @@ def generate_cohort(
         raise ValueError(f"participants must be at least 1, got {count}")
     groups = assign_groups(scenario.cohort["diagnosis_fractions"], count, seed)
     arguments = [(scenario.source, size, k, groups[k], seed, str(out)) for k in range(count)]
-    results = run_all(_make_participant, arguments, jobs, progress, single_threaded_torch)
+    # one PyTorch thread per worker; never in this process (run_all runs a single item
+    # here), whose thread count other work relies on
+    workers = single_threaded_torch if jobs > 1 and count > 1 else None
+    results = run_all(_make_participant, arguments, jobs, progress, workers)
     _write_tables(out, scenario, size, seed, results)
     if scenario.kind == "geometric":  # a "template" scenario's template is mni152 itself
         write_template(scenario, size, out)

@@ -60,13 +60,18 @@ def template_anatomy_accuracy() -> dict:
         prepare_cohort(read_cohort(cohort), work, "mni152", PrepareSettings.from_toml(), 2)
         seconds = time.perf_counter() - started
         accuracy = prepare_accuracy(work, cohort).set_index("region")
-        agreement = change_agreement(work, cohort).set_index("region")
+        agreement = change_agreement(work, cohort).set_index(["region", "method"])
     figures = {"prepare_s": round(seconds, 1)}
     for region in ("brain", "ventricles", "hippocampus_left", "hippocampus_right", "wm"):
         figures[f"{region}_mean_error_pct"] = round(accuracy.loc[region, "mean_error_pct"], 1)
         figures[f"{region}_max_abs_error_pct"] = round(accuracy.loc[region, "max_abs_error_pct"], 1)
-        figures[f"{region}_change_slope"] = round(agreement.loc[region, "slope"], 2)
-        figures[f"{region}_change_r"] = round(agreement.loc[region, "pearson_r"], 2)
+        for method, short in (("registration", "reg"), ("segmentation", "seg")):
+            row = agreement.loc[(region, method)]
+            figures[f"{region}_{short}_slope"] = round(row["slope"], 2)
+            figures[f"{region}_{short}_r"] = round(row["pearson_r"], 2)
+            figures[f"{region}_{short}_median_abs_error_pts"] = round(
+                row["median_abs_error_pts"], 2
+            )
     return figures
 
 
