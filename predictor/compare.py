@@ -284,7 +284,7 @@ def compare(
     if pairs.empty:
         raise DataError("the test participants have no follow-up visits to compare")
     if settings.observed_change == "registration":
-        pairs = observed_by_registration(pairs, volumes, workspace.layout, names)
+        pairs = observed_by_registration(pairs, volumes, workspace.layout, workspace.regions)
     groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
     population_dir = _population(population, model) if population is not None else None
     arguments = [

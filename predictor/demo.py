@@ -98,16 +98,20 @@ def change_agreement(work: Path, cohort: Path) -> pd.DataFrame:
         end = truth.loc[list(zip(changes.participant_id, changes.session_to, strict=True))]
         true = 100 * (end[region].to_numpy() / start[region].to_numpy() - 1)
         for method in ("registration", "segmentation"):
-            measured = changes[f"{region}_pct_{method}"].to_numpy()
-            enough = len(changes) > 1
+            measured = changes[f"{region}_pct_{method}"].to_numpy(dtype=float)
+            kept = np.isfinite(measured) & np.isfinite(true)
+            x, y = true[kept], measured[kept]
+            enough = kept.sum() > 2 and np.ptp(x) > 0
             rows.append(
                 {
                     "region": region,
                     "method": method,
-                    "pairs": len(changes),
-                    "slope": float(np.polyfit(true, measured, 1)[0]) if enough else np.nan,
-                    "pearson_r": float(np.corrcoef(true, measured)[0, 1]) if enough else np.nan,
-                    "median_abs_error_pts": float(np.median(np.abs(measured - true))),
+                    "pairs": int(kept.sum()),
+                    "slope": float(np.polyfit(x, y, 1)[0]) if enough else np.nan,
+                    "pearson_r": float(np.corrcoef(x, y)[0, 1]) if enough else np.nan,
+                    "median_abs_error_pts": float(np.median(np.abs(y - x)))
+                    if kept.any()
+                    else np.nan,
                 }
             )
     return pd.DataFrame(rows)

@@ -202,8 +202,12 @@ def pair_change(earlier: Visit, later: Visit, regions: RegionSet, settings) -> d
     earlier_to_later = rigid_alignment(earlier, later, settings)
     forward = _one_way(earlier, later, earlier_to_later, regions, settings)
     backward = _one_way(later, earlier, np.linalg.inv(earlier_to_later), regions, settings)
+    # a non-positive one-way ratio (a boundary shift larger than a small region) is a
+    # failed measurement: that region is left out of this pair
     ratio = {
-        name: float(np.sqrt(forward[name] / backward[name])) for name in forward if name in backward
+        name: float(np.sqrt(forward[name] / backward[name]))
+        for name in forward
+        if name in backward and forward[name] > 0 and backward[name] > 0
     }
     return {"ratio": ratio, "forward": forward, "backward": backward}
 
@@ -368,13 +372,17 @@ def _change_columns(regions: RegionSet) -> list[str]:
 
 
 def observed_by_registration(
-    pairs: pd.DataFrame, volumes: pd.DataFrame, layout: Layout, names
+    pairs: pd.DataFrame, volumes: pd.DataFrame, layout: Layout, regions: RegionSet
 ) -> pd.DataFrame:
     """Baseline-to-follow-up ``pairs`` whose ``<region>_follow`` volumes (mL) become the
     baseline volume times the change measured by registration, where changes.tsv has it.
 
+    Only regions with a ``boundary`` (measured by the boundary shift integral) are
+    replaced: the demons Jacobian of the others followed the true change worse than
+    segmentation on every phantom cohort measured (see configs/compare.toml).
     Columns as :func:`predictor.pairs.visit_pairs`; other pairs and regions are unchanged.
     """
+    names = [region.name for region in regions.regions if region.boundary is not None]
     if not layout.changes.is_file():
         return pairs
     changes = pd.read_csv(layout.changes, sep="\t")

@@ -268,11 +268,13 @@ def observed_note(data: dict) -> str:
     """How the observed follow-up volumes (and the network's scan volumes) were measured."""
     if data.get("observed_change") == "registration":
         return (
-            "Observed follow-up volumes are the baseline volume times the change measured "
-            "between the two visits after aligning them (boundary shift integral or demons "
-            "Jacobian, changes.tsv of the workspace). The network's scan volumes were "
-            "measured on its forecast scans by segmentation, which is not the same "
-            "measurement; its Jacobian-integral volumes are in the consistency table."
+            "Observed follow-up volumes of the regions with a measured boundary (whole "
+            "brain, hippocampi, ventricles) are the baseline volume times the change "
+            "measured between the two aligned visits by the boundary shift integral "
+            "(changes.tsv of the workspace); the other regions' are the follow-up's own "
+            "segmentation. The network's scan volumes were measured on its forecast scans "
+            "by segmentation, which is not the same measurement; its Jacobian-integral "
+            "volumes are in the consistency table."
         )
     return (
         "The network's volumes were measured on its forecast scans by the same "

@@ -203,7 +203,12 @@ def test_participant_level_tests_count_each_participant_once():
         "network-jacobian": [0.1] * 8,
         "ridge": [0.4, 0.4, 0.3, 0.5, 0.2, 0.2, 0.6, 0.6],
     })  # fmt: skip
-    settings = CompareSettings(primary_region="hippocampus_left", level=0.95, bootstrap=2000)
+    settings = CompareSettings(
+        primary_region="hippocampus_left",
+        level=0.95,
+        bootstrap=2000,
+        observed_change="registration",
+    )
     tests = paired_tests(errors, ["hippocampus_left", "ventricles"], [], settings, seed=0)
     row = tests[(tests["network"] == "network") & (tests["region"] == "hippocampus_left")].iloc[0]
     # participant means: network 0.2, 0.2, 0.1, 0.4; ridge 0.4, 0.4, 0.2, 0.6
@@ -228,7 +233,7 @@ def test_participant_level_tests_count_each_participant_once():
     assert secondary["holm_p"].iloc[0] == pytest.approx(expected)
     with pytest.raises(DataError, match="primary region 'wm' is not a target region"):
         paired_tests(errors, ["hippocampus_left", "ventricles"], [],
-                     CompareSettings("wm", 0.95, 2000), seed=0)  # fmt: skip
+                     CompareSettings("wm", 0.95, 2000, "registration"), seed=0)  # fmt: skip
 
 
 def test_cluster_bootstrap_ci_against_a_hand_case(rng):

@@ -123,10 +123,22 @@ def test_saved_prior_roundtrip_and_bad_file(tmp_path):
 
 
 @pytest.fixture(scope="module")
-def phantom_truth():
+def linear_scenario(tmp_path_factory) -> Scenario:
+    """memory_clinic with linear trajectories (no acceleration): the model class of the
+    linear forecasters, so that their rate estimates can be checked."""
+    path = tmp_path_factory.mktemp("scenario") / "linear.toml"
+    path.write_text(
+        'extends = "memory_clinic"\n[progression]\nacceleration_per_stage = 0.0\n'
+        "acceleration = { CN = 0.0, MCI = 0.0, AD = 0.0 }\n"
+    )
+    return Scenario.from_toml(path)
+
+
+@pytest.fixture(scope="module")
+def phantom_truth(linear_scenario):
     # True volumes of a phantom cohort drawn like the demo's (no images needed), with
     # 1% measurement noise so that the residual variance is not zero.
-    truth, _ = true_volume_table(Scenario.from_toml(), 240, seed=21)
+    truth, _ = true_volume_table(linear_scenario, 240, seed=21)
     rng = np.random.default_rng(0)
     regions = ["hippocampus_left", "ventricles", "cortical_gm", "wm"]
     for region in regions:
@@ -134,9 +146,9 @@ def phantom_truth():
     return truth, regions
 
 
-def test_mixed_effects_recovers_configured_rates(phantom_truth):
+def test_mixed_effects_recovers_configured_rates(phantom_truth, linear_scenario):
     truth, _ = phantom_truth
-    scenario = Scenario.from_toml()
+    scenario = linear_scenario
     model = MixedEffectsForecaster().fit(truth, ["hippocampus_left", "cortical_gm", "wm"])
     base = baseline_rows(check_table(truth, ["hippocampus_left"]))
     for region, rate_region in [
@@ -148,7 +160,9 @@ def test_mixed_effects_recovers_configured_rates(phantom_truth):
         for index, group in enumerate(model.labels_):
             slope = beta[5] + (beta[5 + index] if index else 0.0)  # mL per year
             rate = slope / base.loc[base.diagnosis == group, region].mean()
-            assert rate == pytest.approx(scenario.rates[rate_region][group], rel=0.10), (
+            # within 15%: each region's rate factor also shows in its baseline size, so
+            # mL per year over the mean baseline volume is not exactly the mean rate
+            assert rate == pytest.approx(scenario.rates[rate_region][group], rel=0.15), (
                 region,
                 group,
             )
