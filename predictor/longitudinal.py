@@ -38,6 +38,7 @@ import hashlib
 import json
 from dataclasses import asdict, dataclass
 from pathlib import Path
+from types import SimpleNamespace
 
 import nibabel as nib
 import numpy as np
@@ -47,6 +48,7 @@ import SimpleITK as sitk
 from predictor import __version__
 from predictor.errors import PredictorError
 from predictor.files import write_json, write_tsv
+from predictor.preprocess import run_registration
 from predictor.regions import TISSUES, RegionSet
 from predictor.spatial import affine_to_matrix, from_sitk, matrix_to_transform, to_sitk
 from predictor.volumes import region_volumes
@@ -102,24 +104,17 @@ def rigid_alignment(fixed: Visit, moving: Visit, settings) -> np.ndarray:
         sitk.Euler3DTransform(),
         sitk.CenteredTransformInitializerFilter.MOMENTS,
     )
-    method = sitk.ImageRegistrationMethod()
-    method.SetMetricAsMattesMutualInformation(48)
-    method.SetMetricSamplingStrategy(method.REGULAR)
-    method.SetMetricSamplingPercentage(0.3, 1)
-    method.SetMetricFixedMask(to_sitk(_dilated(fixed.mask, 2).astype(np.uint8), fixed.affine))
-    method.SetInterpolator(sitk.sitkLinear)
-    method.SetOptimizerAsRegularStepGradientDescent(
-        learningRate=1.0,
-        minStep=1e-4,
-        numberOfIterations=settings.rigid_iterations,
-        gradientMagnitudeTolerance=1e-8,
+    options = SimpleNamespace(
+        histogram_bins=48,
+        sampling_fraction=0.3,
+        learning_rate=1.0,
+        iterations=settings.rigid_iterations,
+        shrink_factors=settings.rigid_shrink_factors,
+        smoothing_mm=settings.rigid_smoothing_mm,
     )
-    method.SetOptimizerScalesFromPhysicalShift()
-    method.SetShrinkFactorsPerLevel(list(settings.rigid_shrink_factors))
-    method.SetSmoothingSigmasPerLevel(list(settings.rigid_smoothing_mm))
-    method.SmoothingSigmasAreSpecifiedInPhysicalUnitsOn()
-    method.SetInitialTransform(initial, inPlace=False)
-    return affine_to_matrix(method.Execute(fixed_image, moving_image))
+    mask = to_sitk(_dilated(fixed.mask, 2).astype(np.uint8), fixed.affine)
+    transform, _ = run_registration(fixed_image, mask, moving_image, initial, options)
+    return affine_to_matrix(transform)
 
 
 def _dilated(mask: np.ndarray, iterations: int) -> np.ndarray:

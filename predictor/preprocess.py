@@ -110,7 +110,7 @@ def register_affine(
         shrink_factors=settings.shrink_factors[:-1],
         smoothing_mm=settings.smoothing_mm[:-1],
     )
-    first, first_method = _run_registration(fixed, fixed_mask, moving, similarity, coarse)
+    first, first_method = run_registration(fixed, fixed_mask, moving, similarity, coarse)
     start = sitk.AffineTransform(3)
     start.SetCenter(similarity.GetCenter())
     first_similarity = (
@@ -120,7 +120,7 @@ def register_affine(
     )
     start.SetMatrix(first_similarity.GetMatrix())
     start.SetTranslation(first_similarity.GetTranslation())
-    final, method = _run_registration(fixed, fixed_mask, moving, start, settings)
+    final, method = run_registration(fixed, fixed_mask, moving, start, settings)
     matrix, kept = affine_to_matrix(final), affine_to_matrix(first)
     change = abs(np.linalg.det(matrix[:3, :3]) / np.linalg.det(kept[:3, :3]))
     limit = settings.max_affine_volume_change
@@ -141,7 +141,12 @@ def register_affine(
     )
 
 
-def _run_registration(fixed, fixed_mask, moving, initial, settings):
+def run_registration(fixed, fixed_mask, moving, initial, settings):
+    """Mattes mutual information, multi-resolution, regular-step gradient descent (SimpleITK).
+
+    ``settings`` gives histogram_bins, sampling_fraction, learning_rate, iterations,
+    shrink_factors and smoothing_mm (per level). Returns the transform and the method.
+    """
     method = sitk.ImageRegistrationMethod()
     method.SetMetricAsMattesMutualInformation(settings.histogram_bins)
     method.SetMetricSamplingStrategy(method.REGULAR)
