@@ -92,10 +92,10 @@ def change_agreement(work: Path, cohort: Path) -> pd.DataFrame:
     truth = pd.read_csv(cohort / TRUTH / "true_volumes.tsv", sep="\t").set_index(
         ["participant_id", "session_id"]
     )
+    start = truth.loc[list(zip(changes.participant_id, changes.session_from, strict=True))]
+    end = truth.loc[list(zip(changes.participant_id, changes.session_to, strict=True))]
     rows = []
     for region in regions.names:
-        start = truth.loc[list(zip(changes.participant_id, changes.session_from, strict=True))]
-        end = truth.loc[list(zip(changes.participant_id, changes.session_to, strict=True))]
         true = 100 * (end[region].to_numpy() / start[region].to_numpy() - 1)
         for method in ("registration", "segmentation"):
             measured = changes[f"{region}_pct_{method}"].to_numpy(dtype=float)
