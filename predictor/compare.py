@@ -194,22 +194,31 @@ def baseline_pairs(volumes: pd.DataFrame, participants, regions) -> pd.DataFrame
 
 def regression_forecasts(
     volumes, train, pairs, names, coding, seed: int, jobs: int
-) -> dict[str, np.ndarray]:
-    """Every regression forecaster fitted on ``train`` participants: (P, R) mL per method."""
+) -> tuple[dict[str, np.ndarray], dict[str, str]]:
+    """Every regression forecaster fitted on ``train`` participants.
+
+    Returns ({method: (P, R, 3) mean, lower and upper 90% bound in mL}, {method: why it
+    could not be fitted}): a forecaster that cannot be fitted on these participants (too
+    few for its parameters) is left out with its reason, and never stops the comparison.
+    """
     table = volumes[volumes["participant_id"].isin(set(train))]
     starts = baseline_rows(check_table(volumes[volumes["key"].isin(pairs["base_key"])], names))
     horizons = sorted(set(pairs["years"]))
-    out = {}
+    keys = list(zip(pairs["participant_id"], pairs["years"], strict=True))
+    out, not_fitted = {}, {}
     for name, forecaster in all_forecasters(seed=seed, jobs=jobs, coding=coding).items():
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            forecaster.fit(table, list(names))
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                forecaster.fit(table, list(names))
+        except (DataError, np.linalg.LinAlgError, ValueError) as error:
+            not_fitted[name] = str(error)
+            continue
         predicted = forecaster.predict(starts, horizons).set_index(
             ["region", "participant_id", "years"]
-        )["mean_ml"]
-        keys = list(zip(pairs["participant_id"], pairs["years"], strict=True))
+        )[["mean_ml", "lower_ml", "upper_ml"]]
         out[name] = np.stack([predicted.loc[region].loc[keys].to_numpy() for region in names], 1)
-    return out
+    return out, not_fitted
 
 
 def phantom_floor(work: Path, pairs: pd.DataFrame, names) -> np.ndarray | None:
@@ -301,9 +310,10 @@ def compare(
     }
     if population_dir is not None:
         methods[POPULATION] = pairs[[f"population_{r}" for r in names]].to_numpy()
-    methods |= regression_forecasts(
+    regressions, not_fitted = regression_forecasts(
         volumes, split["train"], pairs, names, workspace.cohort, seed, jobs
     )
+    methods |= {name: values[..., 0] for name, values in regressions.items()}
     floor = phantom_floor(Path(work), pairs, names)
     if floor is not None:
         methods[FLOOR] = floor
@@ -328,6 +338,7 @@ def compare(
             "phantom_floor": floor is not None,
             "observed_change": settings.observed_change,
             "model": Path(model_dir).name,
+            "not_fitted": not_fitted,
         },
         examples=examples,
         regions=tuple(names),

@@ -60,16 +60,16 @@ def split_participants(
             f"only {len(eligible)} participants have a follow-up {min_test_years:g} years or "
             f"more after baseline; {sizes[1]} are needed for the test set"
         )
-    test = _stratified_draw(eligible, diagnosis, sizes[1], rng)
+    test = stratified_draw(eligible, diagnosis, sizes[1], rng)
     with_follow_up = sorted(set(span.index[span > 0]) - set(test))
-    validation = _stratified_draw(with_follow_up, diagnosis, sizes[0], rng)
+    validation = stratified_draw(with_follow_up, diagnosis, sizes[0], rng)
     train = sorted(set(span.index) - set(test) - set(validation))
     if not train:
         raise DataError(f"{count} participants leave none for training")
     return {"train": train, "validation": validation, "test": test}
 
 
-def _stratified_draw(candidates, diagnosis, size, rng) -> list[str]:
+def stratified_draw(candidates, diagnosis, size, rng) -> list[str]:
     """``size`` candidates, diagnosis groups taking turns in a seeded order."""
     groups = {}
     for participant in rng.permutation(np.asarray(candidates, dtype=object)):

@@ -221,12 +221,21 @@ class Run:
         return ScanStore(self.workspace.root)
 
 
-def prepare_run(work, config: TrainConfig, seed: int) -> tuple[Run, object]:
-    """Split, pairs, prior and conditioning statistics of a workspace; returns the prior too."""
+def prepare_run(
+    work, config: TrainConfig, seed: int, split: dict[str, list[str]] | None = None
+) -> tuple[Run, object]:
+    """Split, pairs, prior and conditioning statistics of a workspace; returns the prior too.
+
+    ``split`` (train / validation / test participant lists) replaces the config's seeded
+    80/10/10 split, as cross-validation folds do.
+    """
     workspace = read_workspace(work)
     volumes, regions, coding = workspace.volumes, workspace.regions, workspace.cohort
     settings = config.training
-    split = split_participants(volumes, settings.split, settings.test_min_follow_up_years, seed)
+    if split is None:
+        split = split_participants(volumes, settings.split, settings.test_min_follow_up_years, seed)
+    else:
+        split = {name: sorted(split.get(name, [])) for name in SETS}
     prior, prior_warnings = fit_prior(volumes, split["train"], regions, coding)
     pairs = {
         name: attach_prior(visit_pairs(volumes, split[name], regions), prior, regions.prior)
@@ -246,6 +255,7 @@ def prepare_run(work, config: TrainConfig, seed: int) -> tuple[Run, object]:
     digest = hashlib.sha256(workspace.layout.volumes.read_bytes())
     digest.update(json.dumps(config.to_dict(), sort_keys=True).encode())
     digest.update(str(seed).encode())
+    digest.update(json.dumps(split, sort_keys=True).encode())
     train_rows = volumes[volumes["participant_id"].isin(split["train"])]
     info = ModelInfo(
         schema=SCHEMA,
@@ -383,11 +393,13 @@ def train(
     force: bool = False,
     on_step: Callable[[int, int, int, dict], None] | None = None,
     on_epoch: Callable[[dict], None] | None = None,
+    split: dict[str, list[str]] | None = None,
 ) -> dict:
     """Train a model on a prepared workspace into ``model_dir``; returns the last log row.
 
-    ``epochs`` and ``seed`` override the config's. ``on_step(epoch, step,
-    steps, terms)`` and ``on_epoch(row)`` report progress (rank 0 only).
+    ``epochs`` and ``seed`` override the config's; ``split`` the config's participant
+    split (see :func:`prepare_run`). ``on_step(epoch, step, steps, terms)`` and
+    ``on_epoch(row)`` report progress (rank 0 only).
     """
     config = config or TrainConfig.from_toml()
     settings = config.training
@@ -402,7 +414,7 @@ def train(
     threads = settings.threads or (max(1, (os.cpu_count() or 1) // world) if world > 1 else 0)
     if threads:
         torch.set_num_threads(threads)
-    run, prior = prepare_run(work, config, seed)
+    run, prior = prepare_run(work, config, seed, split)
     network = _initial_network(run.info, seed)
     optimiser = torch.optim.Adam(network.parameters(), lr=settings.learning_rate)
     stopping, history = EarlyStopping(settings.patience), []
@@ -471,7 +483,8 @@ def _resume(path: Path, run: Run, network, optimiser) -> tuple[EarlyStopping, li
     saved = load_tensors(path)
     if saved.get("fingerprint") != run.info.fingerprint:
         raise OutputError(
-            f"{path}: was trained on another workspace, config or seed; use --force to restart"
+            f"{path}: was trained on another workspace, config, seed or split; "
+            "use --force to restart"
         )
     network.load_state_dict(saved["model"])
     optimiser.load_state_dict(saved["optimizer"])

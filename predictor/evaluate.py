@@ -1,0 +1,474 @@
+"""``predictor evaluate``: participant-level K-fold cross-validation of the network.
+
+Participants are dealt into K folds (stratified by diagnosis, seeded; the
+assignment is saved in ``folds.json``). For fold k, a network and a
+population-field network (the same training with the template as everyone's
+image input) are trained on the other folds, with an inner validation draw
+of them driving early stopping; the regression forecasters are fitted on the
+same other folds. Each then forecasts fold k's baseline -> follow-up pairs, so
+every participant is forecast exactly once, by models that never saw it.
+
+Each fold lives in its own folder (``fold-<k>/network``, ``fold-<k>/population``,
+``fold-<k>/forecasts.tsv``): training resumes from its last checkpoint and a
+finished fold is not redone, so a killed run continues where it stopped, and
+``--fold k`` lets a cluster array job run the folds apart. A run without
+``--fold`` runs what is missing and then collects the folds into one
+evaluation with the statistics of :mod:`predictor.compare` (participant-level
+differences, cluster bootstrap, Holm), the subject-specific skill of every
+method (calibration slope and R^2 of individual annualised change) and the
+coverage of every interval a method gives.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from predictor.compare import (
+    FLOOR,
+    NETWORK,
+    NETWORKS,
+    POPULATION,
+    CompareSettings,
+    baseline_pairs,
+    error_table,
+    grouped,
+    headlines,
+    horizon_bins,
+    network_pairs,
+    paired_tests,
+    phantom_floor,
+    regression_forecasts,
+    summarise,
+)
+from predictor.errors import DataError
+from predictor.files import write_json, write_tsv
+from predictor.longitudinal import observed_by_registration
+from predictor.modelstore import read_model_json
+from predictor.pairs import stratified_draw
+from predictor.parallel import run_all
+from predictor.regression import LEVEL
+from predictor.rng import seeded_rng
+from predictor.training import TrainConfig, train
+from predictor.workspace import read_workspace
+
+FOLDS_FILE = "folds.json"
+FORECASTS = "forecasts.tsv"
+#: a fold's two trained models: the network, and the same training fed the template
+MODELS = {"network": "scan", "population": "template"}
+#: columns of a fold's forecasts.tsv
+FORECAST_COLUMNS = (
+    "participant_id", "base_key", "follow_key", "years", "region", "method",
+    "forecast_ml", "lower_ml", "upper_ml",
+)  # fmt: skip
+
+
+@dataclass(frozen=True)
+class Evaluation:
+    """Every table of a cross-validated evaluation (pandas DataFrames)."""
+
+    errors: pd.DataFrame  # one row per pair, region and method
+    summary: pd.DataFrame  # region x method: mean |error| (% TBV) and its CI
+    tests: pd.DataFrame  # region x network variant x comparator, participant level
+    headlines: pd.DataFrame  # region x network variant: verdicts and subject-specific skill
+    skill: pd.DataFrame  # region x method: calibration slope and R^2 of individual change
+    coverage: pd.DataFrame  # method x region x group: share of pairs inside the interval
+    by_horizon: pd.DataFrame
+    by_diagnosis: pd.DataFrame
+    data: dict  # counts, folds, settings, forecasters not fitted
+    regions: tuple[str, ...]
+
+
+# --- folds ---------------------------------------------------------------------------------
+def assign_folds(volumes: pd.DataFrame, folds: int, seed: int) -> dict[str, int]:
+    """Participant -> fold (1..K), stratified by diagnosis.
+
+    Within each diagnosis (in sorted order) participants are shuffled by the seed and
+    dealt in turn, the deal continuing across diagnoses, so fold sizes differ by at most
+    one and every diagnosis is spread as evenly as its count allows.
+    """
+    diagnosis = volumes.groupby("participant_id")["diagnosis"].first()
+    if folds < 2:
+        raise DataError(f"--folds must be 2 or more, got {folds}")
+    if len(diagnosis) < 2 * folds:
+        raise DataError(
+            f"{len(diagnosis)} participants are too few for {folds} folds "
+            f"(at least {2 * folds} are needed: two per fold)"
+        )
+    rng = seeded_rng(seed, 29)
+    assignment, dealt = {}, 0
+    for label in sorted(set(diagnosis)):
+        members = sorted(diagnosis.index[diagnosis == label])
+        for participant in rng.permutation(np.asarray(members, dtype=object)):
+            assignment[str(participant)] = dealt % folds + 1
+            dealt += 1
+    return dict(sorted(assignment.items()))
+
+
+def fold_split(
+    volumes: pd.DataFrame, assignment: dict[str, int], fold: int, share: float, seed: int
+) -> dict[str, list[str]]:
+    """Train / validation / test participants of one fold.
+
+    Test: the fold. Validation: ``share`` of the other folds' participants with a
+    follow-up (at least one), drawn stratified by diagnosis; train: the rest.
+    """
+    test = sorted(p for p, k in assignment.items() if k == fold)
+    pool = sorted(p for p, k in assignment.items() if k != fold)
+    span = volumes.groupby("participant_id")["age"].agg(lambda a: a.max() - a.min())
+    diagnosis = volumes.groupby("participant_id")["diagnosis"].first()
+    followed = [p for p in pool if span[p] > 0]
+    size = max(1, int(round(share * len(pool)))) if share > 0 and followed else 0
+    validation = stratified_draw(followed, diagnosis, size, seeded_rng(seed, 31, fold))
+    train_set = sorted(set(pool) - set(validation))
+    return {"train": train_set, "validation": validation, "test": test}
+
+
+def start_folds(volumes: pd.DataFrame, out: Path, folds: int, seed: int) -> dict:
+    """Write ``folds.json`` (participant -> fold), or read it back and check it matches."""
+    path = out / FOLDS_FILE
+    participants = sorted(set(volumes["participant_id"]))
+    if path.is_file():
+        saved = read_folds(out)
+        if saved["folds"] != folds or saved["seed"] != seed:
+            raise DataError(
+                f"{path}: holds {saved['folds']} folds with seed {saved['seed']}; "
+                f"rerun with --folds {saved['folds']} --seed {saved['seed']} or use another OUT"
+            )
+        if sorted(saved["assignment"]) != participants:
+            raise DataError(f"{path}: was made for other participants than the workspace's")
+        return saved
+    saved = {"folds": folds, "seed": seed, "assignment": assign_folds(volumes, folds, seed)}
+    out.mkdir(parents=True, exist_ok=True)
+    write_json(path, saved)
+    return saved
+
+
+def read_folds(out: Path) -> dict:
+    """The saved fold assignment; a malformed file raises DataError naming it."""
+    path = Path(out) / FOLDS_FILE
+    try:
+        saved = json.loads(path.read_text())
+        saved = {
+            "folds": int(saved["folds"]),
+            "seed": int(saved["seed"]),
+            "assignment": {str(p): int(k) for p, k in saved["assignment"].items()},
+        }
+    except (OSError, ValueError, KeyError, TypeError, AttributeError) as error:
+        raise DataError(f"{path}: not a fold assignment ({error})") from error
+    return saved
+
+
+# --- one fold ------------------------------------------------------------------------------
+def fold_folder(out: Path, fold: int) -> Path:
+    return Path(out) / f"fold-{fold}"
+
+
+def run_fold(work, out: Path, fold: int, config: TrainConfig, seed: int, jobs: int, progress=None):
+    """Train fold ``fold``'s two models (resuming) and forecast its participants' pairs.
+
+    Writes ``fold-<k>/forecasts.tsv`` last, atomically; a fold that has it is done.
+    """
+    folder = fold_folder(out, fold)
+    if (folder / FORECASTS).is_file():
+        return folder / FORECASTS
+    workspace = read_workspace(work)
+    volumes, names = workspace.volumes, workspace.regions.names
+    saved = read_folds(out)
+    fractions = config.training.split
+    share = fractions[1] / max(fractions[0] + fractions[1], 1e-9)
+    split = fold_split(volumes, saved["assignment"], fold, share, seed)
+    for name, image_input in MODELS.items():
+        settings = replace(config.training, image_input=image_input)
+        train(work, folder / name, replace(config, training=settings), resume=True,
+              seed=seed, split=split)  # fmt: skip
+    pairs = baseline_pairs(volumes, split["test"], workspace.regions)
+    rows = []
+    if not pairs.empty:
+        groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
+        arguments = [
+            (str((folder / "network").resolve()), str(Path(work).resolve()), group,
+             str((folder / "population").resolve()))
+            for group in groups
+        ]  # fmt: skip
+        measured = pd.DataFrame(
+            [row for rows in run_all(network_pairs, arguments, jobs, progress) for row in rows]
+        )
+        measured = pairs.merge(measured, on=["base_key", "follow_key"], validate="one_to_one")
+        for method, prefix in ((NETWORK, "measured_"), (NETWORKS[1], "jacobian_"),
+                               (POPULATION, "population_")):  # fmt: skip
+            values = measured[[f"{prefix}{r}" for r in names]].to_numpy()
+            rows.append(_long(measured, method, names, values, None))
+        regressions, not_fitted = regression_forecasts(
+            volumes, split["train"] + split["validation"], pairs, names, workspace.cohort,
+            seed, jobs,
+        )  # fmt: skip
+        for method, values in regressions.items():
+            rows.append(_long(pairs, method, names, values[..., 0], values[..., 1:]))
+        write_json(folder / "not_fitted.json", not_fitted)
+    table = pd.concat(rows, ignore_index=True) if rows else pd.DataFrame(columns=FORECAST_COLUMNS)
+    return write_tsv(folder / FORECASTS, table[list(FORECAST_COLUMNS)])
+
+
+def _long(pairs: pd.DataFrame, method: str, names, values, bounds) -> pd.DataFrame:
+    """One method's (P, R) forecasts (and (P, R, 2) bounds or None) as forecasts.tsv rows."""
+    frames = []
+    for j, region in enumerate(names):
+        frames.append(
+            pd.DataFrame(
+                {
+                    "participant_id": pairs["participant_id"].to_numpy(),
+                    "base_key": pairs["base_key"].to_numpy(),
+                    "follow_key": pairs["follow_key"].to_numpy(),
+                    "years": pairs["years"].to_numpy(),
+                    "region": region,
+                    "method": method,
+                    "forecast_ml": values[:, j],
+                    "lower_ml": np.nan if bounds is None else bounds[:, j, 0],
+                    "upper_ml": np.nan if bounds is None else bounds[:, j, 1],
+                }
+            )
+        )
+    return pd.concat(frames, ignore_index=True)
+
+
+# --- collecting the folds ------------------------------------------------------------------
+def check_folds(out: Path, saved: dict) -> pd.DataFrame:
+    """Every fold's forecasts, checked: each participant forecast once, never by a model
+    that saw it (from the saved assignment and each model's own split). Raises DataError
+    naming a missing fold or the leaked participants."""
+    assignment, frames = saved["assignment"], []
+    for fold in range(1, saved["folds"] + 1):
+        folder = fold_folder(out, fold)
+        members = {p for p, k in assignment.items() if k == fold}
+        if not (folder / FORECASTS).is_file():
+            raise DataError(
+                f"{folder}: fold {fold} is not finished; run `predictor evaluate` without "
+                f"--fold (or with --fold {fold}) to finish it"
+            )
+        for name in MODELS:
+            split = read_model_json(folder / name).split
+            seen = (set(split["train"]) | set(split["validation"])) & members
+            if seen:
+                raise DataError(
+                    f"leaked fold: {folder / name} was trained on participant(s) "
+                    f"{', '.join(sorted(seen)[:5])} of fold {fold}, which it forecasts"
+                )
+        frame = pd.read_csv(folder / FORECASTS, sep="\t")
+        outside = sorted(set(frame["participant_id"]) - members)
+        if outside:
+            raise DataError(
+                f"leaked fold: {folder / FORECASTS} forecasts participant(s) "
+                f"{', '.join(outside[:5])} that are not in fold {fold}"
+            )
+        frames.append(frame.assign(fold=fold))
+    return pd.concat(frames, ignore_index=True)
+
+
+def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation:
+    """The evaluation of every finished fold (see :func:`check_folds`)."""
+    out = Path(out)
+    saved = read_folds(out)
+    forecasts = check_folds(out, saved)
+    workspace = read_workspace(work)
+    volumes, names = workspace.volumes, workspace.regions.names
+    pairs = baseline_pairs(volumes, sorted(saved["assignment"]), workspace.regions)
+    if pairs.empty:
+        raise DataError(f"{work}: no participant has a follow-up visit to forecast")
+    if settings.observed_change == "registration":
+        pairs = observed_by_registration(pairs, volumes, workspace.layout, workspace.regions)
+    keys = pairs.set_index(["base_key", "follow_key"]).index
+    methods, bounds = {}, {}
+    for method, frame in forecasts.groupby("method", sort=False):
+        wide = frame.pivot(index=["base_key", "follow_key"], columns="region")
+        methods[method] = wide["forecast_ml"].reindex(index=keys, columns=names).to_numpy()
+        if frame["lower_ml"].notna().any():
+            bounds[method] = np.stack(
+                [wide[c].reindex(index=keys, columns=names).to_numpy()
+                 for c in ("lower_ml", "upper_ml")], -1,
+            )  # fmt: skip
+    missing = int(np.isnan(methods[NETWORKS[1]]).any(axis=1).sum())
+    if missing:
+        raise DataError(f"{out}: {missing} pair(s) have no network forecast in any fold")
+    floor = phantom_floor(Path(work), pairs, names)
+    if floor is not None:
+        methods[FLOOR] = floor
+    errors = error_table(pairs, methods, names).dropna(subset=["forecast_ml"])
+    tests = paired_tests(errors, names, workspace.regions.checks, settings, seed)
+    skill = skill_table(errors, workspace.regions.checks, settings, seed)
+    not_fitted = {}
+    for fold in range(1, saved["folds"] + 1):
+        path = fold_folder(out, fold) / "not_fitted.json"
+        if path.is_file():
+            for method, why in json.loads(path.read_text()).items():
+                not_fitted.setdefault(method, []).append(f"fold {fold}: {why}")
+    return Evaluation(
+        errors=errors,
+        summary=summarise(errors, seed),
+        tests=tests,
+        headlines=with_skill(headlines(tests), skill),
+        skill=skill,
+        coverage=coverage_table(pairs, bounds, names),
+        by_horizon=grouped(errors.assign(horizon=horizon_bins(errors["years"])), "horizon"),
+        by_diagnosis=grouped(errors, "diagnosis"),
+        data={
+            "folds": saved["folds"],
+            "fold_seed": saved["seed"],
+            "participants": len(saved["assignment"]),
+            "forecast_participants": int(pairs["participant_id"].nunique()),
+            "pairs": len(pairs),
+            "horizon_years": [float(pairs["years"].min()), float(pairs["years"].max())],
+            "phantom_floor": floor is not None,
+            "observed_change": settings.observed_change,
+            "primary_region": settings.primary_region,
+            "level": settings.level,
+            "not_fitted": not_fitted,
+        },
+        regions=tuple(names),
+    )
+
+
+# --- subject-specific skill and coverage ---------------------------------------------------
+def annual_change(errors: pd.DataFrame) -> pd.DataFrame:
+    """Per participant, region and method: mean forecast and observed annualised change
+    (% of the baseline volume per year) over the participant's pairs."""
+    base = errors["baseline_ml"] * errors["years"]
+    frame = errors.assign(
+        predicted=100 * (errors["forecast_ml"] - errors["baseline_ml"]) / base,
+        observed=100 * (errors["observed_ml"] - errors["baseline_ml"]) / base,
+    )
+    keys = ["region", "method", "participant_id"]
+    return frame.groupby(keys, sort=False)[["predicted", "observed"]].mean().reset_index()
+
+
+def fit_quality(predicted: np.ndarray, observed: np.ndarray) -> tuple[float, float]:
+    """(calibration slope of observed on predicted, R^2 = 1 - SS_error / SS_observed).
+
+    R^2 is out of sample: it is negative when the forecasts are worse than the observed
+    mean, and the slope is NaN when the forecasts do not vary (no change)."""
+    spread = np.sum((observed - observed.mean()) ** 2)
+    r2 = 1.0 - np.sum((observed - predicted) ** 2) / spread if spread > 0 else np.nan
+    centred = predicted - predicted.mean()
+    scale = np.sum(centred**2)
+    slope = (
+        float(np.sum(centred * (observed - observed.mean())) / scale) if scale > 1e-12 else np.nan
+    )
+    return slope, float(r2)
+
+
+def skill_table(errors: pd.DataFrame, checks, settings: CompareSettings, seed: int):
+    """Per region and method: calibration slope and R^2 of individual annualised change,
+    and for each network variant its R^2 gain over the population field with a
+    participant-cluster bootstrap CI (resampling participants, both R^2 recomputed)."""
+    change = annual_change(errors)
+    rng = seeded_rng(seed, 37)
+    rows = []
+    for (region, method), group in change.groupby(["region", "method"], sort=False):
+        slope, r2 = fit_quality(group["predicted"].to_numpy(), group["observed"].to_numpy())
+        row = {"region": region, "method": method, "participants": len(group),
+               "calibration_slope": slope, "r2": r2, "r2_gain_over_population": np.nan,
+               "gain_ci_low": np.nan, "gain_ci_high": np.nan}  # fmt: skip
+        population = change[(change["region"] == region) & (change["method"] == POPULATION)]
+        if method in NETWORKS and len(population) and region not in checks:
+            both = group.merge(population, on="participant_id", suffixes=("", "_pop"))
+            gain, low, high = r2_gain(both, rng, settings)
+            row |= {"r2_gain_over_population": gain, "gain_ci_low": low, "gain_ci_high": high}
+        rows.append(row)
+    return pd.DataFrame(rows)
+
+
+def r2_gain(both: pd.DataFrame, rng, settings: CompareSettings) -> tuple[float, float, float]:
+    """R^2 of a network minus the population field's on the same participants, with its
+    percentile bootstrap CI over participants."""
+    observed = both["observed"].to_numpy()
+    mine, theirs = both["predicted"].to_numpy(), both["predicted_pop"].to_numpy()
+
+    def gain(index):
+        return (
+            fit_quality(mine[index], observed[index])[1]
+            - fit_quality(theirs[index], observed[index])[1]
+        )
+
+    estimate = gain(np.arange(len(observed)))
+    if len(observed) < 3:
+        return estimate, np.nan, np.nan
+    draws = [gain(rng.integers(0, len(observed), len(observed))) for _ in range(settings.bootstrap)]
+    tail = (1 - settings.level) / 2
+    low, high = np.nanquantile(draws, [tail, 1 - tail])
+    return estimate, float(low), float(high)
+
+
+def with_skill(headline: pd.DataFrame, skill: pd.DataFrame) -> pd.DataFrame:
+    """Subject-specific skill is "shown" only where the network variant is better than the
+    population field (paired errors) *and* its R^2 gain over it has a CI above zero."""
+    gains = skill.set_index(["region", "method"])["gain_ci_low"]
+    out = headline.copy()
+    for index, row in out.iterrows():
+        if row["subject_specific_skill"] == "shown":
+            low = gains.get((row["region"], row["network"]), np.nan)
+            if not (np.isfinite(low) and low > 0):
+                out.loc[index, "subject_specific_skill"] = "not shown (R^2 gain not above zero)"
+    return out
+
+
+def coverage_table(pairs: pd.DataFrame, bounds: dict[str, np.ndarray], names) -> pd.DataFrame:
+    """Share of pairs whose observed follow-up volume lies inside each method's interval,
+    overall, by horizon (whole years) and by diagnosis; the nominal level beside it."""
+    observed = pairs[[f"{r}_follow" for r in names]].to_numpy()
+    horizon = horizon_bins(pairs["years"]).to_numpy()
+    groups = [("all", np.full(len(pairs), "all"))]
+    groups += [("horizon", horizon), ("diagnosis", pairs["diagnosis"].to_numpy())]
+    rows = []
+    for method, interval in bounds.items():
+        inside = (interval[..., 0] <= observed) & (observed <= interval[..., 1])
+        known = np.isfinite(interval).all(axis=-1)
+        for j, region in enumerate(names):
+            for kind, labels in groups:
+                for label in sorted(set(labels)):
+                    chosen = (labels == label) & known[:, j]
+                    if not chosen.any():
+                        continue
+                    rows.append(
+                        {"method": method, "region": region, "grouping": kind, "group": label,
+                         "pairs": int(chosen.sum()),
+                         "participants": int(pairs.loc[chosen, "participant_id"].nunique()),
+                         "coverage": float(inside[chosen, j].mean()), "nominal": LEVEL}
+                    )  # fmt: skip
+    return pd.DataFrame(rows)
+
+
+# --- the command ---------------------------------------------------------------------------
+def evaluate(
+    work: str | os.PathLike[str],
+    out: str | os.PathLike[str],
+    folds: int = 5,
+    config: TrainConfig | None = None,
+    fold: int | None = None,
+    jobs: int = 1,
+    seed: int = 0,
+    settings: CompareSettings | None = None,
+    progress=None,
+) -> Evaluation | None:
+    """Cross-validate on a prepared workspace into ``out``.
+
+    With ``fold``, only that fold is run (None returned); without, every unfinished fold
+    is run and the folds are collected. ``config`` defaults to ``configs/train.toml``,
+    ``settings`` (primary region, CI level, observed change) to ``configs/compare.toml``.
+    """
+    out = Path(out)
+    config = config or TrainConfig.from_toml()
+    settings = settings or CompareSettings.from_toml()
+    saved = start_folds(read_workspace(work).volumes, out, folds, seed)
+    if fold is not None:
+        if not 1 <= fold <= saved["folds"]:
+            raise DataError(f"--fold must be within 1..{saved['folds']}, got {fold}")
+        run_fold(work, out, fold, config, seed, jobs, progress)
+        return None
+    for k in range(1, saved["folds"] + 1):
+        run_fold(work, out, k, config, seed, jobs, progress)
+    return collect(work, out, settings, seed)

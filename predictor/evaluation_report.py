@@ -1,0 +1,216 @@
+"""The cross-validation report: TSVs, a forest plot and one self-contained HTML page.
+
+The page leads with the forest plot (per region, the network minus each
+comparator, with its participant-cluster CI) and one table of regions by
+methods; the plain-words verdicts follow, and the long tables sit in
+collapsed sections and in the TSVs beside the page. Numbers on the page are
+read back from the TSVs and tagged with the cell they show, as in the
+comparison report (:mod:`predictor.report`).
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from predictor.cautions import CAUTION
+from predictor.compare import FLOOR, NETWORKS, POPULATION
+from predictor.evaluate import Evaluation
+from predictor.figures import pyplot, save_figure
+from predictor.files import write_json, write_text, write_tsv
+from predictor.report import STYLE, VARIANT_WORDS, method_colours, observed_note, table_html
+
+TABLES = (
+    "summary", "headlines", "tests", "skill", "coverage", "errors", "by_horizon", "by_diagnosis",
+)  # fmt: skip
+NO_CHANGE = "no-change"
+DETAILS = {
+    "tests": "Network minus each comparator, per participant (% of total brain volume)",
+    "skill": "Subject-specific skill: calibration slope and R^2 of individual annualised change",
+    "coverage": "Coverage of the 90% intervals, overall, by horizon and by diagnosis",
+    "by_horizon": "Mean |error| by horizon",
+    "by_diagnosis": "Mean |error| by diagnosis",
+}
+
+
+def write_evaluation(evaluation: Evaluation, out: str | Path) -> Path:
+    """Write the TSVs, ``evaluation.json``, ``forest.png`` and ``evaluation.html``."""
+    out = Path(out)
+    for name in TABLES:
+        write_tsv(out / f"{name}.tsv", getattr(evaluation, name))
+    write_json(out / "evaluation.json", evaluation.data)
+    tables = {name: pd.read_csv(out / f"{name}.tsv", sep="\t") for name in TABLES}
+    save_figure(figure_forest(tables["tests"]), out / "forest.png")
+    glance = pivot_summary(tables["summary"], evaluation.regions)
+    write_tsv(out / "at_a_glance.tsv", glance)
+    tables["at_a_glance"] = pd.read_csv(out / "at_a_glance.tsv", sep="\t")
+    return write_text(out / "evaluation.html", render(tables, evaluation.data, out))
+
+
+def pivot_summary(summary: pd.DataFrame, regions) -> pd.DataFrame:
+    """Regions (rows) by methods (columns): mean |error| in % of total brain volume."""
+    table = summary.pivot(index="region", columns="method", values="mean_pct_tbv")
+    methods = list(dict.fromkeys(summary["method"]))
+    return table.reindex(index=list(regions), columns=methods).reset_index()
+
+
+def figure_forest(tests: pd.DataFrame):
+    """Per target region (rows) and network variant (panels): the mean participant-level
+    difference network minus each comparator (% TBV) with its CI; left of zero the
+    network is better."""
+    plt = pyplot()
+    targets = tests[tests["role"] != "check"]
+    regions = list(dict.fromkeys(targets["region"]))
+    comparators = list(dict.fromkeys(targets["comparator"]))
+    colours = method_colours(comparators)
+    figure, axes = plt.subplots(
+        1, len(NETWORKS), figsize=(13, 1.0 + 0.55 * len(regions) * max(1, len(comparators) / 4)),
+        sharey=True, squeeze=False,
+    )  # fmt: skip
+    step = 0.8 / max(len(comparators), 1)
+    for axis, variant in zip(axes[0], NETWORKS, strict=True):
+        own = targets[targets["network"] == variant]
+        for k, comparator in enumerate(comparators):
+            rows = own[own["comparator"] == comparator].set_index("region").reindex(regions)
+            y = np.arange(len(regions)) + (k - (len(comparators) - 1) / 2) * step
+            low = (rows["difference_pct_tbv"] - rows["ci_low_pct_tbv"]).clip(lower=0).fillna(0)
+            high = (rows["ci_high_pct_tbv"] - rows["difference_pct_tbv"]).clip(lower=0).fillna(0)
+            axis.errorbar(
+                rows["difference_pct_tbv"], y, xerr=[low, high], fmt="o", ms=4,
+                color=colours[comparator], label=f"minus {comparator}", capsize=2,
+            )  # fmt: skip
+        axis.axvline(0.0, color="#333333", lw=0.9)
+        axis.set_yticks(np.arange(len(regions)), [r.replace("_", " ") for r in regions])
+        axis.invert_yaxis()
+        axis.set_xlabel("network minus comparator, mean |error| (% TBV); < 0: network better")
+        axis.set_title(variant, fontsize=10)
+        axis.grid(alpha=0.3, axis="x")
+    axes[0][-1].legend(fontsize=7, loc="lower right")
+    figure.suptitle(
+        "cross-validated difference in forecast error, participant-cluster 95% CI "
+        "(research use only)", fontsize=11,
+    )  # fmt: skip
+    figure.tight_layout()
+    return figure
+
+
+def region_words(tests: pd.DataFrame, headlines: pd.DataFrame, skill: pd.DataFrame) -> str:
+    """Per target region and network variant, in plain words: skill beyond the population
+    field, and standing against the regressions, with the CIs."""
+    items = []
+    for region, rows in headlines.groupby("region", sort=False):
+        if rows["role"].iloc[0] == "check":
+            items.append(f"<li><b>{_name(region)}</b>: a check, not a region to win.</li>")
+            continue
+        parts = []
+        for row in rows.itertuples(index=False):
+            own = tests[(tests["region"] == region) & (tests["network"] == row.network)]
+            words = f"{VARIANT_WORDS[row.network]}: "
+            population = own[own["comparator"] == POPULATION]
+            if len(population):
+                gain = skill[(skill["region"] == region) & (skill["method"] == row.network)]
+                words += (
+                    f"subject-specific skill {row.subject_specific_skill} (error minus the "
+                    f"population field's {_difference(population.iloc[0])}"
+                    + (f"; R^2 gain {_gain(gain.iloc[0])}" if len(gain) else "")
+                    + "); "
+                )
+            regressions = own[~own["comparator"].isin([POPULATION, NO_CHANGE])]
+            better = regressions[regressions["verdict"] == "network better"]["comparator"]
+            worse = regressions[regressions["verdict"] == "comparator better"]["comparator"]
+            if len(worse):
+                words += "worse than " + ", ".join(worse)
+            elif len(better) == len(regressions) and len(regressions):
+                words += "better than every regression"
+            else:
+                words += f"better than {len(better)} of {len(regressions)} regressions"
+            closest = regressions.loc[regressions["difference_pct_tbv"].idxmax()] if len(
+                regressions) else None  # fmt: skip
+            if closest is not None:
+                words += f" (against {closest['comparator']}: {_difference(closest)})"
+            parts.append(html.escape(words))
+        role = " (primary endpoint)" if rows["role"].iloc[0] == "primary" else ""
+        items.append(f"<li><b>{_name(region)}</b>{role}: " + "<br>".join(parts) + "</li>")
+    return "<ul>" + "".join(items) + "</ul>"
+
+
+def _name(region: str) -> str:
+    return html.escape(region.replace("_", " "))
+
+
+def _difference(row) -> str:
+    return (
+        f"{row['difference_pct_tbv']:+.3f} % TBV [{row['ci_low_pct_tbv']:+.3f}, "
+        f"{row['ci_high_pct_tbv']:+.3f}]"
+    )
+
+
+def _gain(row) -> str:
+    return (
+        f"{row['r2_gain_over_population']:+.2f} [{row['gain_ci_low']:+.2f}, "
+        f"{row['gain_ci_high']:+.2f}]"
+    )
+
+
+def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
+    encoded = base64.b64encode((out / "forest.png").read_bytes()).decode("ascii")
+    floor = (
+        f" The column <i>{FLOOR}</i> is the phantom generator's best forecast from what is "
+        "visible at baseline."
+        if data["phantom_floor"]
+        else ""
+    )
+    not_fitted = "".join(
+        f"<li>{html.escape(method)}: {html.escape('; '.join(why))}</li>"
+        for method, why in data["not_fitted"].items()
+    )
+    parts = [
+        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+        "<title>predictor: cross-validated evaluation</title>",
+        f"<style>{STYLE}</style></head><body>",
+        "<h1>Cross-validated evaluation: image forecast against its comparators</h1>",
+        f"<p class='caution'><b>Caution.</b> {html.escape(CAUTION)}</p>",
+        f"<p>{data['folds']}-fold cross-validation at the participant level (stratified by "
+        f"diagnosis, seed {data['fold_seed']}): {data['forecast_participants']} of "
+        f"{data['participants']} participants had a follow-up and were forecast once, while "
+        f"held out, over {data['pairs']} baseline-to-follow-up pairs at horizons of "
+        f"{data['horizon_years'][0]:.2f} to {data['horizon_years'][1]:.2f} years. Every "
+        "comparator was fitted on the same training folds. The primary endpoint, named "
+        f"before the run in configs/compare.toml, is <b>{_name(data['primary_region'])}</b> "
+        "(all horizons, each participant's mean error). "
+        f"{observed_note(data)}</p>",
+        f"<figure><img alt='forest plot' src='data:image/png;base64,{encoded}'><figcaption>"
+        "Network minus each comparator: the mean over participants of the difference in "
+        "their mean absolute error (% of total brain volume), with its participant-cluster "
+        "bootstrap 95% CI. Left of zero the network is better.</figcaption></figure>",
+        f"<h2>Mean absolute error (% of total brain volume), regions by methods</h2><p>{floor}"
+        " No scan-rescan noise floor is shown: the workspace has no same-day rescans.</p>",
+        table_html(tables["at_a_glance"], "at_a_glance.tsv"),
+        "<h2>Region by region</h2>",
+        "<p>A method is better or worse only where the CI of the participant-level "
+        "difference excludes zero and the exact sign test over participants is below 0.05 "
+        "(Holm-adjusted except for the primary endpoint). Subject-specific skill is shown "
+        "only where the network beats the population field (the same training fed the "
+        "template, so it knows only age, sex and diagnosis) and its R^2 of individual "
+        "annualised change exceeds the population field's with a CI above zero.</p>",
+        region_words(tables["tests"], tables["headlines"], tables["skill"]),
+    ]
+    if not_fitted:
+        parts.append(f"<h2>Forecasters not fitted on some folds</h2><ul>{not_fitted}</ul>")
+    for name, title in DETAILS.items():
+        parts.append(
+            f"<details><summary>{html.escape(title)} ({name}.tsv)</summary>"
+            f"{table_html(tables[name], f'{name}.tsv')}</details>"
+        )
+    parts.append(
+        f"<p class='caution'>{html.escape(CAUTION)} Every number on this page is in the TSV "
+        "files beside it; errors.tsv holds every pair's forecast and error.</p>"
+    )
+    parts.append(f"<script type='application/json' id='data'>{json.dumps(data)}</script>")
+    parts.append("</body></html>")
+    return "\n".join(parts)
