@@ -410,6 +410,70 @@ def compare(
     typer.echo(CAUTION)
 
 
+@app.command()
+@reports_errors
+def evaluate(
+    work: Annotated[Path, typer.Argument(help="A prepared workspace (predictor prepare).")],
+    out: Annotated[Path, typer.Argument(help="Evaluation folder: one folder per fold, report.")],
+    folds: Annotated[int, typer.Option(min=2, help="Folds K (participants, by diagnosis).")] = 5,
+    config: Annotated[
+        Path | None, typer.Option(help="Training TOML (default: configs/train.toml).")
+    ] = None,
+    fold: Annotated[
+        int | None,
+        typer.Option(min=1, help="Run only this fold (a cluster array task); then collect "
+                     "with a run without --fold."),
+    ] = None,
+    jobs: Annotated[int, typer.Option(min=1, help="Participants forecast in parallel.")] = 1,
+    seed: Annotated[int, typer.Option(help="Seed of the folds, training and bootstrap.")] = 0,
+    scan_volumes: Annotated[
+        bool,
+        typer.Option(help="Also measure the network's forecast scans like real follow-ups "
+                     "(the slowest step); its own Jacobian-integral volumes are always scored."),
+    ] = True,
+) -> None:
+    """Cross-validate the network against the population field and the regressions.
+
+    Participants are dealt into K folds (stratified by diagnosis; folds.json).
+    Each fold trains the network and a population-field network (template as
+    image input) on the other folds, with an inner validation draw for early
+    stopping, fits every regression on the same folds, and forecasts its own
+    participants' pairs. Rerunning continues a killed run. Errors are in % of
+    total brain volume; statistics are per participant (cluster bootstrap CIs,
+    sign tests, Holm); the primary endpoint is named in configs/compare.toml.
+    """
+    from predictor.evaluate import evaluate as run_evaluation
+    from predictor.evaluation_report import write_evaluation
+    from predictor.training import TrainConfig
+
+    progress, advance = progress_bar("held-out participants", None)
+    with progress:
+        evaluation = run_evaluation(
+            work, out, folds, TrainConfig.from_toml(config), fold, jobs, seed,
+            measure=scan_volumes, progress=advance,
+        )  # fmt: skip
+    if evaluation is None:
+        typer.echo(f"fold {fold} done in {out}; run without --fold to collect")
+        return
+    page = write_evaluation(evaluation, out)
+    typer.echo(evaluation_text(evaluation))
+    typer.echo(f"report: {page}")
+    typer.echo(CAUTION)
+
+
+def evaluation_text(evaluation) -> str:
+    """One line per target region: the verdict and subject-specific skill of the network's
+    own (Jacobian-integral) volumes."""
+    lines = []
+    rows = evaluation.headlines[evaluation.headlines["network"] == "network-jacobian"]
+    for row in rows.itertuples(index=False):
+        if row.role != "check":
+            lines.append(
+                f"{row.region}: {row.verdict}; subject-specific skill {row.subject_specific_skill}"
+            )
+    return "\n".join(lines)
+
+
 @app.command("trial-size")
 @reports_errors
 def trial_size(

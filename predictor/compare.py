@@ -37,7 +37,7 @@ from predictor.longitudinal import observed_by_registration
 from predictor.nifti import load_scan
 from predictor.pairs import SETS, visit_pairs
 from predictor.parallel import run_all
-from predictor.regions import TOTAL_BRAIN
+from predictor.regions import TOTAL_BRAIN, RegionSet
 from predictor.regression import all_forecasters, baseline_rows, check_table
 from predictor.rng import seeded_rng
 from predictor.workspace import Layout, ScanFiles, read_workspace
@@ -129,12 +129,18 @@ def _grid_arrays(files: ScanFiles):
 
 
 def network_pairs(
-    model_dir: str, work: str, pairs: pd.DataFrame, population_dir: str | None = None
+    model_dir: str,
+    work: str,
+    pairs: pd.DataFrame,
+    population_dir: str | None = None,
+    measure: bool = True,
 ) -> list[dict]:
     """Network forecasts of one participant's pairs (same baseline), measured like real scans.
 
     Returns one dict per pair: measured and Jacobian volumes (mL) and the
-    image agreement of the forecast and of no change with the real follow-up;
+    image agreement of the forecast and of no change with the real follow-up
+    (without ``measure``, only the Jacobian volumes: the forecast scans are not
+    measured, the slowest step);
     with ``population_dir``, the population-field model's Jacobian volumes of
     the participant's own regions (``population_<region>``); the longest-horizon
     pair also carries its working-grid images (``example``).
@@ -158,15 +164,19 @@ def network_pairs(
     base_t1, base_mask, base_tissue = _grid_arrays(layout.scan(first.base_key))
     rows = []
     for horizon, pair in zip(result.horizons, pairs.itertuples(index=False), strict=True):
-        measured = prepare_for(model, replace(scan, data=horizon.image))
-        follow_t1, follow_mask, follow_tissue = _grid_arrays(layout.scan(pair.follow_key))
-        mask = base_mask | follow_mask
         row = {"base_key": pair.base_key, "follow_key": pair.follow_key}
         for region in model.info.region_set.names:
-            row[f"measured_{region}"] = measured.volumes[region]
             row[f"jacobian_{region}"] = float(jacobian.loc[(region, horizon.years)])
             if population is not None:
                 row[f"population_{region}"] = float(population.loc[(region, horizon.years)])
+        if not measure:
+            rows.append(row)
+            continue
+        measured = prepare_for(model, replace(scan, data=horizon.image))
+        follow_t1, follow_mask, follow_tissue = _grid_arrays(layout.scan(pair.follow_key))
+        mask = base_mask | follow_mask
+        for region in model.info.region_set.names:
+            row[f"measured_{region}"] = measured.volumes[region]
         network = image_agreement(
             measured.grid_t1, measured.grid_tissue, follow_t1, follow_tissue, mask
         )
@@ -193,20 +203,23 @@ def baseline_pairs(volumes: pd.DataFrame, participants, regions) -> pd.DataFrame
 
 
 def regression_forecasts(
-    volumes, train, pairs, names, coding, seed: int, jobs: int
+    volumes, train, pairs, regions: RegionSet, coding, seed: int, jobs: int
 ) -> tuple[dict[str, np.ndarray], dict[str, str]]:
-    """Every regression forecaster fitted on ``train`` participants.
+    """Every regression forecaster fitted on ``train`` participants, on every region of
+    ``regions`` (ridge and SVR see every baseline volume over the intracranial volume).
 
     Returns ({method: (P, R, 3) mean, lower and upper 90% bound in mL}, {method: why it
     could not be fitted}): a forecaster that cannot be fitted on these participants (too
     few for its parameters) is left out with its reason, and never stops the comparison.
     """
+    names = regions.names
     table = volumes[volumes["participant_id"].isin(set(train))]
     starts = baseline_rows(check_table(volumes[volumes["key"].isin(pairs["base_key"])], names))
     horizons = sorted(set(pairs["years"]))
     keys = list(zip(pairs["participant_id"], pairs["years"], strict=True))
     out, not_fitted = {}, {}
-    for name, forecaster in all_forecasters(seed=seed, jobs=jobs, coding=coding).items():
+    forecasters = all_forecasters(seed, regions.head_size, jobs, coding)
+    for name, forecaster in forecasters.items():
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RuntimeWarning)
@@ -311,7 +324,7 @@ def compare(
     if population_dir is not None:
         methods[POPULATION] = pairs[[f"population_{r}" for r in names]].to_numpy()
     regressions, not_fitted = regression_forecasts(
-        volumes, split["train"], pairs, names, workspace.cohort, seed, jobs
+        volumes, split["train"], pairs, workspace.regions, workspace.cohort, seed, jobs
     )
     methods |= {name: values[..., 0] for name, values in regressions.items()}
     floor = phantom_floor(Path(work), pairs, names)
@@ -481,7 +494,7 @@ def paired_tests(errors: pd.DataFrame, names, checks, settings: CompareSettings,
     comparators = [m for m in methods if m not in (*NETWORKS, FLOOR)]
     rng = seeded_rng(seed, 19)
     rows = []
-    for variant in NETWORKS:
+    for variant in [v for v in NETWORKS if v in methods]:
         for comparator in comparators:
             family = []
             for region in names:

@@ -31,6 +31,7 @@ import pandas as pd
 
 from predictor.compare import (
     FLOOR,
+    JACOBIAN,
     NETWORK,
     NETWORKS,
     POPULATION,
@@ -169,9 +170,13 @@ def fold_folder(out: Path, fold: int) -> Path:
     return Path(out) / f"fold-{fold}"
 
 
-def run_fold(work, out: Path, fold: int, config: TrainConfig, seed: int, jobs: int, progress=None):
+def run_fold(
+    work, out: Path, fold: int, config: TrainConfig, seed: int, jobs: int,
+    measure: bool = True, progress=None,
+):  # fmt: skip
     """Train fold ``fold``'s two models (resuming) and forecast its participants' pairs.
 
+    ``measure``: also measure the network's forecast scans like real ones (slowest step).
     Writes ``fold-<k>/forecasts.tsv`` last, atomically; a fold that has it is done.
     """
     folder = fold_folder(out, fold)
@@ -193,20 +198,22 @@ def run_fold(work, out: Path, fold: int, config: TrainConfig, seed: int, jobs: i
         groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
         arguments = [
             (str((folder / "network").resolve()), str(Path(work).resolve()), group,
-             str((folder / "population").resolve()))
+             str((folder / "population").resolve()), measure)
             for group in groups
         ]  # fmt: skip
         measured = pd.DataFrame(
             [row for rows in run_all(network_pairs, arguments, jobs, progress) for row in rows]
         )
         measured = pairs.merge(measured, on=["base_key", "follow_key"], validate="one_to_one")
-        for method, prefix in ((NETWORK, "measured_"), (NETWORKS[1], "jacobian_"),
+        for method, prefix in ((NETWORK, "measured_"), (JACOBIAN, "jacobian_"),
                                (POPULATION, "population_")):  # fmt: skip
+            if f"{prefix}{names[0]}" not in measured:
+                continue
             values = measured[[f"{prefix}{r}" for r in names]].to_numpy()
             rows.append(_long(measured, method, names, values, None))
         regressions, not_fitted = regression_forecasts(
-            volumes, split["train"] + split["validation"], pairs, names, workspace.cohort,
-            seed, jobs,
+            volumes, split["train"] + split["validation"], pairs, workspace.regions,
+            workspace.cohort, seed, jobs,
         )  # fmt: skip
         for method, values in regressions.items():
             rows.append(_long(pairs, method, names, values[..., 0], values[..., 1:]))
@@ -292,7 +299,7 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
                 [wide[c].reindex(index=keys, columns=names).to_numpy()
                  for c in ("lower_ml", "upper_ml")], -1,
             )  # fmt: skip
-    missing = int(np.isnan(methods[NETWORKS[1]]).any(axis=1).sum())
+    missing = int(np.isnan(methods[JACOBIAN]).any(axis=1).sum())
     if missing:
         raise DataError(f"{out}: {missing} pair(s) have no network forecast in any fold")
     floor = phantom_floor(Path(work), pairs, names)
@@ -452,6 +459,7 @@ def evaluate(
     jobs: int = 1,
     seed: int = 0,
     settings: CompareSettings | None = None,
+    measure: bool = True,
     progress=None,
 ) -> Evaluation | None:
     """Cross-validate on a prepared workspace into ``out``.
@@ -459,6 +467,8 @@ def evaluate(
     With ``fold``, only that fold is run (None returned); without, every unfinished fold
     is run and the folds are collected. ``config`` defaults to ``configs/train.toml``,
     ``settings`` (primary region, CI level, observed change) to ``configs/compare.toml``.
+    Without ``measure`` the network's forecast scans are not measured (only its own
+    Jacobian-integral volumes are scored), which saves most of the forecasting time.
     """
     out = Path(out)
     config = config or TrainConfig.from_toml()
@@ -467,8 +477,8 @@ def evaluate(
     if fold is not None:
         if not 1 <= fold <= saved["folds"]:
             raise DataError(f"--fold must be within 1..{saved['folds']}, got {fold}")
-        run_fold(work, out, fold, config, seed, jobs, progress)
+        run_fold(work, out, fold, config, seed, jobs, measure, progress)
         return None
     for k in range(1, saved["folds"] + 1):
-        run_fold(work, out, k, config, seed, jobs, progress)
+        run_fold(work, out, k, config, seed, jobs, measure, progress)
     return collect(work, out, settings, seed)

@@ -60,43 +60,54 @@ def pivot_summary(summary: pd.DataFrame, regions) -> pd.DataFrame:
 
 
 def figure_forest(tests: pd.DataFrame):
-    """Per target region (rows) and network variant (panels): the mean participant-level
-    difference network minus each comparator (% TBV) with its CI; left of zero the
-    network is better."""
+    """One panel per target region (rows) and network variant (columns), each on its own
+    scale: the mean participant-level difference network minus each comparator (% TBV)
+    with its CI. Left of zero the network is better."""
     plt = pyplot()
     targets = tests[tests["role"] != "check"]
     regions = list(dict.fromkeys(targets["region"]))
+    variants = [v for v in NETWORKS if v in set(targets["network"])]
     comparators = list(dict.fromkeys(targets["comparator"]))
-    colours = method_colours(comparators)
+    colours = comparator_colours(comparators)
     figure, axes = plt.subplots(
-        1, len(NETWORKS), figsize=(13, 1.0 + 0.55 * len(regions) * max(1, len(comparators) / 4)),
-        sharey=True, squeeze=False,
+        len(regions), len(variants), squeeze=False, sharey=True,
+        figsize=(12, 0.6 + (0.3 * len(comparators) + 0.5) * len(regions)),
     )  # fmt: skip
-    step = 0.8 / max(len(comparators), 1)
-    for axis, variant in zip(axes[0], NETWORKS, strict=True):
-        own = targets[targets["network"] == variant]
-        for k, comparator in enumerate(comparators):
-            rows = own[own["comparator"] == comparator].set_index("region").reindex(regions)
-            y = np.arange(len(regions)) + (k - (len(comparators) - 1) / 2) * step
-            low = (rows["difference_pct_tbv"] - rows["ci_low_pct_tbv"]).clip(lower=0).fillna(0)
-            high = (rows["ci_high_pct_tbv"] - rows["difference_pct_tbv"]).clip(lower=0).fillna(0)
-            axis.errorbar(
-                rows["difference_pct_tbv"], y, xerr=[low, high], fmt="o", ms=4,
-                color=colours[comparator], label=f"minus {comparator}", capsize=2,
-            )  # fmt: skip
-        axis.axvline(0.0, color="#333333", lw=0.9)
-        axis.set_yticks(np.arange(len(regions)), [r.replace("_", " ") for r in regions])
-        axis.invert_yaxis()
-        axis.set_xlabel("network minus comparator, mean |error| (% TBV); < 0: network better")
-        axis.set_title(variant, fontsize=10)
-        axis.grid(alpha=0.3, axis="x")
-    axes[0][-1].legend(fontsize=7, loc="lower right")
+    y = np.arange(len(comparators))
+    for row, region in enumerate(regions):
+        for column, variant in enumerate(variants):
+            axis = axes[row][column]
+            own = targets[(targets["region"] == region) & (targets["network"] == variant)]
+            own = own.set_index("comparator").reindex(comparators)
+            difference = own["difference_pct_tbv"]
+            low = (difference - own["ci_low_pct_tbv"]).clip(lower=0).fillna(0)
+            high = (own["ci_high_pct_tbv"] - difference).clip(lower=0).fillna(0)
+            for k, comparator in enumerate(comparators):
+                axis.errorbar(difference.iloc[k], y[k], xerr=[[low.iloc[k]], [high.iloc[k]]],
+                              fmt="o", ms=4, color=colours[comparator], capsize=2)  # fmt: skip
+            axis.axvline(0.0, color="#333333", lw=0.9)
+            axis.set_yticks(y, [f"minus {c}" for c in comparators], fontsize=7)
+            axis.tick_params(axis="x", labelsize=7)
+            axis.grid(alpha=0.3, axis="x")
+            axis.set_title(f"{region.replace('_', ' ')}: {variant}", fontsize=9)
+        axes[row][0].invert_yaxis()
+    for axis in axes[-1]:
+        axis.set_xlabel("network minus comparator, mean |error| (% TBV); < 0: network better",
+                        fontsize=8)  # fmt: skip
     figure.suptitle(
         "cross-validated difference in forecast error, participant-cluster 95% CI "
         "(research use only)", fontsize=11,
     )  # fmt: skip
     figure.tight_layout()
     return figure
+
+
+def comparator_colours(comparators) -> dict[str, str]:
+    """The population field and no change get colours of their own; regressions the
+    comparison report's palette."""
+    regressions = [c for c in comparators if c not in (POPULATION, NO_CHANGE)]
+    colours = method_colours(regressions)
+    return colours | {POPULATION: "#c0392b", NO_CHANGE: "#7f7f7f"}
 
 
 def region_words(tests: pd.DataFrame, headlines: pd.DataFrame, skill: pd.DataFrame) -> str:

@@ -146,6 +146,12 @@ class RegionSet:
             region.name for region in self.regions if region.reference or region.name == TOTAL_BRAIN
         )
 
+    @property
+    def head_size(self) -> str | None:
+        """The first reference region (the intracranial volume): the divisor that makes
+        baseline volumes head-size corrected features of the regressions; None without one."""
+        return next((region.name for region in self.regions if region.reference), None)
+
     @cached_property
     def fingerprint(self) -> str:
         return hashlib.sha256(json.dumps(self.raw, sort_keys=True).encode()).hexdigest()[:16]

@@ -34,6 +34,8 @@ Z90 = float(stats.norm.ppf(0.5 + LEVEL / 2))
 CALIBRATION_SHARE = 0.25
 #: horizon (years) below which conformal scores are not scaled down further
 MIN_SCALE_YEARS = 0.5
+#: fixed-effects designs of the mixed model, largest first (see MixedEffectsForecaster)
+DESIGNS = ("age-by-time", "diagnosis-by-time", "rate")
 PREDICTION_COLUMNS = (
     "participant_id",
     "region",
@@ -57,6 +59,15 @@ class Pairs:
     age: np.ndarray  # baseline age, years
     sex: np.ndarray  # (P, S - 1) indicators of the sex codes after the reference
     diagnosis: np.ndarray  # labels
+    context: np.ndarray  # (P, M) every region's baseline volume / intracranial volume
+
+
+def baseline_context(frame: pd.DataFrame, regions: Sequence[str], icv: str | None) -> np.ndarray:
+    """(N, M) baseline volumes of ``regions`` (other than ``icv``), each divided by the
+    intracranial volume ``icv`` when given (head-size corrected fractions), else in mL."""
+    names = [region for region in regions if region != icv]
+    values = frame[names].to_numpy(float)
+    return values / frame[[icv]].to_numpy(float) if icv else values
 
 
 def check_table(table: pd.DataFrame, regions: Sequence[str]) -> pd.DataFrame:
@@ -84,8 +95,11 @@ def baseline_rows(table: pd.DataFrame) -> pd.DataFrame:
     return table.groupby("participant_id", sort=True).head(1).reset_index(drop=True)
 
 
-def make_pairs(table: pd.DataFrame, region: str, coding: CohortSettings) -> Pairs:
-    """All (first visit -> later visit) pairs of a checked table for one region."""
+def make_pairs(
+    table: pd.DataFrame, region: str, coding: CohortSettings, regions=(), icv: str | None = None
+) -> Pairs:
+    """All (first visit -> later visit) pairs of a checked table for one region; their
+    context holds the baseline of every one of ``regions`` (see :func:`baseline_context`)."""
     first = baseline_rows(table).set_index("participant_id")
     later = table[table["years"] > 0]
     base = first.loc[later["participant_id"]]
@@ -97,6 +111,7 @@ def make_pairs(table: pd.DataFrame, region: str, coding: CohortSettings) -> Pair
         age=base["age"].to_numpy(float),
         sex=coding.sex_indicators(base["sex"].to_numpy()),
         diagnosis=base["diagnosis"].to_numpy(),
+        context=baseline_context(base, regions, icv),
     )
 
 
@@ -197,14 +212,24 @@ def ordered_labels(values, coding: CohortSettings) -> list[str]:
 
 # --- split-conformal forecasters ---------------------------------------------------------
 class ConformalForecaster:
-    """Base: a point model of each region's change with split-conformal 90% intervals."""
+    """Base: a point model of each region's change with split-conformal 90% intervals.
+
+    ``icv_column``: the intracranial volume that divides every baseline regional volume
+    in the pairs' context (the features of the feature forecasters)."""
 
     name = "base"
 
-    def __init__(self, seed: int = 0, trim: float = 0.0, coding: CohortSettings | None = None):
+    def __init__(
+        self,
+        seed: int = 0,
+        trim: float = 0.0,
+        coding: CohortSettings | None = None,
+        icv_column: str | None = None,
+    ):
         self.seed = seed
         self.trim = trim
         self.coding = coding
+        self.icv_column = icv_column
 
     # subclasses implement these two on Pairs
     def _fit_point(self, pairs: Pairs):
@@ -214,13 +239,15 @@ class ConformalForecaster:
         raise NotImplementedError
 
     def fit(self, table: pd.DataFrame, regions: Sequence[str]) -> ConformalForecaster:
+        if self.icv_column and self.icv_column not in regions:
+            regions = [*regions, self.icv_column]
         table = check_table(table, regions)
         self.coding_ = self.coding or CohortSettings.from_toml()
         self.regions_ = list(regions)
         self.labels_ = ordered_labels(table["diagnosis"], self.coding_)
         self.models_, self.quantiles_ = {}, {}
         for region in self.regions_:
-            pairs = make_pairs(table, region, self.coding_)
+            pairs = make_pairs(table, region, self.coding_, self.regions_, self.icv_column)
             if len(np.unique(pairs.participant)) < 4:
                 raise DataError(
                     f"region '{region}': fewer than 4 participants with a follow-up visit"
@@ -252,6 +279,7 @@ class ConformalForecaster:
                 age=grid["age"].to_numpy(float),
                 sex=self.coding_.sex_indicators(grid["sex"].to_numpy()),
                 diagnosis=grid["diagnosis"].to_numpy(),
+                context=baseline_context(grid, self.regions_, self.icv_column),
             )
             mean = np.where(
                 request.years == 0,
@@ -316,14 +344,15 @@ class PopulationRateForecaster(ConformalForecaster):
 
 
 class _FeatureForecaster(ConformalForecaster):
-    """Learns the relative change from baseline volume, age, sex, diagnosis and horizon."""
+    """Learns the relative change from the baseline volumes of every region (divided by the
+    intracranial volume when ``icv_column`` is given), age, sex, diagnosis and horizon."""
 
     def _estimator(self):
         raise NotImplementedError
 
     def _features(self, pairs: Pairs) -> np.ndarray:
         groups = np.stack([(pairs.diagnosis == label).astype(float) for label in self.labels_], 1)
-        static = np.column_stack([pairs.baseline_ml, pairs.age, pairs.sex, groups])
+        static = np.column_stack([pairs.baseline_ml, pairs.context, pairs.age, pairs.sex, groups])
         return np.column_stack([static, static * pairs.years[:, None], pairs.years])
 
     def _fit_point(self, pairs):
@@ -433,11 +462,16 @@ def fit_mixed(volume, exog, participants, years, diagnosis, trim, method) -> Mix
 class MixedEffectsForecaster:
     """Linear mixed effects (statsmodels MixedLM), one model per region.
 
-    volume ~ baseline age + years * diagnosis + sex (+ intracranial volume),
-    with a random intercept and a random slope in years per participant,
-    fitted by REML with Powell's method. A new participant's random effects
-    are predicted from its baseline volume (BLUP), so its forecast starts
-    from its own volume, not the population mean.
+    volume ~ baseline age * years + years * diagnosis + sex (+ intracranial
+    volume), with a random intercept and a random slope in years per
+    participant, fitted by REML with Powell's method (the "age-by-time"
+    design; see :data:`DESIGNS` for the smaller ones). A new participant's
+    random effects are predicted from its baseline volume (BLUP), so its
+    forecast starts from its own volume, not the population mean.
+
+    With ``fallback``, a table with too few participants for the design gets
+    the next smaller design that it can carry, with a RuntimeWarning saying so
+    (training priors use this); without, it raises DataError.
     """
 
     name = "mixed-effects"
@@ -449,27 +483,36 @@ class MixedEffectsForecaster:
         method: str = "powell",
         jobs: int = 1,
         coding: CohortSettings | None = None,
+        design: str = "age-by-time",
+        fallback: bool = False,
     ):
+        if design not in DESIGNS:
+            raise ValueError(f"design must be one of {list(DESIGNS)}; '{design}' was given")
         self.icv_column = icv_column
         self.trim = trim
         self.method = method
         self.jobs = jobs
         self.coding = coding
+        self.design = design
+        self.fallback = fallback
 
     def _design(self, frame: pd.DataFrame, years: np.ndarray) -> np.ndarray:
-        """Fixed-effects design (N, K): 1, age, sex, dx dummies, years, years * dx [, icv]."""
+        """Fixed-effects design (N, K) of :attr:`design_`: 1, age, sex, dx dummies, years,
+        years * dx, years * age [, icv] for "age-by-time"; without years * age for
+        "diagnosis-by-time"; 1, years [, icv] for "rate"."""
+        columns = [np.ones(len(frame))]
+        age = frame["baseline_age"].to_numpy(float) - self.age_ref_
         dummies = np.stack(
             [(frame["diagnosis"].to_numpy() == label).astype(float) for label in self.labels_[1:]],
             1,
         ).reshape(len(frame), -1)
-        columns = [
-            np.ones(len(frame)),
-            frame["baseline_age"].to_numpy(float) - self.age_ref_,
-            self.coding_.sex_indicators(frame["sex"].to_numpy()),
-            dummies,
-            years,
-            dummies * years[:, None],
-        ]
+        if self.design_ != "rate":
+            columns += [age, self.coding_.sex_indicators(frame["sex"].to_numpy()), dummies]
+        columns.append(years)
+        if self.design_ != "rate":
+            columns.append(dummies * years[:, None])
+        if self.design_ == "age-by-time":
+            columns.append(age * years)
         if self.icv_column:
             columns.append(frame[self.icv_column].to_numpy(float) - self.icv_ref_)
         return np.column_stack(columns)
@@ -482,13 +525,25 @@ class MixedEffectsForecaster:
         self.age_ref_ = float(baseline_rows(table)["age"].mean())
         self.icv_ref_ = float(table[self.icv_column].mean()) if self.icv_column else 0.0
         years = table["years"].to_numpy(float)
-        exog = self._design(table, years)
-        participants = table["participant_id"].to_numpy()
-        if table["participant_id"].nunique() <= exog.shape[1] + 3:
-            raise DataError(
-                f"{table['participant_id'].nunique()} participants are too few for the "
-                f"{exog.shape[1]} fixed effects and 3 variance parameters of the mixed model"
+        count = table["participant_id"].nunique()
+        for design in DESIGNS[DESIGNS.index(self.design) :]:
+            self.design_ = design
+            exog = self._design(table, years)
+            if count > exog.shape[1] + 3:
+                break
+            if not self.fallback or design == DESIGNS[-1]:
+                raise DataError(
+                    f"{count} participants are too few for the {exog.shape[1]} fixed effects "
+                    f"and 3 variance parameters of the mixed model ({design} design)"
+                )
+        if self.design_ != self.design:
+            warnings.warn(
+                f"mixed model: {count} participants are too few for the {self.design} "
+                f"design; the {self.design_} design was fitted instead",
+                RuntimeWarning,
+                stacklevel=2,
             )
+        participants = table["participant_id"].to_numpy()
         diagnosis = table["diagnosis"].to_numpy()
         arguments = [
             (
@@ -570,6 +625,7 @@ class MixedEffectsForecaster:
         """Everything prediction needs, as plain JSON types (no pickle)."""
         return {
             "icv_column": self.icv_column,
+            "design": self.design_,
             "trim": self.trim,
             "method": self.method,
             "regions": self.regions_,
@@ -582,7 +638,10 @@ class MixedEffectsForecaster:
 
     @classmethod
     def from_dict(cls, raw: dict) -> MixedEffectsForecaster:
-        model = cls(raw["icv_column"], raw["trim"], raw["method"])
+        # models saved before the design was recorded used the diagnosis-by-time design
+        design = raw.get("design", "diagnosis-by-time")
+        model = cls(raw["icv_column"], raw["trim"], raw["method"], design=design)
+        model.design_ = design
         model.coding_ = CohortSettings.from_dict(raw["coding"], "mixed-effects model")
         model.regions_, model.labels_ = list(raw["regions"]), list(raw["labels"])
         model.age_ref_, model.icv_ref_ = float(raw["age_ref"]), float(raw["icv_ref"])
@@ -613,16 +672,18 @@ def all_forecasters(
     """Unfitted instances of every forecaster, keyed by report name.
 
     ``coding`` (a :class:`~predictor.config.CohortSettings`) sets the sex and
-    diagnosis codes; the shipped ``configs/cohort.toml`` when None.
+    diagnosis codes; the shipped ``configs/cohort.toml`` when None. ``icv_column``
+    names the intracranial volume, the divisor of every baseline regional volume that
+    ridge and SVR see (the mixed models take it as a covariate only when built apart).
     """
+    mixed = {"jobs": jobs, "coding": coding}
+    conformal = {"coding": coding, "icv_column": icv_column}
     return {
-        "mixed-effects": MixedEffectsForecaster(icv_column, jobs=jobs, coding=coding),
-        "mixed-effects-trimmed": MixedEffectsForecaster(
-            icv_column, trim=0.2, jobs=jobs, coding=coding
-        ),
-        "svr": SVRForecaster(seed, coding=coding),
-        "svr-trimmed": SVRForecaster(seed, trim=0.2, coding=coding),
-        "ridge": RidgeForecaster(seed, coding=coding),
-        "population-rate": PopulationRateForecaster(seed, coding=coding),
-        "no-change": NoChangeForecaster(seed, coding=coding),
+        "mixed-effects": MixedEffectsForecaster(**mixed),
+        "mixed-effects-trimmed": MixedEffectsForecaster(trim=0.2, **mixed),
+        "svr": SVRForecaster(seed, **conformal),
+        "svr-trimmed": SVRForecaster(seed, trim=0.2, **conformal),
+        "ridge": RidgeForecaster(seed, **conformal),
+        "population-rate": PopulationRateForecaster(seed, **conformal),
+        "no-change": NoChangeForecaster(seed, **conformal),
     }

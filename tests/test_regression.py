@@ -26,7 +26,7 @@ from predictor.regression import (
     trim_mask,
 )
 
-TRUE_BETA = np.array([3.5, -0.01, 0.1, -0.2, -0.4, -0.05, -0.04, -0.1])  # mL, see _design
+TRUE_BETA = np.array([3.5, -0.01, 0.1, -0.2, -0.4, -0.05, -0.04, -0.1, -0.002])  # mL, see _design
 TRUE_G = np.array([[0.09, 0.003], [0.003, 0.0009]])  # random intercept / slope covariance
 TRUE_S2 = 0.0025  # residual variance, mL^2
 
@@ -42,7 +42,10 @@ def simulate_lmm(seed: int, participants: int = 60, visits: int = 4) -> pd.DataF
         b = rng.multivariate_normal(np.zeros(2), TRUE_G)
         for years in np.arange(visits) + np.r_[0, rng.uniform(-0.1, 0.1, visits - 1)]:
             mci, ad = float(diagnosis == "MCI"), float(diagnosis == "AD")
-            x = np.array([1, age0 - 75, sex == "M", mci, ad, years, years * mci, years * ad])
+            x = np.array(
+                [1, age0 - 75, sex == "M", mci, ad, years, years * mci, years * ad,
+                 (age0 - 75) * years]
+            )  # fmt: skip
             volume = x @ TRUE_BETA + b[0] + b[1] * years + rng.normal(0, np.sqrt(TRUE_S2))
             rows.append(
                 {
@@ -120,6 +123,40 @@ def test_saved_prior_roundtrip_and_bad_file(tmp_path):
     path.write_text('{"regions": []}')
     with pytest.raises(DataError, match="not a saved mixed-effects model"):
         load_mixed_model(path)
+
+
+def test_small_cohort_falls_back_to_a_smaller_design_with_a_warning(tmp_path):
+    # 9 participants cannot carry the age-by-time design's 9 fixed effects + 3 variance
+    # parameters (statsmodels would not identify them); with fallback the diagnosis-by-
+    # time design (8) does not fit either, so the rate design (1, years) is fitted, and it
+    # matches statsmodels MixedLM on the same two columns.
+    table = simulate_lmm(5, participants=9)
+    with pytest.raises(DataError, match="9 participants are too few.*age-by-time"):
+        MixedEffectsForecaster().fit(table, ["hippocampus"])
+    with pytest.warns(RuntimeWarning, match="the rate design was fitted instead"):
+        model = MixedEffectsForecaster(fallback=True).fit(table, ["hippocampus"])
+    assert model.design_ == "rate"
+    checked = check_table(table, ["hippocampus"])
+    years = checked["years"].to_numpy()
+    direct = sm.MixedLM(
+        checked["hippocampus"], np.column_stack([np.ones(len(years)), years]),
+        groups=checked["participant_id"], exog_re=np.column_stack([np.ones(len(years)), years]),
+    )  # fmt: skip
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        result = direct.fit(reml=True, method=["powell"])
+    np.testing.assert_allclose(model.fits_["hippocampus"].beta, result.fe_params, rtol=1e-8)
+    restored = load_mixed_model(save_mixed_model(tmp_path / "prior.json", model))
+    assert restored.design_ == "rate"
+    # a file saved before the design was recorded reads as the diagnosis-by-time design
+    older = MixedEffectsForecaster(design="diagnosis-by-time").fit(
+        simulate_lmm(6), ["hippocampus"]
+    )
+    raw = older.to_dict()
+    del raw["design"]
+    legacy = MixedEffectsForecaster.from_dict(raw)
+    base = baseline_rows(check_table(simulate_lmm(6), ["hippocampus"]))
+    pd.testing.assert_frame_equal(older.predict(base, [2]), legacy.predict(base, [2]))
 
 
 @pytest.fixture(scope="module")
