@@ -116,9 +116,11 @@ def visit_pairs(volumes: pd.DataFrame, participants, regions: RegionSet) -> pd.D
 def fit_prior(volumes: pd.DataFrame, participants, regions: RegionSet, coding):
     """Mixed-effects model of every region fitted on ``participants`` only.
 
-    Too few participants for the full design get a smaller one (a warning says so).
-    Returns (model, warnings). Training constrains the prior regions with it;
-    forecasts report it beside the network for every region. ``coding`` is the
+    The diagnosis-by-time design (no age-by-time term: with it, the tiny test cohort's
+    16 training participants gave a network that forecast hippocampal growth in AD); too
+    few participants for it get the rate design, with a warning. Returns (model,
+    warnings). Training constrains the prior regions with it; forecasts report it beside
+    the network for every region. ``coding`` is the
     workspace's :class:`~predictor.config.CohortSettings`.
     """
     from predictor.regression import MixedEffectsForecaster
@@ -126,7 +128,9 @@ def fit_prior(volumes: pd.DataFrame, participants, regions: RegionSet, coding):
     table = volumes[volumes["participant_id"].isin(set(participants))]
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", RuntimeWarning)
-        model = MixedEffectsForecaster(coding=coding, fallback=True).fit(table, list(regions.names))
+        model = MixedEffectsForecaster(
+            coding=coding, design="diagnosis-by-time", fallback=True
+        ).fit(table, list(regions.names))
     return model, [str(w.message) for w in caught if issubclass(w.category, RuntimeWarning)]
 
 

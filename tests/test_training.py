@@ -213,7 +213,7 @@ def test_resume_gives_bitwise_equal_weights(tiny_workspace, tmp_path):
         pd.read_csv(straight / "log.tsv", sep="\t").drop(columns="seconds"),
         pd.read_csv(resumed / "log.tsv", sep="\t").drop(columns="seconds"),
     )
-    with pytest.raises(OutputError, match="another workspace, config or seed"):
+    with pytest.raises(OutputError, match="another workspace, config, seed or split"):
         train(tiny_workspace, resumed, QUICK, epochs=4, resume=True, seed=9)
 
 
