@@ -431,6 +431,11 @@ def evaluate(
         typer.Option(help="Also measure the network's forecast scans like real follow-ups "
                      "(the slowest step); its own Jacobian-integral volumes are always scored."),
     ] = True,
+    tune: Annotated[
+        bool,
+        typer.Option(help="Choose a loss weight per fold on inner validation participants "
+                     "only (grid in configs/evaluate.toml; one training per value)."),
+    ] = False,
 ) -> None:
     """Cross-validate the network against the population field and the regressions.
 
@@ -442,6 +447,7 @@ def evaluate(
     total brain volume; statistics are per participant (cluster bootstrap CIs,
     sign tests, Holm); the primary endpoint is named in configs/compare.toml.
     """
+    from predictor.evaluate import TuneSettings
     from predictor.evaluate import evaluate as run_evaluation
     from predictor.evaluation_report import write_evaluation
     from predictor.training import TrainConfig
@@ -451,6 +457,7 @@ def evaluate(
         evaluation = run_evaluation(
             work, out, folds, TrainConfig.from_toml(config), fold, jobs, seed,
             measure=scan_volumes, progress=advance,
+            tune=TuneSettings.from_toml() if tune else None,
         )  # fmt: skip
     if evaluation is None:
         typer.echo(f"fold {fold} done in {out}; run without --fold to collect")

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import json
 import os
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields, replace
 from pathlib import Path
 
 import numpy as np
@@ -47,9 +47,11 @@ from predictor.compare import (
     regression_forecasts,
     summarise,
 )
+from predictor.config import load_settings
 from predictor.errors import DataError
 from predictor.files import write_json, write_tsv
 from predictor.longitudinal import observed_by_registration
+from predictor.losses import LossSettings
 from predictor.modelstore import read_model_json
 from predictor.pairs import stratified_draw
 from predictor.parallel import run_all
@@ -60,6 +62,7 @@ from predictor.workspace import read_workspace
 
 FOLDS_FILE = "folds.json"
 FORECASTS = "forecasts.tsv"
+TUNING = "tuning.json"
 #: a fold's two trained models: the network, and the same training fed the template
 MODELS = {"network": "scan", "population": "template"}
 #: columns of a fold's forecasts.tsv
@@ -67,6 +70,29 @@ FORECAST_COLUMNS = (
     "participant_id", "base_key", "follow_key", "years", "region", "method",
     "forecast_ml", "lower_ml", "upper_ml",
 )  # fmt: skip
+
+
+@dataclass(frozen=True)
+class TuneSettings:
+    """What ``--tune`` searches (``configs/evaluate.toml``): one [loss] weight's values."""
+
+    tune_parameter: str
+    tune_values: tuple[float, ...]
+
+    def __post_init__(self):
+        weights = [f.name for f in fields(LossSettings) if f.name.endswith("_weight")]
+        if self.tune_parameter not in weights:
+            raise ValueError(
+                f"tune_parameter must be one of {weights}; '{self.tune_parameter}' was given"
+            )
+        if len(set(self.tune_values)) < 2 or min(self.tune_values) < 0:
+            raise ValueError(
+                f"tune_values must hold 2 or more weights >= 0, got {self.tune_values}"
+            )
+
+    @classmethod
+    def from_toml(cls, path: str | os.PathLike[str] | None = None) -> TuneSettings:
+        return load_settings(cls, "evaluate.toml", path)
 
 
 @dataclass(frozen=True)
@@ -172,12 +198,14 @@ def fold_folder(out: Path, fold: int) -> Path:
 
 def run_fold(
     work, out: Path, fold: int, config: TrainConfig, seed: int, jobs: int,
-    measure: bool = True, progress=None,
+    measure: bool = True, progress=None, tune: TuneSettings | None = None,
 ):  # fmt: skip
     """Train fold ``fold``'s two models (resuming) and forecast its participants' pairs.
 
     ``measure``: also measure the network's forecast scans like real ones (slowest step).
-    Writes ``fold-<k>/forecasts.tsv`` last, atomically; a fold that has it is done.
+    ``tune``: choose a loss weight per model on the fold's inner validation participants
+    (``fold-<k>/tuning.json``). Writes ``fold-<k>/forecasts.tsv`` last, atomically; a
+    fold that has it is done.
     """
     folder = fold_folder(out, fold)
     if (folder / FORECASTS).is_file():
@@ -188,17 +216,19 @@ def run_fold(
     fractions = config.training.split
     share = fractions[1] / max(fractions[0] + fractions[1], 1e-9)
     split = fold_split(volumes, saved["assignment"], fold, share, seed)
+    chosen = {}
     for name, image_input in MODELS.items():
-        settings = replace(config.training, image_input=image_input)
-        train(work, folder / name, replace(config, training=settings), resume=True,
-              seed=seed, split=split)  # fmt: skip
+        settings = replace(config, training=replace(config.training, image_input=image_input))
+        chosen[name] = train_model(work, folder, name, settings, seed, split, tune)
+    if tune is not None:
+        write_json(folder / TUNING, chosen)
     pairs = baseline_pairs(volumes, split["test"], workspace.regions)
     rows = []
     if not pairs.empty:
         groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
         arguments = [
-            (str((folder / "network").resolve()), str(Path(work).resolve()), group,
-             str((folder / "population").resolve()), measure)
+            (str(model_folder(folder, "network").resolve()), str(Path(work).resolve()), group,
+             str(model_folder(folder, "population").resolve()), measure)
             for group in groups
         ]  # fmt: skip
         measured = pd.DataFrame(
@@ -220,6 +250,38 @@ def run_fold(
         write_json(folder / "not_fitted.json", not_fitted)
     table = pd.concat(rows, ignore_index=True) if rows else pd.DataFrame(columns=FORECAST_COLUMNS)
     return write_tsv(folder / FORECASTS, table[list(FORECAST_COLUMNS)])
+
+
+def train_model(work, folder: Path, name: str, config: TrainConfig, seed, split, tune) -> dict:
+    """Train one of a fold's models (resuming); with ``tune``, one per value of the tuned
+    weight, keeping the lowest inner-validation figure. Returns what was chosen."""
+    if tune is None:
+        train(work, folder / name, config, resume=True, seed=seed, split=split)
+        return {"folder": name}
+    scores = {}
+    for value in tune.tune_values:
+        candidate = f"{name}-{tune.tune_parameter}-{value:g}"
+        loss = replace(config.loss, **{tune.tune_parameter: value})
+        train(work, folder / candidate, replace(config, loss=loss), resume=True, seed=seed,
+              split=split)  # fmt: skip
+        scores[candidate] = validation_score(folder / candidate, config.training.monitor)
+    best = min(scores, key=scores.get)
+    return {"folder": best, "parameter": tune.tune_parameter, "validation": scores}
+
+
+def validation_score(model_dir: Path, monitor: str) -> float:
+    """The best (lowest) monitored validation figure of a trained model's log."""
+    log = pd.read_csv(model_dir / "log.tsv", sep="\t")
+    if monitor not in log or log[monitor].isna().all():
+        raise DataError(f"{model_dir}: its log has no validation '{monitor}' to tune on")
+    return float(log[monitor].min())
+
+
+def model_folder(folder: Path, name: str) -> Path:
+    """The model a fold forecasts with: ``name``, or the candidate tuning chose."""
+    if (folder / TUNING).is_file():
+        return folder / json.loads((folder / TUNING).read_text())[name]["folder"]
+    return folder / name
 
 
 def _long(pairs: pd.DataFrame, method: str, names, values, bounds) -> pd.DataFrame:
@@ -258,12 +320,12 @@ def check_folds(out: Path, saved: dict) -> pd.DataFrame:
                 f"{folder}: fold {fold} is not finished; run `predictor evaluate` without "
                 f"--fold (or with --fold {fold}) to finish it"
             )
-        for name in MODELS:
-            split = read_model_json(folder / name).split
+        for model in sorted(path.parent for path in folder.glob("*/model.json")):
+            split = read_model_json(model).split
             seen = (set(split["train"]) | set(split["validation"])) & members
             if seen:
                 raise DataError(
-                    f"leaked fold: {folder / name} was trained on participant(s) "
+                    f"leaked fold: {model} was trained on participant(s) "
                     f"{', '.join(sorted(seen)[:5])} of fold {fold}, which it forecasts"
                 )
         frame = pd.read_csv(folder / FORECASTS, sep="\t")
@@ -308,8 +370,10 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
     errors = error_table(pairs, methods, names).dropna(subset=["forecast_ml"])
     tests = paired_tests(errors, names, workspace.regions.checks, settings, seed)
     skill = skill_table(errors, workspace.regions.checks, settings, seed)
-    not_fitted = {}
+    not_fitted, tuning = {}, {}
     for fold in range(1, saved["folds"] + 1):
+        if (fold_folder(out, fold) / TUNING).is_file():
+            tuning[fold] = json.loads((fold_folder(out, fold) / TUNING).read_text())
         path = fold_folder(out, fold) / "not_fitted.json"
         if path.is_file():
             for method, why in json.loads(path.read_text()).items():
@@ -335,6 +399,7 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
             "primary_region": settings.primary_region,
             "level": settings.level,
             "not_fitted": not_fitted,
+            "tuning": tuning,
         },
         regions=tuple(names),
     )
@@ -461,6 +526,7 @@ def evaluate(
     settings: CompareSettings | None = None,
     measure: bool = True,
     progress=None,
+    tune: TuneSettings | None = None,
 ) -> Evaluation | None:
     """Cross-validate on a prepared workspace into ``out``.
 
@@ -469,6 +535,7 @@ def evaluate(
     ``settings`` (primary region, CI level, observed change) to ``configs/compare.toml``.
     Without ``measure`` the network's forecast scans are not measured (only its own
     Jacobian-integral volumes are scored), which saves most of the forecasting time.
+    ``tune`` (``configs/evaluate.toml``) chooses a loss weight per fold on inner validation.
     """
     out = Path(out)
     config = config or TrainConfig.from_toml()
@@ -477,8 +544,8 @@ def evaluate(
     if fold is not None:
         if not 1 <= fold <= saved["folds"]:
             raise DataError(f"--fold must be within 1..{saved['folds']}, got {fold}")
-        run_fold(work, out, fold, config, seed, jobs, measure, progress)
+        run_fold(work, out, fold, config, seed, jobs, measure, progress, tune)
         return None
     for k in range(1, saved["folds"] + 1):
-        run_fold(work, out, k, config, seed, jobs, measure, progress)
+        run_fold(work, out, k, config, seed, jobs, measure, progress, tune)
     return collect(work, out, settings, seed)

@@ -176,6 +176,17 @@ def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
         if data["phantom_floor"]
         else ""
     )
+    tuned = "".join(
+        f"<li>fold {html.escape(str(fold))}: "
+        + "; ".join(
+            f"{html.escape(name)} {html.escape(choice['folder'])} (inner-validation figure "
+            + ", ".join(f"{html.escape(k)} {v:.4g}" for k, v in choice["validation"].items())
+            + ")"
+            for name, choice in chosen.items()
+        )
+        + "</li>"
+        for fold, chosen in data.get("tuning", {}).items()
+    )
     not_fitted = "".join(
         f"<li>{html.escape(method)}: {html.escape('; '.join(why))}</li>"
         for method, why in data["not_fitted"].items()
@@ -211,6 +222,12 @@ def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
         "annualised change exceeds the population field's with a CI above zero.</p>",
         region_words(tables["tests"], tables["headlines"], tables["skill"]),
     ]
+    if tuned:
+        parts.append(
+            "<h2>Tuned on inner validation only</h2><p>Each fold's models were trained once "
+            "per value of the tuned weight and the value with the lowest figure on the "
+            f"fold's inner validation participants was kept:</p><ul>{tuned}</ul>"
+        )
     if not_fitted:
         parts.append(f"<h2>Forecasters not fitted on some folds</h2><ul>{not_fitted}</ul>")
     for name, title in DETAILS.items():

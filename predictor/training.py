@@ -22,6 +22,7 @@ import json
 import os
 import time
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict, dataclass, replace
 from functools import cached_property
 from pathlib import Path
@@ -150,8 +151,11 @@ def batch_terms(network: VelocityNet, batch: Batch, loss: LossSettings, directio
     velocity = network(batch.inputs, batch.condition)
     shape = tuple(batch.baseline.shape[2:])
     backward = module.displacement(velocity, -batch.years, shape)
-    forward = module.displacement(velocity, batch.years, shape)
-    earlier = module.displacement(velocity, batch.years * loss.earlier_horizon_fraction, shape)
+    if loss.earlier_horizon_fraction == 0.5:  # the default: one integration gives both
+        forward, earlier = module.displacement_and_half(velocity, batch.years, shape)
+    else:
+        forward = module.displacement(velocity, batch.years, shape)
+        earlier = module.displacement(velocity, batch.years * loss.earlier_horizon_fraction, shape)
     warped = warp(batch.baseline, backward)
     determinant = jacobian_determinant(forward)
     ratio = region_volume_ratio(batch.regions, determinant)
@@ -448,7 +452,12 @@ def train(
 
 
 def _train_epoch(trainer, optimiser, run: Run, epoch: int, rank: int, world: int, on_step):
-    """One epoch over the training pairs in a seeded order; returns the mean loss terms."""
+    """One epoch over the training pairs in a seeded order; returns the mean loss terms.
+
+    The next batch is read and augmented in a background thread while the current
+    step runs (its draws depend only on its place in the epoch, so the result is the
+    same as reading it afterwards).
+    """
     settings, seed = run.config.training, run.seed
     weights = run.config.loss.weights(epoch)
     order = seeded_rng(seed, 11, epoch).permutation(len(run.pairs["train"]))
@@ -457,24 +466,33 @@ def _train_epoch(trainer, optimiser, run: Run, epoch: int, rank: int, world: int
     batches = _batches(len(order), settings.batch_pairs, order)
     batches = [b for b in batches if len(b) >= world]
     sums = dict.fromkeys((*TERMS, "total"), 0.0)
-    trainer.train()
-    for step, chunk in enumerate(batches):
-        mine = chunk[rank::world]
+
+    def read(step: int) -> Batch:
+        mine = batches[step][rank::world]
         # augmentation drawn per pair from its place in the epoch: the same draws
         # whatever the number of processes
         start = step * settings.batch_pairs + rank
         places = range(start, start + len(mine) * world, world)
-        batch = run.batch("train", mine, [seeded_rng(seed, 13, epoch, p) for p in places])
-        terms, _, _ = batch_terms(trainer, batch, run.config.loss, run.direction)
-        total = weighted_total(terms, weights)
-        optimiser.zero_grad()
-        total.backward()
-        optimiser.step()
-        for name in TERMS:
-            sums[name] += terms[name].item()
-        sums["total"] += total.item()
-        if on_step and rank == 0:
-            on_step(epoch, step + 1, len(batches), {n: v / (step + 1) for n, v in sums.items()})
+        return run.batch("train", mine, [seeded_rng(seed, 13, epoch, p) for p in places])
+
+    trainer.train()
+    with ThreadPoolExecutor(max_workers=1) as reader:
+        upcoming = reader.submit(read, 0) if batches else None
+        for step in range(len(batches)):
+            batch = upcoming.result()
+            if step + 1 < len(batches):
+                upcoming = reader.submit(read, step + 1)
+            terms, _, _ = batch_terms(trainer, batch, run.config.loss, run.direction)
+            total = weighted_total(terms, weights)
+            optimiser.zero_grad()
+            total.backward()
+            optimiser.step()
+            for name in TERMS:
+                sums[name] += terms[name].item()
+            sums["total"] += total.item()
+            if on_step and rank == 0:
+                done = {n: v / (step + 1) for n, v in sums.items()}
+                on_step(epoch, step + 1, len(batches), done)
     return {f"train_{name}": value / max(len(batches), 1) for name, value in sums.items()}
 
 

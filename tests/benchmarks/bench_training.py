@@ -1,4 +1,5 @@
-"""Training-step time and pairs per second at the default config and grid; one network pass."""
+"""Training-step time, pairs per second and floating-point rate at the default config and grid
+(beside the machine's own matrix-multiply rate, measured in the same run); one network pass."""
 
 from __future__ import annotations
 
@@ -36,10 +37,48 @@ def _default_batch(pairs: int):
     return batch, shape
 
 
+def matmul_gflops(size: int = 2048, repeats: int = 7) -> float:
+    """The machine's dense float32 matrix-multiply rate on PyTorch's threads (median)."""
+    import torch
+
+    generator = torch.Generator().manual_seed(0)
+    a, b = (torch.rand(size, size, generator=generator) for _ in range(2))
+    times = []
+    for _ in range(repeats):
+        started = time.perf_counter()
+        torch.matmul(a, b)
+        times.append(time.perf_counter() - started)
+    return 2 * size**3 / sorted(times)[len(times) // 2] / 1e9
+
+
+def convolution_flops(network, inputs, condition) -> int:
+    """Forward floating-point work of the network's 3D convolutions, counted from the layers:
+    2 x (input channels x 27 + 1) x output channels x output voxels each (a multiply-add is
+    two operations, the bias one)."""
+    import torch
+
+    total, hooks = [0], []
+
+    def count(layer, _, output):
+        kernel = layer.in_channels // layer.groups * int(torch.tensor(layer.kernel_size).prod())
+        total[0] += 2 * kernel * output.numel() + output.numel()
+
+    for layer in network.modules():
+        if isinstance(layer, torch.nn.Conv3d):
+            hooks.append(layer.register_forward_hook(count))
+    with torch.no_grad():
+        network(inputs, condition)
+    for hook in hooks:
+        hook.remove()
+    return total[0]
+
+
 def default_training_step() -> dict:
-    """Seconds per optimiser step of ``batch_pairs`` pairs (configs/train.toml, 3 mm grid)."""
+    """Seconds per optimiser step of ``batch_pairs`` pairs (configs/train.toml, 3 mm grid),
+    the step's floating-point work and rate, and the machine's matmul rate beside it."""
     import torch
     from helpers import constant_velocity_model
+    from torch.utils.flop_counter import FlopCounterMode
 
     from predictor.modelstore import build_network
     from predictor.regions import RegionSet
@@ -52,20 +91,39 @@ def default_training_step() -> dict:
     direction = torch.from_numpy(RegionSet.from_toml().directions(RegionSet.from_toml().prior))
     optimiser = torch.optim.Adam(network.parameters(), lr=1e-3)
     weights = config.loss.weights(100)
-    steps, started = 6, None
-    for step in range(steps + 1):
-        if step == 1:
-            started = time.perf_counter()
+
+    def step():
         terms, _, _ = batch_terms(network, batch, config.loss, direction)
         optimiser.zero_grad()
         weighted_total(terms, weights).backward()
         optimiser.step()
-    seconds = (time.perf_counter() - started) / steps
+
+    step()  # warm-up
+    with FlopCounterMode(display=False) as counter:
+        step()
+    times = []
+    for _ in range(10):
+        started = time.perf_counter()
+        step()
+        times.append(time.perf_counter() - started)
+    seconds = sorted(times)[len(times) // 2]
+    flops = counter.get_total_flops()
+    peak = matmul_gflops()
+    achieved = flops / seconds / 1e9
     return {
         "grid": "x".join(map(str, shape)),
         "batch_pairs": pairs,
         "s_per_step": round(seconds, 3),
         "pairs_per_s": round(pairs / seconds, 2),
+        # convolutions and matrix products, forward and backward (torch.utils.flop_counter);
+        # grid sampling and elementwise work are not counted
+        "step_gflop": round(flops / 1e9, 2),
+        "forward_conv_gflop_from_layers": round(
+            convolution_flops(network, batch.inputs, batch.condition) / 1e9, 2
+        ),
+        "achieved_gflops": round(achieved, 1),
+        "matmul_2048_gflops": round(peak, 1),
+        "ratio_to_matmul": round(achieved / peak, 3),
         "threads": torch.get_num_threads(),
     }
 
