@@ -20,6 +20,7 @@ from predictor.compare import JACOBIAN, POPULATION, CompareSettings, paired_test
 from predictor.config import CONFIG_DIR
 from predictor.errors import DataError
 from predictor.evaluate import (
+    TuneSettings,
     assign_folds,
     collect,
     coverage_table,
@@ -27,6 +28,7 @@ from predictor.evaluate import (
     fit_quality,
     fold_split,
     read_folds,
+    validation_score,
 )
 from predictor.evaluation_report import write_evaluation
 from predictor.training import TrainConfig
@@ -231,3 +233,26 @@ def test_kill_during_a_fold_then_rerun_gives_identical_tables(
             getattr(evaluation, name).reset_index(drop=True),
             check_exact=False, rtol=1e-6,
         )  # fmt: skip
+
+
+@pytest.mark.slow
+def test_tuning_chooses_on_inner_validation_only(tiny_workspace, one_epoch_config, tmp_path):
+    tune = TuneSettings("prior_weight", (0.01, 1.0))
+    config = TrainConfig.from_toml(one_epoch_config)
+    assert evaluate(tiny_workspace, tmp_path, 2, config, fold=1, settings=SETTINGS,
+                    measure=False, tune=tune) is None  # fmt: skip
+    fold = tmp_path / "fold-1"
+    members = {p for p, k in read_folds(tmp_path)["assignment"].items() if k == 1}
+    chosen = json.loads((fold / "tuning.json").read_text())
+    for name in ("network", "population"):
+        candidates = [f"{name}-prior_weight-0.01", f"{name}-prior_weight-1"]
+        scores = {c: validation_score(fold / c, "val_volume_error") for c in candidates}
+        assert chosen[name]["validation"] == pytest.approx(scores)
+        assert chosen[name]["folder"] == min(scores, key=scores.get)
+        for candidate in candidates:
+            info = json.loads((fold / candidate / "model.json").read_text())
+            assert info["config"]["loss"]["prior_weight"] in (0.01, 1.0)
+            assert not members & (set(info["split"]["train"]) | set(info["split"]["validation"]))
+    assert (fold / "forecasts.tsv").is_file()
+    with pytest.raises(ValueError, match="tune_parameter must be one of"):
+        TuneSettings("epochs", (1.0, 2.0))
