@@ -239,19 +239,31 @@ def phantom_floor(work: Path, pairs: pd.DataFrame, names) -> np.ndarray | None:
 
     None unless the cohort is a phantom cohort with its ground truth beside it.
     """
+    return _phantom_ratio(work, pairs, names, "best_forecast_volumes.tsv")
+
+
+def phantom_true_follow_up(work: Path, pairs: pd.DataFrame, names) -> np.ndarray | None:
+    """The measured baseline times the phantom's *true* change to each follow-up, (P, R) mL:
+    the follow-up a perfect change measurement would report (None unless a phantom cohort)."""
+    return _phantom_ratio(work, pairs, names, "true_volumes.tsv")
+
+
+def _phantom_ratio(work: Path, pairs: pd.DataFrame, names, table: str) -> np.ndarray | None:
+    """The measured baseline times a phantom truth table's volume at the follow-up over the
+    true baseline volume; NaN for a region the truth does not have."""
     cohort = Layout(work).read_cohort()
     truth_folder = _phantom_truth(Path(cohort["image"].iloc[0]))
     if truth_folder is None:
         return None
     truth = pd.read_csv(truth_folder / "true_volumes.tsv", sep="\t")
-    best = pd.read_csv(truth_folder / "best_forecast_volumes.tsv", sep="\t")
+    later = pd.read_csv(truth_folder / table, sep="\t")
     truth = truth.set_index(["participant_id", "session_id"])
-    best = best.set_index(["participant_id", "session_id"])
+    later = later.set_index(["participant_id", "session_id"])
     first = truth.groupby(level="participant_id").head(1).droplevel("session_id")
-    known = [name for name in names if name in best.columns]  # a region of the user's own: NaN
+    known = [name for name in names if name in later.columns]  # a region of the user's own: NaN
     rows = []
     for pair in pairs.itertuples(index=False):
-        ratio = best.loc[(pair.participant_id, pair.session_id), known].to_numpy(float)
+        ratio = later.loc[(pair.participant_id, pair.session_id), known].to_numpy(float)
         ratio = ratio / first.loc[pair.participant_id, known].to_numpy(float)
         row = dict(zip(known, ratio * np.array([getattr(pair, r) for r in known]), strict=True))
         rows.append([row.get(name, np.nan) for name in names])

@@ -44,6 +44,7 @@ from predictor.compare import (
     network_pairs,
     paired_tests,
     phantom_floor,
+    phantom_true_follow_up,
     regression_forecasts,
     summarise,
 )
@@ -107,6 +108,9 @@ class Evaluation:
     coverage: pd.DataFrame  # method x region x group: share of pairs inside the interval
     by_horizon: pd.DataFrame
     by_diagnosis: pd.DataFrame
+    # phantom cohorts: mean |error| and paired tests against the *true* change (else empty)
+    truth_summary: pd.DataFrame
+    truth_tests: pd.DataFrame
     data: dict  # counts, folds, settings, forecasters not fitted
     regions: tuple[str, ...]
 
@@ -369,6 +373,14 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
         methods[FLOOR] = floor
     errors = error_table(pairs, methods, names).dropna(subset=["forecast_ml"])
     tests = paired_tests(errors, names, workspace.regions.checks, settings, seed)
+    truth_summary, truth_tests = pd.DataFrame(), pd.DataFrame()
+    true_follow_up = phantom_true_follow_up(Path(work), pairs, names)
+    if true_follow_up is not None:
+        columns = {f"{r}_follow": true_follow_up[:, j] for j, r in enumerate(names)}
+        against = error_table(pairs.assign(**columns), methods, names)
+        against = against.dropna(subset=["forecast_ml", "observed_ml"])
+        truth_summary = summarise(against, seed)
+        truth_tests = paired_tests(against, names, workspace.regions.checks, settings, seed)
     skill = skill_table(errors, workspace.regions.checks, settings, seed)
     not_fitted, tuning = {}, {}
     for fold in range(1, saved["folds"] + 1):
@@ -387,6 +399,8 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
         coverage=coverage_table(pairs, bounds, names),
         by_horizon=grouped(errors.assign(horizon=horizon_bins(errors["years"])), "horizon"),
         by_diagnosis=grouped(errors, "diagnosis"),
+        truth_summary=truth_summary,
+        truth_tests=truth_tests,
         data={
             "folds": saved["folds"],
             "fold_seed": saved["seed"],

@@ -27,6 +27,7 @@ from predictor.report import STYLE, VARIANT_WORDS, method_colours, observed_note
 
 TABLES = (
     "summary", "headlines", "tests", "skill", "coverage", "errors", "by_horizon", "by_diagnosis",
+    "truth_summary", "truth_tests",
 )  # fmt: skip
 NO_CHANGE = "no-change"
 DETAILS = {
@@ -35,6 +36,7 @@ DETAILS = {
     "coverage": "Coverage of the 90% intervals, overall, by horizon and by diagnosis",
     "by_horizon": "Mean |error| by horizon",
     "by_diagnosis": "Mean |error| by diagnosis",
+    "truth_tests": "Phantoms only: network minus each comparator against the true change",
 }
 
 
@@ -44,12 +46,24 @@ def write_evaluation(evaluation: Evaluation, out: str | Path) -> Path:
     for name in TABLES:
         write_tsv(out / f"{name}.tsv", getattr(evaluation, name))
     write_json(out / "evaluation.json", evaluation.data)
-    tables = {name: pd.read_csv(out / f"{name}.tsv", sep="\t") for name in TABLES}
+    tables = {name: _read(out / f"{name}.tsv") for name in TABLES}
     save_figure(figure_forest(tables["tests"]), out / "forest.png")
     glance = pivot_summary(tables["summary"], evaluation.regions)
     write_tsv(out / "at_a_glance.tsv", glance)
     tables["at_a_glance"] = pd.read_csv(out / "at_a_glance.tsv", sep="\t")
+    if len(tables["truth_summary"]):
+        truth = pivot_summary(tables["truth_summary"], evaluation.regions)
+        write_tsv(out / "against_truth.tsv", truth)
+        tables["against_truth"] = pd.read_csv(out / "against_truth.tsv", sep="\t")
     return write_text(out / "evaluation.html", render(tables, evaluation.data, out))
+
+
+def _read(path: Path) -> pd.DataFrame:
+    """A TSV as written; an empty table (no columns) as an empty frame."""
+    try:
+        return pd.read_csv(path, sep="\t")
+    except pd.errors.EmptyDataError:
+        return pd.DataFrame()
 
 
 def pivot_summary(summary: pd.DataFrame, regions) -> pd.DataFrame:
@@ -98,7 +112,7 @@ def figure_forest(tests: pd.DataFrame):
         "cross-validated difference in forecast error, participant-cluster 95% CI "
         "(research use only)", fontsize=11,
     )  # fmt: skip
-    figure.tight_layout()
+    figure.tight_layout(rect=(0, 0, 1, 0.985))  # room for the title
     return figure
 
 
@@ -168,6 +182,22 @@ def _gain(row) -> str:
     )
 
 
+def truth_section(tables: dict[str, pd.DataFrame]) -> list[str]:
+    """Phantom cohorts: the same errors against the generator's true change, where a
+    measured change that misses part of the truth cannot flatter any method."""
+    if "against_truth" not in tables:
+        return []
+    return [
+        "<h2>Against the phantom's true change (% of total brain volume)</h2><p>The "
+        "observed change above is measured, and a measurement that misses part of the "
+        "true change favours forecasts of little change (no change itself, and any method "
+        "that learned the measurement's shortfall). Here the same forecasts are scored "
+        "against the measured baseline times the phantom's true change; a method below "
+        "the floor above but not here was rewarded for the measurement's error.</p>",
+        table_html(tables["against_truth"], "against_truth.tsv"),
+    ]
+
+
 def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
     encoded = base64.b64encode((out / "forest.png").read_bytes()).decode("ascii")
     floor = (
@@ -213,6 +243,7 @@ def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
         f"<h2>Mean absolute error (% of total brain volume), regions by methods</h2><p>{floor}"
         " No scan-rescan noise floor is shown: the workspace has no same-day rescans.</p>",
         table_html(tables["at_a_glance"], "at_a_glance.tsv"),
+        *truth_section(tables),
         "<h2>Region by region</h2>",
         "<p>A method is better or worse only where the CI of the participant-level "
         "difference excludes zero and the exact sign test over participants is below 0.05 "
@@ -231,6 +262,8 @@ def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
     if not_fitted:
         parts.append(f"<h2>Forecasters not fitted on some folds</h2><ul>{not_fitted}</ul>")
     for name, title in DETAILS.items():
+        if tables[name].empty:
+            continue
         parts.append(
             f"<details><summary>{html.escape(title)} ({name}.tsv)</summary>"
             f"{table_html(tables[name], f'{name}.tsv')}</details>"

@@ -256,3 +256,17 @@ def test_tuning_chooses_on_inner_validation_only(tiny_workspace, one_epoch_confi
     assert (fold / "forecasts.tsv").is_file()
     with pytest.raises(ValueError, match="tune_parameter must be one of"):
         TuneSettings("epochs", (1.0, 2.0))
+
+
+def test_phantom_errors_against_the_true_change(evaluated):
+    # On a phantom cohort the forecasts are also scored against the measured baseline times
+    # the generator's true change; there the floor (its best forecast from baseline) must
+    # beat no change in every region that changes, whatever the measurement misses.
+    out, evaluation = evaluated
+    truth = evaluation.truth_summary.set_index(["region", "method"])["mean_pct_tbv"]
+    for region in ("hippocampus_left", "hippocampus_right", "ventricles", "total_gm"):
+        assert truth[(region, "floor (best possible)")] < truth[(region, "no-change")]
+    assert set(evaluation.truth_tests["comparator"]) == set(evaluation.tests["comparator"])
+    page = (out / "evaluation.html").read_text()
+    assert "Against the phantom's true change" in page
+    assert (out / "against_truth.tsv").is_file()
