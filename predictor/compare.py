@@ -415,7 +415,8 @@ def bootstrap_ci(values: np.ndarray, clusters: np.ndarray, rng, level: float = 0
 
 
 def summarise(errors: pd.DataFrame, seed: int) -> pd.DataFrame:
-    """Per region and method: n, mean, SD, median and bootstrap 95% CI of |error| (% TBV)."""
+    """Per region and method: pairs (n), participants, mean, SD, median and bootstrap 95% CI
+    of |error| (% TBV)."""
     rng = seeded_rng(seed, 17)
     rows = []
     for (region, method), group in errors.groupby(["region", "method"], sort=False):
@@ -426,6 +427,7 @@ def summarise(errors: pd.DataFrame, seed: int) -> pd.DataFrame:
                 "region": region,
                 "method": method,
                 "n": len(values),
+                "participants": group["participant_id"].nunique(),
                 "mean_pct_tbv": values.mean(),
                 "sd_pct_tbv": values.std(ddof=1) if len(values) > 1 else float("nan"),
                 "median_pct_tbv": float(np.median(values)),

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import json
 import os
-from dataclasses import dataclass, fields, replace
+from dataclasses import asdict, dataclass, fields, replace
 from pathlib import Path
 
 import numpy as np
@@ -64,6 +64,7 @@ from predictor.workspace import read_workspace
 FOLDS_FILE = "folds.json"
 FORECASTS = "forecasts.tsv"
 TUNING = "tuning.json"
+STAMP = "fold.json"
 #: a fold's two trained models: the network, and the same training fed the template
 MODELS = {"network": "scan", "population": "template"}
 #: columns of a fold's forecasts.tsv
@@ -147,14 +148,14 @@ def fold_split(
     """Train / validation / test participants of one fold.
 
     Test: the fold. Validation: ``share`` of the other folds' participants with a
-    follow-up (at least one), drawn stratified by diagnosis; train: the rest.
+    follow-up (at least one), drawn from them stratified by diagnosis; train: the rest.
     """
     test = sorted(p for p, k in assignment.items() if k == fold)
     pool = sorted(p for p, k in assignment.items() if k != fold)
     span = volumes.groupby("participant_id")["age"].agg(lambda a: a.max() - a.min())
     diagnosis = volumes.groupby("participant_id")["diagnosis"].first()
     followed = [p for p in pool if span[p] > 0]
-    size = max(1, int(round(share * len(pool)))) if share > 0 and followed else 0
+    size = max(1, int(round(share * len(followed)))) if share > 0 and followed else 0
     validation = stratified_draw(followed, diagnosis, size, seeded_rng(seed, 31, fold))
     train_set = sorted(set(pool) - set(validation))
     return {"train": train_set, "validation": validation, "test": test}
@@ -212,6 +213,7 @@ def run_fold(
     fold that has it is done.
     """
     folder = fold_folder(out, fold)
+    check_stamp(folder, fold_stamp(config, seed, measure, tune))
     if (folder / FORECASTS).is_file():
         return folder / FORECASTS
     workspace = read_workspace(work)
@@ -254,6 +256,27 @@ def run_fold(
         write_json(folder / "not_fitted.json", not_fitted)
     table = pd.concat(rows, ignore_index=True) if rows else pd.DataFrame(columns=FORECAST_COLUMNS)
     return write_tsv(folder / FORECASTS, table[list(FORECAST_COLUMNS)])
+
+
+def fold_stamp(config: TrainConfig, seed: int, measure: bool, tune) -> dict:
+    """What a fold's results depend on besides the workspace (``fold-<k>/fold.json``)."""
+    stamp = {"config": config.to_dict(), "seed": seed, "measure": measure,
+             "tune": None if tune is None else asdict(tune)}  # fmt: skip
+    return json.loads(json.dumps(stamp))
+
+
+def check_stamp(folder: Path, stamp: dict) -> None:
+    """Write the fold's stamp, or raise DataError if the fold was run with other settings."""
+    path = folder / STAMP
+    if path.is_file():
+        if json.loads(path.read_text()) != stamp:
+            raise DataError(
+                f"{folder}: was run with other settings (training config, seed, --tune or "
+                "--no-scan-volumes); rerun with those settings or use another OUT"
+            )
+        return
+    folder.mkdir(parents=True, exist_ok=True)
+    write_json(path, stamp)
 
 
 def train_model(work, folder: Path, name: str, config: TrainConfig, seed, split, tune) -> dict:
@@ -315,7 +338,7 @@ def check_folds(out: Path, saved: dict) -> pd.DataFrame:
     """Every fold's forecasts, checked: each participant forecast once, never by a model
     that saw it (from the saved assignment and each model's own split). Raises DataError
     naming a missing fold or the leaked participants."""
-    assignment, frames = saved["assignment"], []
+    assignment, frames, stamps = saved["assignment"], [], set()
     for fold in range(1, saved["folds"] + 1):
         folder = fold_folder(out, fold)
         members = {p for p, k in assignment.items() if k == fold}
@@ -323,6 +346,13 @@ def check_folds(out: Path, saved: dict) -> pd.DataFrame:
             raise DataError(
                 f"{folder}: fold {fold} is not finished; run `predictor evaluate` without "
                 f"--fold (or with --fold {fold}) to finish it"
+            )
+        stamps.add((folder / STAMP).read_text() if (folder / STAMP).is_file() else "")
+        if len(stamps) > 1:
+            raise DataError(
+                f"{folder}: fold {fold} was run with other settings than fold 1 (fold.json); "
+                "every fold must use the same training config, seed, --tune and "
+                "--no-scan-volumes"
             )
         for model in sorted(path.parent for path in folder.glob("*/model.json")):
             split = read_model_json(model).split
@@ -380,7 +410,10 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
         against = error_table(pairs.assign(**columns), methods, names)
         against = against.dropna(subset=["forecast_ml", "observed_ml"])
         truth_summary = summarise(against, seed)
-        truth_tests = paired_tests(against, names, workspace.regions.checks, settings, seed)
+        known = [r for r in names if r in set(against["region"])]  # the truth's regions
+        if settings.primary_region in known:
+            checks = workspace.regions.checks
+            truth_tests = paired_tests(against, known, checks, settings, seed)
     skill = skill_table(errors, workspace.regions.checks, settings, seed)
     not_fitted, tuning = {}, {}
     for fold in range(1, saved["folds"] + 1):
@@ -421,15 +454,20 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
 
 # --- subject-specific skill and coverage ---------------------------------------------------
 def annual_change(errors: pd.DataFrame) -> pd.DataFrame:
-    """Per participant, region and method: mean forecast and observed annualised change
-    (% of the baseline volume per year) over the participant's pairs."""
-    base = errors["baseline_ml"] * errors["years"]
+    """Per participant, region and method: forecast and observed annualised change (% of
+    the baseline volume per year), each the least-squares slope through the origin of the
+    participant's relative changes on their horizons, sum(c t) / sum(t^2): long horizons,
+    whose change is least swamped by measurement noise, weigh the most."""
+    years = errors["years"]
     frame = errors.assign(
-        predicted=100 * (errors["forecast_ml"] - errors["baseline_ml"]) / base,
-        observed=100 * (errors["observed_ml"] - errors["baseline_ml"]) / base,
+        predicted=100 * (errors["forecast_ml"] / errors["baseline_ml"] - 1) * years,
+        observed=100 * (errors["observed_ml"] / errors["baseline_ml"] - 1) * years,
+        weight=years**2,
     )
     keys = ["region", "method", "participant_id"]
-    return frame.groupby(keys, sort=False)[["predicted", "observed"]].mean().reset_index()
+    sums = frame.groupby(keys, sort=False)[["predicted", "observed", "weight"]].sum()
+    sums[["predicted", "observed"]] = sums[["predicted", "observed"]].div(sums["weight"], axis=0)
+    return sums[["predicted", "observed"]].reset_index()
 
 
 def fit_quality(predicted: np.ndarray, observed: np.ndarray) -> tuple[float, float]:
@@ -554,6 +592,11 @@ def evaluate(
     out = Path(out)
     config = config or TrainConfig.from_toml()
     settings = settings or CompareSettings.from_toml()
+    if tune is not None and config.training.monitor != "val_volume_error":
+        raise DataError(
+            '--tune needs monitor = "val_volume_error" under [training]: the validation '
+            "loss is weighted by the very weight being tuned"
+        )
     saved = start_folds(read_workspace(work).volumes, out, folds, seed)
     if fold is not None:
         if not 1 <= fold <= saved["folds"]:

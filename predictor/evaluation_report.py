@@ -33,7 +33,9 @@ NO_CHANGE = "no-change"
 DETAILS = {
     "tests": "Network minus each comparator, per participant (% of total brain volume)",
     "skill": "Subject-specific skill: calibration slope and R^2 of individual annualised change",
-    "coverage": "Coverage of the 90% intervals, overall, by horizon and by diagnosis",
+    "coverage": "Coverage of the 90% intervals, overall, by horizon and by diagnosis (the "
+    "regressions' intervals are calibrated on segmentation volumes; where the observed "
+    "change is measured by registration they are scored against another measurement)",
     "by_horizon": "Mean |error| by horizon",
     "by_diagnosis": "Mean |error| by diagnosis",
     "truth_tests": "Phantoms only: network minus each comparator against the true change",
@@ -67,10 +69,14 @@ def _read(path: Path) -> pd.DataFrame:
 
 
 def pivot_summary(summary: pd.DataFrame, regions) -> pd.DataFrame:
-    """Regions (rows) by methods (columns): mean |error| in % of total brain volume."""
+    """Regions (rows) by methods (columns): mean |error| in % of total brain volume, and a
+    last row counting the participants each method forecast (a forecaster not fitted on
+    some folds forecast fewer, so its means cover fewer participants)."""
     table = summary.pivot(index="region", columns="method", values="mean_pct_tbv")
     methods = list(dict.fromkeys(summary["method"]))
-    return table.reindex(index=list(regions), columns=methods).reset_index()
+    table = table.reindex(index=list(regions), columns=methods)
+    table.loc["participants forecast"] = summary.groupby("method")["participants"].max()
+    return table.reset_index()
 
 
 def figure_forest(tests: pd.DataFrame):
@@ -109,7 +115,7 @@ def figure_forest(tests: pd.DataFrame):
         axis.set_xlabel("network minus comparator, mean |error| (% TBV); < 0: network better",
                         fontsize=8)  # fmt: skip
     figure.suptitle(
-        "cross-validated difference in forecast error, participant-cluster 95% CI "
+        "cross-validated difference in forecast error, participant-cluster CI "
         "(research use only)", fontsize=11,
     )  # fmt: skip
     figure.tight_layout(rect=(0, 0, 1, 0.985))  # room for the title
@@ -199,6 +205,7 @@ def truth_section(tables: dict[str, pd.DataFrame]) -> list[str]:
 
 
 def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
+    level = f"{100 * data['level']:g}%"
     encoded = base64.b64encode((out / "forest.png").read_bytes()).decode("ascii")
     floor = (
         f" The column <i>{FLOOR}</i> is the phantom generator's best forecast from what is "
@@ -239,17 +246,18 @@ def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
         f"<figure><img alt='forest plot' src='data:image/png;base64,{encoded}'><figcaption>"
         "Network minus each comparator: the mean over participants of the difference in "
         "their mean absolute error (% of total brain volume), with its participant-cluster "
-        "bootstrap 95% CI. Left of zero the network is better.</figcaption></figure>",
+        f"bootstrap {level} CI. Left of zero the network is better.</figcaption></figure>",
         f"<h2>Mean absolute error (% of total brain volume), regions by methods</h2><p>{floor}"
         " No scan-rescan noise floor is shown: the workspace has no same-day rescans.</p>",
         table_html(tables["at_a_glance"], "at_a_glance.tsv"),
         *truth_section(tables),
         "<h2>Region by region</h2>",
         "<p>A method is better or worse only where the CI of the participant-level "
-        "difference excludes zero and the exact sign test over participants is below 0.05 "
-        "(Holm-adjusted except for the primary endpoint). Subject-specific skill is shown "
-        "only where the network beats the population field (the same training fed the "
-        "template, so it knows only age, sex and diagnosis) and its R^2 of individual "
+        "difference excludes zero and the exact sign test over participants is below "
+        f"{1 - data['level']:.2g} (Holm-adjusted except for the primary endpoint). "
+        "Subject-specific skill is shown only where the network beats the population "
+        "field (the same training fed the template, so it knows only age, sex and "
+        "diagnosis) and its R^2 of individual "
         "annualised change exceeds the population field's with a CI above zero.</p>",
         region_words(tables["tests"], tables["headlines"], tables["skill"]),
     ]
@@ -257,7 +265,9 @@ def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
         parts.append(
             "<h2>Tuned on inner validation only</h2><p>Each fold's models were trained once "
             "per value of the tuned weight and the value with the lowest figure on the "
-            f"fold's inner validation participants was kept:</p><ul>{tuned}</ul>"
+            "fold's inner validation participants was kept, for the network and the "
+            "population field separately (so the skill contrast compares two tuned models):"
+            f"</p><ul>{tuned}</ul>"
         )
     if not_fitted:
         parts.append(f"<h2>Forecasters not fitted on some folds</h2><ul>{not_fitted}</ul>")

@@ -533,19 +533,13 @@ def _initial_network(info: ModelInfo, seed: int) -> VelocityNet:
 
 
 def _write_epoch(model_dir, network, optimiser, stopping, history, run, improved, complete):
-    """Checkpoint, best weights, model.json, log and loss curves after an epoch (rank 0)."""
+    """Best weights, model.json, log and loss curves, then the checkpoint (rank 0).
+
+    The checkpoint is written last: it marks the epoch as done, so a run killed before it
+    redoes the epoch (the same result) and one killed after it has every other file.
+    """
     if improved or not (model_dir / WEIGHTS).exists():
         save_tensors(model_dir / WEIGHTS, network.state_dict())
-    save_tensors(
-        model_dir / CHECKPOINT,
-        {
-            "model": network.state_dict(),
-            "optimizer": optimiser.state_dict(),
-            "history": history,
-            "fingerprint": run.info.fingerprint,
-        }
-        | stopping.state(),
-    )
     write_model_json(
         model_dir,
         replace(
@@ -559,6 +553,16 @@ def _write_epoch(model_dir, network, optimiser, stopping, history, run, improved
     log = pd.DataFrame(history)
     write_tsv(model_dir / "log.tsv", log)
     plot_loss_curves(log, model_dir / "loss_curves.png")
+    save_tensors(
+        model_dir / CHECKPOINT,
+        {
+            "model": network.state_dict(),
+            "optimizer": optimiser.state_dict(),
+            "history": history,
+            "fingerprint": run.info.fingerprint,
+        }
+        | stopping.state(),
+    )
 
 
 def plot_loss_curves(log: pd.DataFrame, path: Path) -> None:

@@ -9,6 +9,7 @@ import signal
 import subprocess
 import sys
 import time
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -21,6 +22,7 @@ from predictor.config import CONFIG_DIR
 from predictor.errors import DataError
 from predictor.evaluate import (
     TuneSettings,
+    annual_change,
     assign_folds,
     collect,
     coverage_table,
@@ -110,6 +112,18 @@ def test_holm_within_each_comparator_matches_the_step_down_by_hand():
     assert tests.loc["icv", "verdict"] == "check"
 
 
+def test_annual_change_is_the_least_squares_slope_through_the_origin():
+    # one participant, pairs at 1 and 2 years with 2% and 6% change: sum(c t) / sum(t^2)
+    # = (2 + 12) / 5 = 2.8 % per year (the mean of the per-pair rates would be 2.5)
+    errors = pd.DataFrame({
+        "region": "wm", "method": "ridge", "participant_id": "a", "years": [1.0, 2.0],
+        "baseline_ml": 100.0, "forecast_ml": [101.0, 104.0], "observed_ml": [102.0, 106.0],
+    })  # fmt: skip
+    change = annual_change(errors).iloc[0]
+    assert change["observed"] == pytest.approx(2.8)
+    assert change["predicted"] == pytest.approx((1 + 8) / 5)
+
+
 def test_coverage_counts_pairs_inside_their_interval():
     pairs = pd.DataFrame({
         "participant_id": ["a", "a", "b", "c"], "diagnosis": ["CN", "CN", "AD", "AD"],
@@ -182,7 +196,8 @@ def test_comparators_and_checks_are_all_there(evaluated):
     assert page.index("forest plot") < page.index("regions by methods")
     assert "research use only" in page.lower() and "primary endpoint" in page
     glance = pd.read_csv(out / "at_a_glance.tsv", sep="\t")
-    assert list(glance["region"]) == list(evaluation.regions)
+    assert list(glance["region"]) == [*evaluation.regions, "participants forecast"]
+    assert glance.iloc[-1][JACOBIAN] == 20
     skill = evaluation.skill.set_index(["region", "method"])
     assert np.isfinite(skill.loc[("ventricles", JACOBIAN), "r2_gain_over_population"])
 
@@ -204,6 +219,13 @@ def test_a_leaked_or_unfinished_fold_is_a_clear_error(evaluated, tiny_workspace,
         collect(tiny_workspace, copy, SETTINGS, seed=0)
     with pytest.raises(DataError, match="holds 2 folds with seed 0"):
         evaluate(tiny_workspace, copy, folds=3, settings=SETTINGS)
+    # a fold made with other settings is never mixed in: the default config differs
+    with pytest.raises(DataError, match="fold-1: was run with other settings"):
+        evaluate(tiny_workspace, copy, folds=2, settings=SETTINGS, measure=False)
+    with pytest.raises(DataError, match="--tune needs monitor"):
+        monitored = TrainConfig.from_toml()
+        monitored = replace(monitored, training=replace(monitored.training, monitor="val_total"))
+        evaluate(tiny_workspace, copy, 2, monitored, tune=TuneSettings("prior_weight", (0, 1)))
 
 
 @pytest.mark.slow
