@@ -32,11 +32,12 @@ from scipy import ndimage, stats
 
 from predictor.config import load_settings
 from predictor.errors import DataError
-from predictor.forecast import as_model, forecast, prepare_for
+from predictor.forecast import as_model, check_grid, forecast, prepare_for
 from predictor.longitudinal import observed_by_registration
 from predictor.nifti import load_scan
 from predictor.pairs import SETS, visit_pairs
 from predictor.parallel import run_all
+from predictor.prepare import read_prepared
 from predictor.regions import TOTAL_BRAIN, RegionSet
 from predictor.regression import all_forecasters, baseline_rows, check_table
 from predictor.rng import seeded_rng
@@ -150,7 +151,8 @@ def network_pairs(
     layout = Layout(Path(work))
     image = layout.read_cohort().set_index("key").loc[first.base_key, "image"]
     scan = load_scan(image)
-    prepared = prepare_for(model, scan)
+    prepared = read_prepared(layout.scan(first.base_key), scan, model.info.region_set)
+    check_grid(model, prepared)
     horizons = pairs["years"].tolist()
     result = forecast(
         model, scan, first.age, first.sex, first.diagnosis, horizons, prepared=prepared
@@ -485,6 +487,18 @@ def cluster_bootstrap_ci(values: np.ndarray, rng, resamples: int, level: float):
     return float(np.quantile(means, tail)), float(np.quantile(means, 1 - tail))
 
 
+def holm(p_values) -> np.ndarray:
+    """Holm's (1979) step-down adjusted p-values: the i-th smallest of m times (m - i + 1),
+    running maximum, capped at 1 (statsmodels' ``multipletests(method="holm")`` gives the
+    same, but collects garbage on every call)."""
+    raw = np.asarray(p_values, dtype=float)
+    order = np.argsort(raw, kind="stable")
+    stepped = np.maximum.accumulate(raw[order] * (len(raw) - np.arange(len(raw))))
+    adjusted = np.empty_like(raw)
+    adjusted[order] = np.minimum(stepped, 1.0)
+    return adjusted
+
+
 def paired_tests(errors: pd.DataFrame, names, checks, settings: CompareSettings, seed: int):
     """Each network variant against every comparator, region by region, per participant.
 
@@ -496,7 +510,6 @@ def paired_tests(errors: pd.DataFrame, names, checks, settings: CompareSettings,
     (reference regions, whole brain) are reported, never won. A method is better
     only when the CI of the difference excludes zero and its sign test is significant.
     """
-    from statsmodels.stats.multitest import multipletests
 
     if settings.primary_region not in names or settings.primary_region in checks:
         raise DataError(
@@ -538,8 +551,8 @@ def paired_tests(errors: pd.DataFrame, names, checks, settings: CompareSettings,
                 )  # fmt: skip
             secondary = [row for row in family if row["role"] == "secondary"]
             if secondary:
-                adjusted = multipletests([row["sign_test_p"] for row in secondary], method="holm")
-                for row, p in zip(secondary, adjusted[1], strict=True):
+                adjusted = holm([row["sign_test_p"] for row in secondary])
+                for row, p in zip(secondary, adjusted, strict=True):
                     row["holm_p"] = float(p)
             for row in family:
                 row.setdefault("holm_p", row["sign_test_p"] if row["role"] == "primary" else np.nan)

@@ -1,18 +1,20 @@
 """``predictor demo``: every stage on a fictional memory clinic's phantom cohort.
 
-phantoms -> prepare -> train -> forecast -> compare -> trial-size, into one
-folder (settings in ``configs/demo.toml``)::
+phantoms -> prepare -> evaluate (K-fold cross-validation) -> forecast ->
+trial-size, into one folder (settings in ``configs/demo.toml``)::
 
     OUT/cohort/      BIDS phantom cohort (scenario in the settings) with its ground truth
-    OUT/work/        prepared workspace (volumes.tsv)
-    OUT/model/       trained model, training log and loss curves
-    OUT/population/  the same training with the template as every participant's image
-                     (the population field the comparison holds the network against)
-    OUT/forecasts/   forecasts of every participant's baseline scan
-    OUT/report/      held-out comparison (report.html, TSVs, PNGs)
+    OUT/work/        prepared workspace (volumes.tsv, changes.tsv)
+    OUT/evaluation/  cross-validated evaluation: fold-<k>/ (network, population field,
+                     forecasts.tsv), evaluation.html, forest.png, TSVs
+    OUT/forecasts/   forecasts of every participant's baseline scan, each by the network
+                     of the fold that held the participant out
     OUT/trial/       sample size per arm against enrichment (TSV, JSON, PNG)
     OUT/prepare_accuracy.tsv   measured against true volumes (% error)
     OUT/change_accuracy.tsv    measured against true change, by registration and segmentation
+
+A rerun regenerates the cohort, reuses prepared scans whose inputs did not
+change, and starts the evaluation and the forecasts afresh.
 """
 
 from __future__ import annotations
@@ -26,7 +28,7 @@ import pandas as pd
 
 from predictor.config import CONFIG_DIR, load_settings
 
-STAGES = ("phantoms", "prepare", "train", "population", "forecast", "compare", "trial-size")
+STAGES = ("phantoms", "prepare", "evaluate", "forecast", "trial-size")
 
 
 @dataclass(frozen=True)
@@ -39,6 +41,7 @@ class DemoSettings:
     size: str
     grid_mm: float
     train_config: str
+    folds: int
     epochs: int
     max_pairs_per_epoch: int
     forecast_years: tuple[float, ...]
@@ -126,26 +129,24 @@ def run_demo(
     """Run every stage into ``out``; returns paths and the stages' main tables.
 
     ``on_stage(name, items)`` is called as each stage starts and returns a
-    function called after each item of that stage (participant, scan, epoch).
+    function called after each item of that stage (participant, scan, fold).
     """
+    import shutil
+    from dataclasses import replace
+
     from predictor.cohort import read_cohort
-    from predictor.compare import compare
+    from predictor.evaluate import evaluate, fold_folder, model_folder, read_folds
+    from predictor.evaluation_report import write_evaluation
     from predictor.files import write_tsv
-    from predictor.forecast import as_model
     from predictor.forecast_io import forecast_cohort
     from predictor.phantoms.generate import TEMPLATE, generate_cohort
     from predictor.prepare import PrepareSettings, prepare_cohort
-    from predictor.report import write_report
-    from predictor.training import TrainConfig, train
+    from predictor.training import TrainConfig
     from predictor.trials import Design, trial_report
 
     settings = DemoSettings.from_toml(quick)
     out = Path(out)
-    folders = {
-        name: out / name
-        for name in ("cohort", "work", "model", "population", "forecasts", "report")
-    }
-    folders["trial"] = out / "trial"
+    folders = {name: out / name for name in ("cohort", "work", "evaluation", "forecasts", "trial")}
 
     def stage(name, items):
         return on_stage(name, items) if on_stage else None
@@ -174,35 +175,36 @@ def run_demo(
     write_tsv(out / "prepare_accuracy.tsv", accuracy)
     write_tsv(out / "change_accuracy.tsv", change_agreement(folders["work"], folders["cohort"]))
 
-    raw = TrainConfig.from_toml(CONFIG_DIR / settings.train_config).to_dict()
-    raw["training"]["max_pairs_per_epoch"] = settings.max_pairs_per_epoch
-    for name, image_input in (("train", "scan"), ("population", "template")):
-        raw["training"]["image_input"] = image_input
-        epoch_done = stage(name, settings.epochs)
-        train(
-            folders["work"],
-            folders["model" if image_input == "scan" else "population"],
-            TrainConfig.from_dict(raw, "demo"),
-            epochs=settings.epochs,
-            seed=settings.seed,
-            force=True,
-            on_epoch=(lambda row, done=epoch_done: done()) if epoch_done else None,
-        )
+    config = TrainConfig.from_toml(CONFIG_DIR / settings.train_config)
+    config = replace(config, training=replace(
+        config.training, epochs=settings.epochs, max_pairs_per_epoch=settings.max_pairs_per_epoch
+    ))  # fmt: skip
+    for folder in (folders["evaluation"], folders["forecasts"]):
+        shutil.rmtree(folder, ignore_errors=True)  # the demo's own outputs of an earlier run
+    fold_done = stage("evaluate", settings.folds)
+    # scan volumes are not measured (the slowest step): the network's own volumes are scored
+    for fold in range(1, settings.folds + 1):
+        evaluate(folders["work"], folders["evaluation"], settings.folds, config, fold, jobs,
+                 settings.seed, measure=False)  # fmt: skip
+        if fold_done:
+            fold_done()
+    evaluation = evaluate(folders["work"], folders["evaluation"], settings.folds, config,
+                          jobs=jobs, seed=settings.seed, measure=False)  # fmt: skip
+    page = write_evaluation(evaluation, folders["evaluation"])
+
+    assignment = read_folds(folders["evaluation"])["assignment"]
+    models = {
+        participant: model_folder(fold_folder(folders["evaluation"], fold), "network")
+        for participant, fold in assignment.items()
+    }
     forecast_cohort(
-        folders["model"],
-        table,
+        models,
+        table[table["participant_id"].isin(models)],
         folders["forecasts"],
         settings.forecast_years,
         jobs=jobs,
-        progress=stage("forecast", settings.participants),
+        progress=stage("forecast", len(models)),
     )
-    test = as_model(folders["model"]).info.split["test"]
-    progress = stage("compare", len(test))
-    comparison = compare(
-        folders["model"], folders["work"], jobs, progress=progress,
-        population=folders["population"],
-    )  # fmt: skip
-    page = write_report(comparison, folders["report"])
     trial_done = stage("trial-size", 1)
     trial = trial_report(
         folders["forecasts"],
@@ -218,6 +220,6 @@ def run_demo(
         "folders": folders,
         "report": page,
         "prepare_accuracy": accuracy,
-        "comparison": comparison,
+        "evaluation": evaluation,
         "trial": trial,
     }

@@ -447,9 +447,26 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
             "level": settings.level,
             "not_fitted": not_fitted,
             "tuning": tuning,
+            "run": run_summary(out, workspace),
         },
         regions=tuple(names),
     )
+
+
+def run_summary(out: Path, workspace) -> dict:
+    """How the folds were run (from fold 1's stamp; :func:`check_folds` holds every fold to
+    it): working grid (mm), epochs, training pairs drawn per epoch (0: all), network
+    channels, and whether the network's forecast scans were measured."""
+    stamp = json.loads((fold_folder(out, 1) / STAMP).read_text())
+    training, network = stamp["config"]["training"], stamp["config"]["network"]
+    spacing = np.linalg.norm(workspace.grid_affine[:3, :3], axis=0)
+    return {
+        "grid_mm": [round(float(v), 3) for v in spacing],
+        "epochs": training["epochs"],
+        "max_pairs_per_epoch": training["max_pairs_per_epoch"],
+        "channels": network["channels"],
+        "scan_volumes": stamp["measure"],
+    }
 
 
 # --- subject-specific skill and coverage ---------------------------------------------------

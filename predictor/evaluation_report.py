@@ -204,6 +204,25 @@ def truth_section(tables: dict[str, pd.DataFrame]) -> list[str]:
     ]
 
 
+def run_note(run: dict) -> str:
+    """One paragraph on how the folds were trained and scored (a coarse or short run, such
+    as the demo's, says so here)."""
+    grid = " x ".join(f"{v:g}" for v in run["grid_mm"])
+    pairs = run["max_pairs_per_epoch"] or "all"
+    scans = (
+        "The network's forecast scans were also measured like real follow-ups."
+        if run["scan_volumes"]
+        else "The network's forecast scans were not measured (--no-scan-volumes): only its "
+        "own Jacobian-integral volumes are scored."
+    )
+    return (
+        f"<p>Each fold's models were trained on a {grid} mm working grid for at most "
+        f"{run['epochs']} epochs of {pairs} training pairs (network channels "
+        f"{', '.join(str(c) for c in run['channels'])}); a coarser grid or fewer epochs "
+        f"than a study would use may understate what the network can do. {scans}</p>"
+    )
+
+
 def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
     level = f"{100 * data['level']:g}%"
     encoded = base64.b64encode((out / "forest.png").read_bytes()).decode("ascii")
@@ -243,6 +262,7 @@ def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
         f"before the run in configs/compare.toml, is <b>{_name(data['primary_region'])}</b> "
         "(all horizons, each participant's mean error). "
         f"{observed_note(data)}</p>",
+        run_note(data["run"]),
         f"<figure><img alt='forest plot' src='data:image/png;base64,{encoded}'><figcaption>"
         "Network minus each comparator: the mean over participants of the difference in "
         "their mean absolute error (% of total brain volume), with its participant-cluster "

@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import json
 import os
+from collections.abc import Mapping
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -267,7 +268,7 @@ def _cohort_task(model_dir: str, row: dict, horizons, out: str, threads: int) ->
 
 
 def forecast_cohort(
-    model_dir: str | os.PathLike[str],
+    model_dir: str | os.PathLike[str] | Mapping[str, str | os.PathLike[str]],
     cohort: pd.DataFrame,
     out: str | os.PathLike[str],
     years,
@@ -277,11 +278,21 @@ def forecast_cohort(
 ) -> dict:
     """Forecast every participant's baseline (or ``session``) scan of a validated cohort.
 
-    Failed scans are listed in ``out/failures.tsv`` and the others go on;
+    ``model_dir``: one model folder, or a participant_id -> model folder mapping (each
+    participant forecast by its own model, such as the cross-validation fold that held it
+    out). Failed scans are listed in ``out/failures.tsv`` and the others go on;
     ``out/forecasts.tsv`` collects every complete forecast's volume table.
     Returns counts: forecast, skipped, failed.
     """
-    as_model(model_dir)  # fail early on a bad model folder
+    if isinstance(model_dir, Mapping):
+        missing = sorted(set(cohort["participant_id"]) - set(model_dir))
+        if missing:
+            raise DataError(f"no model named for participant(s) {', '.join(missing[:5])}")
+        models = {pid: str(folder) for pid, folder in model_dir.items()}
+    else:
+        models = dict.fromkeys(cohort["participant_id"], str(model_dir))
+    for folder in sorted(set(models.values())):
+        as_model(folder)  # fail early on a bad model folder
     horizons = check_horizons(years)
     out = Path(out)
     if session is None:
@@ -291,7 +302,10 @@ def forecast_cohort(
         if chosen.empty:
             raise DataError(f"no scan of session '{session}' in the cohort")
     rows = chosen.to_dict("records")
-    arguments = [(str(model_dir), row, horizons, str(out), 1 if jobs > 1 else 0) for row in rows]
+    arguments = [
+        (models[row["participant_id"]], row, horizons, str(out), 1 if jobs > 1 else 0)
+        for row in rows
+    ]
     results = run_all(_cohort_task, arguments, jobs, progress)
     failures = [r for r in results if "failed" in r]
     write_tsv(

@@ -406,6 +406,33 @@ def _load_row(row: dict) -> tuple[Scan, np.ndarray | None]:
     return scan, mask_scan.data > 0.5
 
 
+def read_prepared(files: ScanFiles, scan: Scan, regions: RegionSet) -> PreparedScan:
+    """A scan's preparation as the workspace cached it (what :func:`_prepare_entry` wrote),
+    so a forecast of a prepared scan need not prepare it again. ``scan`` is the scan
+    itself (its RAS affine is taken exactly, not from the float32 NIfTI header)."""
+    import nibabel as nib
+
+    def array(path, dtype=np.float32):
+        return np.asarray(nib.load(path).dataobj, dtype=dtype)
+
+    result = files.read_result()
+    maps, grid_t1 = array(files.native_maps), array(files.t1)
+    return PreparedScan(
+        volumes=result["volumes_ml"],
+        template_to_native=np.asarray(result["template_to_native"], dtype=float),
+        grid_t1=grid_t1,
+        grid_mask=array(files.mask, np.uint8) > 0,
+        grid_tissue=array(files.tissue),
+        grid_regions=array(files.regions).reshape(*grid_t1.shape, -1),
+        native_tissue={name: maps[..., k] for k, name in enumerate(TISSUES)},
+        native_deep={name: maps[..., len(TISSUES) + k] for k, name in enumerate(regions.deep)},
+        native_labels=array(files.labels, np.uint8),
+        native_t1=array(files.native_t1),
+        native_affine=scan.affine,
+        diagnostics=result["diagnostics"],
+    )
+
+
 def _prepare_entry(row: dict, files: ScanFiles, template: Template, settings) -> dict:
     try:
         scan, mask = _load_row(row)

@@ -427,14 +427,22 @@ class MixedFit:
         )
 
 
+#: optimiser tried when the chosen one stops at a degenerate point
+RESCUE_METHOD = "bfgs"
+
+
 def fit_mixed(volume, exog, participants, years, diagnosis, trim, method) -> MixedFit:
     """REML fit of one region (random intercept and slope); with ``trim``, drop and refit.
 
     Arrays have one entry (row) per visit: volume (N,) mL, exog (N, K),
-    participants (N,), years since baseline (N,), diagnosis (N,).
+    participants (N,), years since baseline (N,), diagnosis (N,). A fit whose
+    fixed-effects covariance is not finite and positive definite (Powell's method
+    can report convergence at such a point, with a spurious slope) is refitted with
+    BFGS; one that stays degenerate is marked not converged.
     """
     import statsmodels.api as sm
 
+    k = exog.shape[1]
     keep = np.ones(len(volume), dtype=bool)
     for _ in range(2 if trim else 1):
         model = sm.MixedLM(
@@ -446,17 +454,26 @@ def fit_mixed(volume, exog, participants, years, diagnosis, trim, method) -> Mix
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             result = model.fit(reml=True, method=[method])
+            if not _usable(result, k) and method != RESCUE_METHOD:
+                result = model.fit(reml=True, method=[RESCUE_METHOD])
         if trim and keep.all():
             keep = trim_mask(volume - result.fittedvalues, diagnosis, trim)
-    k = exog.shape[1]
     return MixedFit(
         np.asarray(result.fe_params),
         np.asarray(result.cov_params())[:k, :k],
         np.asarray(result.cov_re),
         float(result.scale),
-        bool(result.converged),
+        _usable(result, k),
         int(keep.sum()),
     )
+
+
+def _usable(result, k: int) -> bool:
+    """Converged, with a finite, positive definite fixed-effects covariance (K, K)."""
+    cov = np.asarray(result.cov_params())[:k, :k]
+    if not (result.converged and np.isfinite(cov).all()):
+        return False
+    return bool(np.linalg.eigvalsh((cov + cov.T) / 2).min() > 0)
 
 
 class MixedEffectsForecaster:

@@ -532,8 +532,12 @@ def _initial_network(info: ModelInfo, seed: int) -> VelocityNet:
         return build_network(info)
 
 
+#: the loss curves are redrawn every this many epochs, and when training ends
+CURVES_EVERY = 5
+
+
 def _write_epoch(model_dir, network, optimiser, stopping, history, run, improved, complete):
-    """Best weights, model.json, log and loss curves, then the checkpoint (rank 0).
+    """Best weights, model.json, log (and loss curves), then the checkpoint (rank 0).
 
     The checkpoint is written last: it marks the epoch as done, so a run killed before it
     redoes the epoch (the same result) and one killed after it has every other file.
@@ -552,7 +556,8 @@ def _write_epoch(model_dir, network, optimiser, stopping, history, run, improved
     )
     log = pd.DataFrame(history)
     write_tsv(model_dir / "log.tsv", log)
-    plot_loss_curves(log, model_dir / "loss_curves.png")
+    if complete or stopping.epoch % CURVES_EVERY == 0:  # a plot costs about a tiny epoch
+        plot_loss_curves(log, model_dir / "loss_curves.png")
     save_tensors(
         model_dir / CHECKPOINT,
         {

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import json
+
+import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
@@ -43,18 +46,30 @@ def test_demo_quick_runs_every_stage_then_prepare_reuses_its_cache(tmp_path):
     assert "measured against true volumes" in result.output
     assert "Research use only" in result.output
     for path in (
-        "model/weights.pt",
+        "evaluation/folds.json",
+        "evaluation/fold-5/network/weights.pt",
+        "evaluation/evaluation.html",
+        "evaluation/tests.tsv",
         "forecasts/forecasts.tsv",
-        "report/report.html",
-        "report/tests.tsv",
         "trial/enrichment.tsv",
         "trial/enrichment.png",
     ):
         assert (out / path).is_file(), path
-    assert f"report: {out / 'report' / 'report.html'}" in result.output
+    assert f"report: {out / 'evaluation' / 'evaluation.html'}" in result.output
+    assert "Cross-validated (5 folds" in result.output
+    # every participant's baseline forecast by the network of the fold that held it out
+    folds = json.loads((out / "evaluation" / "folds.json").read_text())["assignment"]
+    forecasts = pd.read_csv(out / "forecasts" / "forecasts.tsv", sep="\t")
+    assert set(forecasts["participant_id"]) == set(folds)
+    for participant, fold in folds.items():
+        provenance = next((out / "forecasts" / participant).glob("*/anat/*provenance*"))
+        model = json.loads((out / "evaluation" / f"fold-{fold}" / "network" / "model.json")
+                           .read_text())  # fmt: skip
+        assert json.loads(provenance.read_text())["model"]["weights_sha256"] == model[
+            "weights_sha256"
+        ], participant
     listing = runner.invoke(app, ["volumes", str(out / "work"), "--json"])
     assert listing.exit_code == 0
-    import json
 
     rows = json.loads(listing.output)
     assert rows and rows[0]["brain"] > 0 and abs(rows[0]["brain_pct_tbv"] - 100) < 1e-9

@@ -270,3 +270,14 @@ def test_report_renders_in_headless_chromium(comparison, tmp_path):
     pixels = np.asarray(Image.open(shot).convert("L"), dtype=float)
     assert pixels.shape[0] > 1000
     assert pixels.std() > 10  # text, tables and figures, not a blank page
+
+
+def test_holm_matches_statsmodels(rng):
+    # statsmodels' multipletests(method="holm") is the reference; ties and values near 1
+    from statsmodels.stats.multitest import multipletests
+
+    from predictor.compare import holm
+
+    for size in (1, 2, 7, 16):
+        p = np.round(rng.uniform(0, 1, size) ** 3, 3)  # rounding makes ties
+        np.testing.assert_allclose(holm(p), multipletests(p, method="holm")[1], rtol=1e-12)

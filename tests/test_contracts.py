@@ -154,7 +154,7 @@ def test_training_and_forecast_build_bitwise_equal_inputs(tiny_workspace):
     from predictor.forecast import network_inputs
     from predictor.nifti import load_scan
     from predictor.pairs import ScanStore, make_batch
-    from predictor.prepare import cached_template, prepare_scan
+    from predictor.prepare import cached_template, prepare_scan, read_prepared
     from predictor.preprocess import single_threaded_itk
     from predictor.workspace import read_workspace
 
@@ -180,6 +180,18 @@ def test_training_and_forecast_build_bitwise_equal_inputs(tiny_workspace):
     assert inputs.dtype == batch.inputs.dtype == torch.float32
     assert torch.equal(inputs, batch.inputs)
     assert torch.equal(weights, batch.regions)
+    # the workspace's cached preparation read back (what evaluate forecasts from) is the
+    # fresh one: the same arrays and volumes, so the same forecast
+    cached = read_prepared(workspace.layout.scan(row["key"]), load_scan(image), workspace.regions)
+    for name in ("grid_t1", "grid_mask", "grid_tissue", "grid_regions", "native_labels",
+                 "native_t1", "native_affine", "template_to_native"):  # fmt: skip
+        np.testing.assert_array_equal(getattr(cached, name), getattr(prepared, name), name)
+    maps, fresh = (p.native_tissue | p.native_deep for p in (cached, prepared))
+    assert maps.keys() == fresh.keys()
+    for name in fresh:
+        np.testing.assert_array_equal(maps[name], fresh[name], name)
+    assert cached.volumes == pytest.approx(prepared.volumes, rel=1e-12)
+    assert torch.equal(network_inputs(model, cached)[0], inputs)
 
 
 def test_a_population_field_sees_the_template_for_everyone(tiny_workspace):
@@ -208,14 +220,16 @@ def test_a_population_field_sees_the_template_for_everyone(tiny_workspace):
 
 
 @pytest.mark.slow
-def test_a_region_added_in_a_regions_file_reaches_volumes_prior_and_forecasts(tmp_path):
+def test_a_region_added_in_a_regions_file_reaches_volumes_prior_and_forecasts(
+    tiny_workspace, tmp_path
+):
     """No code change: 'hippocampi' (both hippocampal labels) from a user's regions file."""
     from helpers import constant_velocity_model
 
     from predictor.cohort import read_cohort
     from predictor.forecast import forecast
     from predictor.pairs import attach_prior, fit_prior, visit_pairs
-    from predictor.phantoms.generate import TEMPLATE, generate_cohort
+    from predictor.phantoms.generate import TEMPLATE
     from predictor.prepare import prepare_cohort
     from predictor.workspace import read_workspace
 
@@ -227,8 +241,9 @@ def test_a_region_added_in_a_regions_file_reaches_volumes_prior_and_forecasts(tm
     )
     regions = RegionSet.from_toml(extra)
     assert regions.names[-1] == "hippocampi" and "hippocampi" in regions.prior
-    cohort = generate_cohort(tmp_path / "bids", participants=12, size="tiny", seed=8, jobs=2)
+    cohort = tiny_workspace.parent / "bids"  # the shared tiny cohort, 8 of its participants
     table = read_cohort(cohort)
+    table = table[table["participant_id"].isin(sorted(set(table["participant_id"]))[:8])]
     settings = PrepareSettings.from_toml(grid_mm=4.0)
     prepare_cohort(table, tmp_path / "work", cohort / TEMPLATE, settings, jobs=2, regions=regions)
     volumes = pd.read_csv(tmp_path / "work" / "volumes.tsv", sep="\t")

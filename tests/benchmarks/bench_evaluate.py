@@ -25,7 +25,6 @@ PARTICIPANTS, FOLDS, PAIRS_PER_EPOCH = 30, 5, 40
 
 def _evaluation(scenario: str) -> dict:
     from predictor.cohort import read_cohort
-    from predictor.compare import JACOBIAN, POPULATION
     from predictor.config import CONFIG_DIR
     from predictor.evaluate import evaluate
     from predictor.phantoms.generate import TEMPLATE, generate_cohort
@@ -46,6 +45,17 @@ def _evaluation(scenario: str) -> dict:
         seconds["prepare"] = time.perf_counter() - seconds["phantoms"] - started
         evaluation = evaluate(root / "work", root / "cv", FOLDS, config, jobs=2, measure=False)
         seconds["evaluate"] = time.perf_counter() - sum(seconds.values()) - started
+    return {
+        "participants": PARTICIPANTS,
+        "folds": FOLDS,
+        "stage_s": {k: round(v, 1) for k, v in seconds.items()},
+    } | evaluation_table(evaluation)
+
+
+def evaluation_table(evaluation) -> dict:
+    """Per target region: the network's differences, skill, floor ratio, truth, coverage."""
+    from predictor.compare import JACOBIAN, POPULATION
+
     tests, skill = evaluation.tests, evaluation.skill.set_index(["region", "method"])
     summary = evaluation.summary.set_index(["region", "method"])["mean_pct_tbv"]
     headlines = evaluation.headlines.set_index(["region", "network"])
@@ -96,11 +106,8 @@ def _evaluation(scenario: str) -> dict:
             },
         }
     return {
-        "participants": PARTICIPANTS,
-        "folds": FOLDS,
         "pairs": evaluation.data["pairs"],
         "not_fitted": sorted(evaluation.data["not_fitted"]),
-        "stage_s": {k: round(v, 1) for k, v in seconds.items()},
         "regions": regions,
     }
 
