@@ -3,9 +3,11 @@
 On the model's test participants (its saved split), every baseline ->
 follow-up pair is forecast by
 
-* the network: the forecast scan is measured by the same volume measurement
-  as the real follow-up (``prepare_scan``), with the Jacobian-integral volume
-  kept beside it as a consistency check;
+* the network: the forecast scan is measured by the same measurement as the
+  real follow-up (the segmentation of ``prepare_scan``; with the observed change
+  by registration, the change from the baseline visit to the forecast scan by
+  registration for the regions with a boundary), with the Jacobian-integral
+  volume kept beside it;
 * every regression forecaster of :mod:`predictor.regression`, refitted here
   on the model's training participants only;
 * on phantom cohorts, the generator's best observable forecast (its ratio
@@ -31,13 +33,13 @@ import pandas as pd
 from scipy import ndimage, stats
 
 from predictor.config import load_settings
-from predictor.errors import DataError
+from predictor.errors import DataError, PredictorError
 from predictor.forecast import as_model, check_grid, forecast, prepare_for
-from predictor.longitudinal import observed_by_registration
+from predictor.longitudinal import Visit, observed_by_registration, pair_change
 from predictor.nifti import load_scan
 from predictor.pairs import SETS, visit_pairs
 from predictor.parallel import run_all
-from predictor.prepare import read_prepared
+from predictor.prepare import PrepareSettings, read_prepared
 from predictor.regions import TOTAL_BRAIN, RegionSet
 from predictor.regression import all_forecasters, baseline_rows, check_table
 from predictor.rng import seeded_rng
@@ -135,13 +137,19 @@ def network_pairs(
     pairs: pd.DataFrame,
     population_dir: str | None = None,
     measure: bool = True,
+    observed_change: str = "segmentation",
 ) -> list[dict]:
     """Network forecasts of one participant's pairs (same baseline), measured like real scans.
 
     Returns one dict per pair: measured and Jacobian volumes (mL) and the
     image agreement of the forecast and of no change with the real follow-up
     (without ``measure``, only the Jacobian volumes: the forecast scans are not
-    measured, the slowest step);
+    measured, the slowest step). With ``observed_change="registration"`` the
+    regions that the observed change takes from registration (those with a
+    boundary, :func:`~predictor.longitudinal.observed_by_registration`) are
+    measured the same way on the forecast: its baseline volume times the change
+    from the baseline visit to the forecast scan by
+    :func:`~predictor.longitudinal.pair_change`;
     with ``population_dir``, the population-field model's Jacobian volumes of
     the participant's own regions (``population_<region>``); the longest-horizon
     pair also carries its working-grid images (``example``).
@@ -179,6 +187,9 @@ def network_pairs(
         mask = base_mask | follow_mask
         for region in model.info.region_set.names:
             row[f"measured_{region}"] = measured.volumes[region]
+        if observed_change == "registration":
+            for region, ratio in registered_change(model, prepared, measured).items():
+                row[f"measured_{region}"] = prepared.volumes[region] * ratio
         network = image_agreement(
             measured.grid_t1, measured.grid_tissue, follow_t1, follow_tissue, mask
         )
@@ -190,6 +201,21 @@ def network_pairs(
             row["example"] = (title, base_t1, follow_t1, measured.grid_t1)
         rows.append(row)
     return rows
+
+
+def registered_change(model, baseline, forecast) -> dict[str, float]:
+    """Volume ratio forecast / baseline of each region with a boundary, by registration of
+    the two prepared scans (the observed change's measurement); {} where it fails, so the
+    forecast keeps its segmentation volumes, as an observed pair without a change does."""
+    regions = model.info.region_set
+    settings = PrepareSettings.from_dict(model.info.prepare_settings).longitudinal
+    try:
+        ratio = pair_change(Visit.of(baseline), Visit.of(forecast), regions, settings)["ratio"]
+    except (PredictorError, RuntimeError):
+        return {}
+    return {
+        r.name: ratio[r.name] for r in regions.regions if r.boundary is not None and r.name in ratio
+    }
 
 
 # --- the comparison ------------------------------------------------------------------------
@@ -324,9 +350,10 @@ def compare(
     groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
     population_dir = _population(population, model) if population is not None else None
     arguments = [
-        (str(Path(model_dir).resolve()), str(Path(work).resolve()), group, population_dir)
+        (str(Path(model_dir).resolve()), str(Path(work).resolve()), group, population_dir,
+         True, settings.observed_change)
         for group in groups
-    ]
+    ]  # fmt: skip
     measured = [row for rows in run_all(network_pairs, arguments, jobs, progress) for row in rows]
     examples = [row.pop("example") for row in measured if "example" in row][:3]
     measured = pd.DataFrame(measured)

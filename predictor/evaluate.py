@@ -204,16 +204,18 @@ def fold_folder(out: Path, fold: int) -> Path:
 def run_fold(
     work, out: Path, fold: int, config: TrainConfig, seed: int, jobs: int,
     measure: bool = True, progress=None, tune: TuneSettings | None = None,
+    observed_change: str = "registration",
 ):  # fmt: skip
     """Train fold ``fold``'s two models (resuming) and forecast its participants' pairs.
 
-    ``measure``: also measure the network's forecast scans like real ones (slowest step).
+    ``measure``: also measure the network's forecast scans like real ones (slowest step),
+    by ``observed_change`` (the observed change's measurement, :func:`network_pairs`).
     ``tune``: choose a loss weight per model on the fold's inner validation participants
     (``fold-<k>/tuning.json``). Writes ``fold-<k>/forecasts.tsv`` last, atomically; a
     fold that has it is done.
     """
     folder = fold_folder(out, fold)
-    check_stamp(folder, fold_stamp(config, seed, measure, tune))
+    check_stamp(folder, fold_stamp(config, seed, measure, tune, observed_change))
     if (folder / FORECASTS).is_file():
         return folder / FORECASTS
     workspace = read_workspace(work)
@@ -234,7 +236,7 @@ def run_fold(
         groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
         arguments = [
             (str(model_folder(folder, "network").resolve()), str(Path(work).resolve()), group,
-             str(model_folder(folder, "population").resolve()), measure)
+             str(model_folder(folder, "population").resolve()), measure, observed_change)
             for group in groups
         ]  # fmt: skip
         measured = pd.DataFrame(
@@ -258,10 +260,11 @@ def run_fold(
     return write_tsv(folder / FORECASTS, table[list(FORECAST_COLUMNS)])
 
 
-def fold_stamp(config: TrainConfig, seed: int, measure: bool, tune) -> dict:
+def fold_stamp(config: TrainConfig, seed: int, measure: bool, tune, observed_change) -> dict:
     """What a fold's results depend on besides the workspace (``fold-<k>/fold.json``)."""
     stamp = {"config": config.to_dict(), "seed": seed, "measure": measure,
-             "tune": None if tune is None else asdict(tune)}  # fmt: skip
+             "tune": None if tune is None else asdict(tune),
+             "observed_change": observed_change}  # fmt: skip
     return json.loads(json.dumps(stamp))
 
 
@@ -271,8 +274,9 @@ def check_stamp(folder: Path, stamp: dict) -> None:
     if path.is_file():
         if json.loads(path.read_text()) != stamp:
             raise DataError(
-                f"{folder}: was run with other settings (training config, seed, --tune or "
-                "--no-scan-volumes); rerun with those settings or use another OUT"
+                f"{folder}: was run with other settings (training config, seed, --tune, "
+                "--no-scan-volumes or the observed change of configs/compare.toml); rerun "
+                "with those settings or use another OUT"
             )
         return
     folder.mkdir(parents=True, exist_ok=True)
@@ -615,11 +619,12 @@ def evaluate(
             "loss is weighted by the very weight being tuned"
         )
     saved = start_folds(read_workspace(work).volumes, out, folds, seed)
+    if fold is not None and not 1 <= fold <= saved["folds"]:
+        raise DataError(f"--fold must be within 1..{saved['folds']}, got {fold}")
+    chosen = [fold] if fold is not None else range(1, saved["folds"] + 1)
+    for k in chosen:
+        run_fold(work, out, k, config, seed, jobs, measure, progress, tune,
+                 settings.observed_change)  # fmt: skip
     if fold is not None:
-        if not 1 <= fold <= saved["folds"]:
-            raise DataError(f"--fold must be within 1..{saved['folds']}, got {fold}")
-        run_fold(work, out, fold, config, seed, jobs, measure, progress, tune)
         return None
-    for k in range(1, saved["folds"] + 1):
-        run_fold(work, out, k, config, seed, jobs, measure, progress, tune)
     return collect(work, out, settings, seed)

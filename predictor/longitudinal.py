@@ -40,7 +40,6 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from types import SimpleNamespace
 
-import nibabel as nib
 import numpy as np
 import pandas as pd
 import SimpleITK as sitk
@@ -49,7 +48,7 @@ from predictor import __version__
 from predictor.errors import PredictorError
 from predictor.files import write_json, write_tsv
 from predictor.preprocess import run_registration
-from predictor.regions import TISSUES, RegionSet
+from predictor.regions import RegionSet
 from predictor.spatial import affine_to_matrix, from_sitk, matrix_to_transform, to_sitk
 from predictor.volumes import region_volumes
 from predictor.workspace import Layout
@@ -69,19 +68,18 @@ class Visit:
     deep: dict[str, np.ndarray]
 
     @classmethod
+    def of(cls, prepared) -> Visit:
+        """The visit of a :class:`~predictor.prepare.PreparedScan` (its native arrays)."""
+        return cls(prepared.native_t1, prepared.native_affine, prepared.native_tissue,
+                   prepared.native_deep)  # fmt: skip
+
+    @classmethod
     def read(cls, folder: Path, regions: RegionSet) -> Visit:
         """The visit of a prepared scan entry (its native_* files)."""
+        from predictor.prepare import read_prepared
         from predictor.workspace import ScanFiles
 
-        files = ScanFiles(folder)
-        image = nib.load(files.native_t1)
-        maps = np.asarray(nib.load(files.native_maps).dataobj, dtype=np.float32)
-        return cls(
-            t1=np.asarray(image.dataobj, dtype=np.float32),
-            affine=image.affine,
-            tissue={name: maps[..., k] for k, name in enumerate(TISSUES)},
-            deep={name: maps[..., len(TISSUES) + k] for k, name in enumerate(regions.deep)},
-        )
+        return cls.of(read_prepared(ScanFiles(folder), None, regions))
 
     @property
     def voxel_ml(self) -> float:

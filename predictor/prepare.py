@@ -406,15 +406,17 @@ def _load_row(row: dict) -> tuple[Scan, np.ndarray | None]:
     return scan, mask_scan.data > 0.5
 
 
-def read_prepared(files: ScanFiles, scan: Scan, regions: RegionSet) -> PreparedScan:
+def read_prepared(files: ScanFiles, scan: Scan | None, regions: RegionSet) -> PreparedScan:
     """A scan's preparation as the workspace cached it (what :func:`_prepare_entry` wrote),
-    so a forecast of a prepared scan need not prepare it again. ``scan`` is the scan
-    itself (its RAS affine is taken exactly, not from the float32 NIfTI header)."""
+    so a forecast of a prepared scan need not prepare it again. ``scan``: the scan itself,
+    whose RAS affine is taken exactly; None takes it from the cached native T1's header
+    (float32, about 1e-7 off)."""
     import nibabel as nib
 
     def array(path, dtype=np.float32):
         return np.asarray(nib.load(path).dataobj, dtype=dtype)
 
+    affine = scan.affine if scan is not None else nib.load(files.native_t1).affine
     result = files.read_result()
     maps, grid_t1 = array(files.native_maps), array(files.t1)
     return PreparedScan(
@@ -428,7 +430,7 @@ def read_prepared(files: ScanFiles, scan: Scan, regions: RegionSet) -> PreparedS
         native_deep={name: maps[..., len(TISSUES) + k] for k, name in enumerate(regions.deep)},
         native_labels=array(files.labels, np.uint8),
         native_t1=array(files.native_t1),
-        native_affine=scan.affine,
+        native_affine=affine,
         diagnostics=result["diagnostics"],
     )
 

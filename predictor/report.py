@@ -272,9 +272,10 @@ def observed_note(data: dict) -> str:
             "brain, hippocampi, ventricles) are the baseline volume times the change "
             "measured between the two aligned visits by the boundary shift integral "
             "(changes.tsv of the workspace); the other regions' are the follow-up's own "
-            "segmentation. The network's scan volumes were measured on its forecast scans "
-            "by segmentation, which is not the same measurement; its Jacobian-integral "
-            "volumes are in the consistency table."
+            "segmentation. The network's forecast scans were measured the same way: the "
+            "baseline volume times the change by registration from the baseline to the "
+            "forecast scan for those regions, the forecast scan's segmentation for the "
+            "others."
         )
     return (
         "The network's volumes were measured on its forecast scans by the same "

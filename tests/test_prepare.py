@@ -8,6 +8,7 @@ import signal
 import subprocess
 import sys
 import time
+from dataclasses import replace
 
 import nibabel as nib
 import numpy as np
@@ -30,6 +31,8 @@ from predictor.templates import load_template
 REGIONS = RegionSet.from_toml().names
 
 SETTINGS = PrepareSettings.from_toml()
+#: without the longitudinal stage (change between visits is tested in test_longitudinal)
+PER_SCAN = replace(SETTINGS, longitudinal=replace(SETTINGS.longitudinal, enabled=False))
 
 
 def test_sitk_conversions_keep_world_positions(rng):
@@ -132,11 +135,11 @@ def test_mni152_segmentation_matches_nilearn_maps(tmp_path, mni):
 
 @pytest.fixture(scope="module")
 def demo_workspace(tmp_path_factory):
-    """Four demo-size phantom participants prepared through the full path."""
+    """Four demo-size phantom participants prepared scan by scan (no change stage)."""
     root = tmp_path_factory.mktemp("demo")
     cohort = generate_cohort(root / "bids", participants=4, size="demo", seed=5, jobs=2)
     work = root / "work"
-    summary = prepare_cohort(read_cohort(cohort), work, cohort / TEMPLATE, SETTINGS, jobs=2)
+    summary = prepare_cohort(read_cohort(cohort), work, cohort / TEMPLATE, PER_SCAN, jobs=2)
     return cohort, work, summary
 
 
@@ -181,7 +184,7 @@ def test_second_prepare_is_cached_and_identical(demo_workspace):
     cohort, work, _ = demo_workspace
     before = pd.read_csv(work / "volumes.tsv", sep="\t")
     entries = {path: path.stat().st_mtime_ns for path in work.glob("scans/*/*")}
-    summary = prepare_cohort(read_cohort(cohort), work, cohort / TEMPLATE, SETTINGS, jobs=2)
+    summary = prepare_cohort(read_cohort(cohort), work, cohort / TEMPLATE, PER_SCAN, jobs=2)
     assert summary["cached"] == len(before) and summary["prepared"] == 0
     # no cache entry was rewritten (a check of work done, not of wall-clock time)
     assert entries and {path: path.stat().st_mtime_ns for path in entries} == entries
