@@ -22,6 +22,7 @@ template space and normalised intensities, for the network and no change.
 
 from __future__ import annotations
 
+import json
 import os
 import warnings
 from dataclasses import dataclass, replace
@@ -159,8 +160,11 @@ def network_pairs(
     layout = Layout(Path(work))
     image = layout.read_cohort().set_index("key").loc[first.base_key, "image"]
     scan = load_scan(image)
-    prepared = read_prepared(layout.scan(first.base_key), scan, model.info.region_set)
-    check_grid(model, prepared)
+    if prepared_like(layout, model):  # the workspace's cached preparation is the model's
+        prepared = read_prepared(layout.scan(first.base_key), scan, model.info.region_set)
+        check_grid(model, prepared)
+    else:
+        prepared = prepare_for(model, scan)
     horizons = pairs["years"].tolist()
     result = forecast(
         model, scan, first.age, first.sex, first.diagnosis, horizons, prepared=prepared
@@ -201,6 +205,16 @@ def network_pairs(
             row["example"] = (title, base_t1, follow_t1, measured.grid_t1)
         rows.append(row)
     return rows
+
+
+def prepared_like(layout: Layout, model) -> bool:
+    """Whether the workspace was prepared as the model prepares a scan (template, settings,
+    regions), so that its cached preparations are what the model would compute."""
+    stored = json.loads(layout.prepare_json.read_text())
+    info = model.info
+    return (stored["template"], stored["settings"], stored["regions"]) == (
+        info.template, info.prepare_settings, info.regions
+    )
 
 
 def registered_change(model, baseline, forecast) -> dict[str, float]:

@@ -204,7 +204,7 @@ def fold_folder(out: Path, fold: int) -> Path:
 def run_fold(
     work, out: Path, fold: int, config: TrainConfig, seed: int, jobs: int,
     measure: bool = True, progress=None, tune: TuneSettings | None = None,
-    observed_change: str = "registration",
+    observed_change: str = "segmentation",
 ):  # fmt: skip
     """Train fold ``fold``'s two models (resuming) and forecast its participants' pairs.
 
@@ -263,8 +263,9 @@ def run_fold(
 def fold_stamp(config: TrainConfig, seed: int, measure: bool, tune, observed_change) -> dict:
     """What a fold's results depend on besides the workspace (``fold-<k>/fold.json``)."""
     stamp = {"config": config.to_dict(), "seed": seed, "measure": measure,
-             "tune": None if tune is None else asdict(tune),
-             "observed_change": observed_change}  # fmt: skip
+             "tune": None if tune is None else asdict(tune)}  # fmt: skip
+    if measure:  # how the forecast scans are measured; nothing else depends on it
+        stamp["observed_change"] = observed_change
     return json.loads(json.dumps(stamp))
 
 
@@ -355,8 +356,8 @@ def check_folds(out: Path, saved: dict) -> pd.DataFrame:
         if len(stamps) > 1:
             raise DataError(
                 f"{folder}: fold {fold} was run with other settings than fold 1 (fold.json); "
-                "every fold must use the same training config, seed, --tune and "
-                "--no-scan-volumes"
+                "every fold must use the same training config, seed, --tune, "
+                "--no-scan-volumes and (with scan volumes) observed change"
             )
         for model in sorted(path.parent for path in folder.glob("*/model.json")):
             split = read_model_json(model).split

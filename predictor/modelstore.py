@@ -11,7 +11,7 @@ Layout::
     prior.json        the mixed-effects regional prior (training participants only)
     split.tsv         participant_id, set (train / validation / test)
     log.tsv           one row per epoch: loss terms and validation metrics
-    loss_curves.png   the log as a picture
+    loss_curves.png   the log as a picture (redrawn every 5 epochs and at the end)
 
 Every file is written atomically; ``.pt`` files are read with
 ``torch.load(weights_only=True)``, so a file carrying a pickled payload is

@@ -455,7 +455,8 @@ def fit_mixed(volume, exog, participants, years, diagnosis, trim, method) -> Mix
             warnings.simplefilter("ignore")
             result = model.fit(reml=True, method=[method])
             if not _usable(result, k) and method != RESCUE_METHOD:
-                result = model.fit(reml=True, method=[RESCUE_METHOD])
+                rescue = model.fit(reml=True, method=[RESCUE_METHOD])
+                result = rescue if _usable(rescue, k) else result
         if trim and keep.all():
             keep = trim_mask(volume - result.fittedvalues, diagnosis, trim)
     return MixedFit(

@@ -266,17 +266,24 @@ figcaption { font-size: 0.85em; color: #4a5a5a; }
 
 def observed_note(data: dict) -> str:
     """How the observed follow-up volumes (and the network's scan volumes) were measured."""
+    measured = data.get("run", {}).get("scan_volumes", True)  # compare always measures
     if data.get("observed_change") == "registration":
-        return (
+        note = (
             "Observed follow-up volumes of the regions with a measured boundary (whole "
             "brain, hippocampi, ventricles) are the baseline volume times the change "
             "measured between the two aligned visits by the boundary shift integral "
             "(changes.tsv of the workspace); the other regions' are the follow-up's own "
-            "segmentation. The network's forecast scans were measured the same way: the "
-            "baseline volume times the change by registration from the baseline to the "
-            "forecast scan for those regions, the forecast scan's segmentation for the "
-            "others."
+            "segmentation."
         )
+        if measured:
+            note += (
+                " The network's forecast scans were measured the same way: the baseline "
+                "volume times the change by registration from the baseline to the forecast "
+                "scan for those regions, the forecast scan's segmentation for the others."
+            )
+        return note
+    if not measured:
+        return "Observed follow-up volumes are the follow-ups' own segmentation."
     return (
         "The network's volumes were measured on its forecast scans by the same "
         "segmentation as the real follow-ups."

@@ -292,3 +292,14 @@ def test_phantom_errors_against_the_true_change(evaluated):
     page = (out / "evaluation.html").read_text()
     assert "Against the phantom's true change" in page
     assert (out / "against_truth.tsv").is_file()
+
+
+def test_the_page_says_how_the_run_was_made(evaluated):
+    # measure=False: the page says the forecast scans were not measured, and never that
+    # they were measured like the observed change; it states the grid and the epochs
+    out, evaluation = evaluated
+    page = (out / "evaluation.html").read_text()
+    assert "forecast scans were not measured" in page
+    assert "measured the same way" not in page
+    assert "4 x 4 x 4 mm working grid for at most 1 epochs" in page
+    assert evaluation.data["run"]["scan_volumes"] is False
