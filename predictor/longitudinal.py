@@ -40,6 +40,7 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from types import SimpleNamespace
 
+import nibabel as nib
 import numpy as np
 import pandas as pd
 import SimpleITK as sitk
@@ -76,10 +77,13 @@ class Visit:
     @classmethod
     def read(cls, folder: Path, regions: RegionSet) -> Visit:
         """The visit of a prepared scan entry (its native_* files)."""
-        from predictor.prepare import read_prepared
+        from predictor.prepare import native_maps
         from predictor.workspace import ScanFiles
 
-        return cls.of(read_prepared(ScanFiles(folder), None, regions))
+        files = ScanFiles(folder)
+        image = nib.load(files.native_t1)
+        tissue, deep = native_maps(files, regions)
+        return cls(np.asarray(image.dataobj, dtype=np.float32), image.affine, tissue, deep)
 
     @property
     def voxel_ml(self) -> float:

@@ -406,19 +406,29 @@ def _load_row(row: dict) -> tuple[Scan, np.ndarray | None]:
     return scan, mask_scan.data > 0.5
 
 
-def read_prepared(files: ScanFiles, scan: Scan | None, regions: RegionSet) -> PreparedScan:
+def native_maps(files: ScanFiles, regions: RegionSet) -> tuple[dict, dict]:
+    """A cached entry's native region maps as written by :func:`_prepare_entry`: GM, WM,
+    CSF probabilities and each deep region's tissue fraction (float32, RAS order)."""
+    import nibabel as nib
+
+    maps = np.asarray(nib.load(files.native_maps).dataobj, dtype=np.float32)
+    tissue = {name: maps[..., k] for k, name in enumerate(TISSUES)}
+    deep = {name: maps[..., len(TISSUES) + k] for k, name in enumerate(regions.deep)}
+    return tissue, deep
+
+
+def read_prepared(files: ScanFiles, scan: Scan, regions: RegionSet) -> PreparedScan:
     """A scan's preparation as the workspace cached it (what :func:`_prepare_entry` wrote),
-    so a forecast of a prepared scan need not prepare it again. ``scan``: the scan itself,
-    whose RAS affine is taken exactly; None takes it from the cached native T1's header
-    (float32, about 1e-7 off)."""
+    so a forecast of a prepared scan need not prepare it again. ``scan`` is the scan
+    itself (its RAS affine is taken exactly, not from the float32 NIfTI header)."""
     import nibabel as nib
 
     def array(path, dtype=np.float32):
         return np.asarray(nib.load(path).dataobj, dtype=dtype)
 
-    affine = scan.affine if scan is not None else nib.load(files.native_t1).affine
     result = files.read_result()
-    maps, grid_t1 = array(files.native_maps), array(files.t1)
+    tissue, deep = native_maps(files, regions)
+    grid_t1 = array(files.t1)
     return PreparedScan(
         volumes=result["volumes_ml"],
         template_to_native=np.asarray(result["template_to_native"], dtype=float),
@@ -426,11 +436,11 @@ def read_prepared(files: ScanFiles, scan: Scan | None, regions: RegionSet) -> Pr
         grid_mask=array(files.mask, np.uint8) > 0,
         grid_tissue=array(files.tissue),
         grid_regions=array(files.regions).reshape(*grid_t1.shape, -1),
-        native_tissue={name: maps[..., k] for k, name in enumerate(TISSUES)},
-        native_deep={name: maps[..., len(TISSUES) + k] for k, name in enumerate(regions.deep)},
+        native_tissue=tissue,
+        native_deep=deep,
         native_labels=array(files.labels, np.uint8),
         native_t1=array(files.native_t1),
-        native_affine=affine,
+        native_affine=scan.affine,
         diagnostics=result["diagnostics"],
     )
 
