@@ -222,7 +222,9 @@ def registered_change(model, baseline, forecast) -> dict[str, float]:
     the two prepared scans (the observed change's measurement); {} where it fails, so the
     forecast keeps its segmentation volumes, as an observed pair without a change does."""
     regions = model.info.region_set
-    settings = PrepareSettings.from_dict(model.info.prepare_settings).longitudinal
+    # only the boundary regions' ratios are kept: their boundary shift needs no demons
+    settings = replace(PrepareSettings.from_dict(model.info.prepare_settings).longitudinal,
+                       demons=False)  # fmt: skip
     try:
         ratio = pair_change(Visit.of(baseline), Visit.of(forecast), regions, settings)["ratio"]
     except (PredictorError, RuntimeError):

@@ -213,7 +213,7 @@ def _one_way(fixed: Visit, moving: Visit, fixed_to_moving, regions: RegionSet, s
     """Volume ratio moving / fixed of every region, measured on ``fixed``'s grid.
 
     Regions with a ``boundary`` get the boundary shift integral; the others the
-    demons Jacobian integrated over ``fixed``'s region maps.
+    demons Jacobian integrated over ``fixed``'s region maps (none without demons).
     """
     fixed_image = fixed.image()
 
@@ -221,16 +221,18 @@ def _one_way(fixed: Visit, moving: Visit, fixed_to_moving, regions: RegionSet, s
         return from_sitk(_onto(to_sitk(array, moving.affine), fixed_image, fixed_to_moving))[0]
 
     moved_t1 = moved(moving.t1)
-    determinant = demons_jacobian(fixed_image, to_sitk(moved_t1, fixed.affine), settings)
     before = region_volumes(fixed.tissue, fixed.deep, fixed.voxel_ml, regions)
-    after = region_volumes(fixed.tissue, fixed.deep, fixed.voxel_ml, regions, determinant)
-    ratios = {name: after[name] / before[name] for name in regions.names if before[name] > 0}
+    ratios = {}
+    if settings.demons:
+        determinant = demons_jacobian(fixed_image, to_sitk(moved_t1, fixed.affine), settings)
+        after = region_volumes(fixed.tissue, fixed.deep, fixed.voxel_ml, regions, determinant)
+        ratios = {name: after[name] / before[name] for name in regions.names if before[name] > 0}
     fixed_maps = regions.maps(np.stack([*fixed.tissue.values(), *fixed.deep.values()]))
     moved_maps = regions.maps(
         np.stack([moved(array) for array in (*moving.tissue.values(), *moving.deep.values())])
     )
     for k, region in enumerate(regions.regions):
-        if region.boundary is None or region.name not in ratios:
+        if region.boundary is None or before[region.name] <= 0:
             continue
         shift = boundary_shift(
             fixed.t1,
@@ -353,6 +355,7 @@ def measure_changes(
         for name in regions.names:
             if name in result["ratio"]:
                 row[f"{name}_pct_registration"] = 100 * (result["ratio"][name] - 1)
+            if earlier[name] > 0:
                 row[f"{name}_pct_segmentation"] = 100 * (later[name] / earlier[name] - 1)
         rows.append(row)
     table = pd.DataFrame(rows, columns=list(CHANGE_ID) + _change_columns(regions))

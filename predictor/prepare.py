@@ -102,6 +102,7 @@ class LongitudinalSettings:
     """Change between visits by registration (``[longitudinal]``; predictor.longitudinal)."""
 
     enabled: bool
+    demons: bool  # False: regions without a boundary get no change by registration
     rigid_shrink_factors: tuple[int, ...]
     rigid_smoothing_mm: tuple[float, ...]
     rigid_iterations: int

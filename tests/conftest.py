@@ -29,14 +29,15 @@ def tiny_cohort(tmp_path_factory) -> Path:
 @pytest.fixture(scope="session")
 def tiny_workspace(tmp_path_factory) -> Path:
     """Twenty tiny phantom participants (seed 4) prepared on a 4 mm working grid."""
+    from helpers import BOUNDARY_CHANGE_ONLY
+
     from predictor.cohort import read_cohort
     from predictor.phantoms.generate import TEMPLATE, generate_cohort
-    from predictor.prepare import PrepareSettings, prepare_cohort
+    from predictor.prepare import prepare_cohort
 
     root = tmp_path_factory.mktemp("tinywork")
     cohort = generate_cohort(root / "bids", participants=20, size="tiny", seed=4, jobs=2)
-    settings = PrepareSettings.from_toml(grid_mm=4.0)
-    prepare_cohort(read_cohort(cohort), root / "work", cohort / TEMPLATE, settings, jobs=2)
+    prepare_cohort(read_cohort(cohort), root / "work", cohort / TEMPLATE, BOUNDARY_CHANGE_ONLY, 2)
     return root / "work"
 
 
@@ -52,10 +53,10 @@ def stand_in_model(tmp_path_factory) -> Path:
 
 @pytest.fixture(scope="session")
 def tiny_model(tiny_workspace, tmp_path_factory) -> Path:
-    """The tiny config trained on the tiny workspace (configs/train-tiny.toml)."""
+    """The tiny config trained on the tiny workspace (configs/train-tiny.toml), 4 epochs."""
     from predictor.config import CONFIG_DIR
     from predictor.training import TrainConfig, train
 
     model = tmp_path_factory.mktemp("tinymodel") / "model"
-    train(tiny_workspace, model, TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml"))
+    train(tiny_workspace, model, TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml"), epochs=4)
     return model

@@ -26,6 +26,10 @@ from predictor.regions import RegionSet
 from predictor.regression import MixedEffectsForecaster, save_mixed_model
 from predictor.training import TrainConfig
 
+#: prepare settings of the shared tiny workspaces (4 mm grid). Without demons: their
+#: tests use only the boundary regions' change (the observed change), which needs none.
+BOUNDARY_CHANGE_ONLY = PrepareSettings.from_toml(grid_mm=4.0, longitudinal={"demons": False})
+
 
 def constant_velocity_model(
     template: str = "mni152",

@@ -47,7 +47,7 @@ def test_demo_quick_runs_every_stage_then_prepare_reuses_its_cache(tmp_path):
     assert "Research use only" in result.output
     for path in (
         "evaluation/folds.json",
-        "evaluation/fold-5/network/weights.pt",
+        "evaluation/fold-3/network/weights.pt",
         "evaluation/evaluation.html",
         "evaluation/tests.tsv",
         "forecasts/forecasts.tsv",
@@ -56,7 +56,7 @@ def test_demo_quick_runs_every_stage_then_prepare_reuses_its_cache(tmp_path):
     ):
         assert (out / path).is_file(), path
     assert f"report: {out / 'evaluation' / 'evaluation.html'}" in result.output
-    assert "Cross-validated (5 folds" in result.output
+    assert "Cross-validated (3 folds" in result.output
     # every participant's baseline forecast by the network of the fold that held it out
     folds = json.loads((out / "evaluation" / "folds.json").read_text())["assignment"]
     forecasts = pd.read_csv(out / "forecasts" / "forecasts.tsv", sep="\t")

@@ -30,14 +30,14 @@ REGIONS = RegionSet.from_toml().names
 
 @pytest.fixture(scope="module")
 def population_model(tiny_workspace, tmp_path_factory):
-    """The tiny config with the template as every participant's image (2 epochs)."""
+    """The tiny config with the template as every participant's image (1 epoch)."""
     from predictor.config import CONFIG_DIR
     from predictor.training import TrainConfig, train
 
     raw = TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml").to_dict()
     raw["training"]["image_input"] = "template"
     folder = tmp_path_factory.mktemp("population") / "model"
-    train(tiny_workspace, folder, TrainConfig.from_dict(raw), epochs=2)
+    train(tiny_workspace, folder, TrainConfig.from_dict(raw), epochs=1)
     return folder
 
 

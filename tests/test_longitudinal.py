@@ -107,6 +107,7 @@ def test_changes_table_resumes_from_cached_pairs(tiny_workspace):
     # whose pair files are written atomically) is redone, the rest are cache hits, and
     # the table comes out identical.
     import pandas as pd
+    from helpers import BOUNDARY_CHANGE_ONLY
 
     from predictor.longitudinal import measure_changes, pair_key, visit_pairs
     from predictor.workspace import Layout, read_workspace
@@ -116,11 +117,13 @@ def test_changes_table_resumes_from_cached_pairs(tiny_workspace):
     volumes = pd.read_csv(layout.volumes, sep="\t")
     pairs = visit_pairs(volumes)
     assert len(first) == len(pairs) == (volumes.groupby("participant_id").size() - 1).sum()
-    lost = layout.pair(pair_key(pairs[0][0]["key"], pairs[0][1]["key"], SETTINGS))
+    lost = layout.pair(
+        pair_key(pairs[0][0]["key"], pairs[0][1]["key"], BOUNDARY_CHANGE_ONLY.longitudinal)
+    )
     lost.unlink()
     stamps = {path: path.stat().st_mtime_ns for path in layout.pair("x").parent.glob("*.json")}
     again, failures = measure_changes(
-        tiny_workspace, read_workspace(tiny_workspace).regions, SETTINGS
+        tiny_workspace, read_workspace(tiny_workspace).regions, BOUNDARY_CHANGE_ONLY.longitudinal
     )
     assert not failures and lost.is_file()
     assert all(path.stat().st_mtime_ns == stamp for path, stamp in stamps.items())
@@ -129,7 +132,8 @@ def test_changes_table_resumes_from_cached_pairs(tiny_workspace):
 
 @pytest.fixture(scope="module")
 def realistic_workspace(tmp_path_factory):
-    """Three template_anatomy participants (2 mm) prepared against mni152, with changes."""
+    """Three template_anatomy participants (2 mm) prepared against mni152, with changes of
+    the boundary regions (demons off: the test uses only those)."""
     from predictor.cohort import read_cohort
     from predictor.phantoms.generate import generate_cohort
     from predictor.prepare import prepare_cohort
@@ -138,7 +142,8 @@ def realistic_workspace(tmp_path_factory):
     cohort = generate_cohort(
         root / "bids", 3, "demo", seed=0, scenario_path="template_anatomy", jobs=2
     )
-    prepare_cohort(read_cohort(cohort), root / "work", "mni152", PrepareSettings.from_toml(), 2)
+    settings = PrepareSettings.from_toml(longitudinal={"demons": False})
+    prepare_cohort(read_cohort(cohort), root / "work", "mni152", settings, 2)
     return cohort, root / "work"
 
 
