@@ -152,6 +152,8 @@ def prepare(
     the scan's own space, regional volumes in mL and % of total brain volume,
     and the scan resampled onto the working grid (mm) for training. Unchanged
     scans are taken from the cache. Failed scans are listed in WORK/failures.tsv.
+    A same-day rescan (BIDS run-2, or a table's 'rescan' column) is measured
+    against its scan: the change measurement's noise floor (WORK/rescans.tsv).
     """
     from predictor.cohort import read_cohort
     from predictor.config import CohortSettings
@@ -163,7 +165,8 @@ def prepare(
     table = read_cohort(cohort, settings=coding, allow_outside=allow_outside)
     settings = PrepareSettings.from_toml(config, grid_mm=grid_mm)
     part = parse_shard(shard)
-    progress, advance = progress_bar("preparing scans", len(table) if part[1] == 1 else None)
+    scans = len(table) + int(table["rescan"].notna().sum())  # same-day rescans too
+    progress, advance = progress_bar("preparing scans", scans if part[1] == 1 else None)
     with progress:
         summary = prepare_cohort(
             table, work, template, settings, jobs, part, advance, region_set, coding
@@ -172,6 +175,17 @@ def prepare(
         f"{summary['prepared']} prepared, {summary['cached']} from cache, "
         f"{summary['failed']} failed; volumes in {work / 'volumes.tsv'}"
     )
+    if summary.get("rescans"):
+        from predictor.longitudinal import noise_floor
+        from predictor.workspace import Layout
+
+        floor = noise_floor(Layout(work), region_set)
+        typer.echo(
+            f"scan-rescan noise floor, median |change| (% of the region) over "
+            f"{summary['rescans']} same-day rescan(s) ({work / 'rescans.tsv'}):"
+        )
+        shown = ["region", "median_abs_pct_registration", "median_abs_pct_segmentation"]
+        typer.echo(floor[shown].round(3).to_string(index=False))
     if summary["failed"]:
         typer.echo(
             f"predictor: {summary['failed']} scan(s) failed; reasons in {work / 'failures.tsv'}",

@@ -9,10 +9,13 @@ BIDS layout read here::
 
     participants.tsv                participant_id, sex[, diagnosis]
     sub-<id>/sub-<id>_sessions.tsv  session_id, age[, diagnosis]
-    sub-<id>/ses-<id>/anat/*_T1w.nii[.gz]
+    sub-<id>/ses-<id>/anat/*_T1w.nii[.gz]   one scan, or two runs (run-1, run-2):
+                                            run-2 is a same-day rescan of run-1
 
 Table layout: columns participant_id, session_id, age, sex, diagnosis,
-image[, brain_mask]; paths relative to the table's folder.
+image[, brain_mask][, rescan]; paths relative to the table's folder. A
+rescan (same-day repeat scan of the image) measures the change measurement's
+noise floor; it is never a visit of its own.
 """
 
 from __future__ import annotations
@@ -30,7 +33,10 @@ import pandas as pd
 from predictor.config import CohortSettings
 from predictor.errors import CohortError
 
-COLUMNS = ("participant_id", "session_id", "age", "sex", "diagnosis", "image", "brain_mask")
+COLUMNS = (
+    "participant_id", "session_id", "age", "sex", "diagnosis", "image", "brain_mask", "rescan"
+)  # fmt: skip
+RUN = re.compile(r"_run-(\d+)_")
 REQUIRED_TABLE_COLUMNS = ("participant_id", "session_id", "age", "sex", "diagnosis", "image")
 IMAGE_SUFFIXES = (".nii", ".nii.gz")
 
@@ -179,12 +185,15 @@ def _bids_rows(root: Path) -> list[RawRow]:
                 if anat.is_dir()
                 else []
             )
-            if len(images) > 1:
+            runs = sorted((int(RUN.search(p.name)[1]), p) for p in images if RUN.search(p.name))
+            if len(images) > 1 and (len(images) > 2 or len(runs) != 2):
                 names = ", ".join(p.name for p in images)
                 raise CohortError(
                     f"{sessions_file} line {line}: {len(images)} T1w images in {anat} ({names}); "
-                    "keep one or list the scans in a table"
+                    "keep one, or two runs (run-2 a same-day rescan), or list the scans in a table"
                 )
+            if len(images) == 2:
+                images = [path for _, path in runs]
             fields = {
                 "participant_id": participant,
                 "session_id": session,
@@ -194,6 +203,7 @@ def _bids_rows(root: Path) -> list[RawRow]:
                 "image": str(images[0].relative_to(root))
                 if images
                 else f"{participant}/{session}/anat/{participant}_{session}_T1w.nii.gz",
+                "rescan": str(images[1].relative_to(root)) if len(images) == 2 else "",
             }
             rows.append(RawRow(fields, sessions_file, line, root))
     return rows
@@ -264,7 +274,7 @@ def _validate(
                 f"{row.where()}: diagnosis '{fields['diagnosis']}' is not one of "
                 f"{', '.join(settings.diagnosis_labels)} (configs/cohort.toml)"
             )
-        mask = fields.get("brain_mask", "")
+        mask, rescan = fields.get("brain_mask", ""), fields.get("rescan", "")
         records.append(
             {
                 "participant_id": participant,
@@ -275,6 +285,9 @@ def _validate(
                 "image": _resolve_path(fields["image"], row, "image", root, allow_outside),
                 "brain_mask": _resolve_path(mask, row, "brain_mask", root, allow_outside)
                 if mask
+                else None,
+                "rescan": _resolve_path(rescan, row, "rescan", root, allow_outside)
+                if rescan
                 else None,
                 "_row": row,
             }

@@ -57,7 +57,9 @@ class DemoSettings:
 
 
 def prepare_accuracy(work: Path, cohort: Path) -> pd.DataFrame:
-    """Measured against true volumes per region: mean and largest absolute error (%)."""
+    """Measured against true volumes per region: mean and largest absolute error (%), and
+    (where the cohort has same-day rescans) the change measurement's noise floor."""
+    from predictor.longitudinal import noise_floor
     from predictor.phantoms.generate import TRUTH
     from predictor.workspace import read_workspace
 
@@ -75,7 +77,8 @@ def prepare_accuracy(work: Path, cohort: Path) -> pd.DataFrame:
                 "max_abs_error_pct": error.abs().max(),
             }
         )
-    return pd.DataFrame(rows)
+    table, floor = pd.DataFrame(rows), noise_floor(workspace.layout, workspace.regions)
+    return table.merge(floor, on="region", how="left") if len(floor) else table
 
 
 def change_agreement(work: Path, cohort: Path) -> pd.DataFrame:

@@ -51,7 +51,7 @@ from predictor.compare import (
 from predictor.config import load_settings
 from predictor.errors import DataError
 from predictor.files import write_json, write_tsv
-from predictor.longitudinal import observed_by_registration
+from predictor.longitudinal import noise_floor, observed_by_registration
 from predictor.losses import LossSettings
 from predictor.modelstore import read_model_json
 from predictor.pairs import stratified_draw
@@ -112,6 +112,8 @@ class Evaluation:
     # phantom cohorts: mean |error| and paired tests against the *true* change (else empty)
     truth_summary: pd.DataFrame
     truth_tests: pd.DataFrame
+    # the change measurement's scan-rescan noise floor per region (empty without rescans)
+    noise_floor: pd.DataFrame
     data: dict  # counts, folds, settings, forecasters not fitted
     regions: tuple[str, ...]
 
@@ -439,6 +441,7 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
         by_diagnosis=grouped(errors, "diagnosis"),
         truth_summary=truth_summary,
         truth_tests=truth_tests,
+        noise_floor=noise_floor(workspace.layout, workspace.regions),
         data={
             "folds": saved["folds"],
             "fold_seed": saved["seed"],

@@ -27,7 +27,7 @@ from predictor.report import STYLE, VARIANT_WORDS, method_colours, observed_note
 
 TABLES = (
     "summary", "headlines", "tests", "skill", "coverage", "errors", "by_horizon", "by_diagnosis",
-    "truth_summary", "truth_tests",
+    "truth_summary", "truth_tests", "noise_floor",
 )  # fmt: skip
 NO_CHANGE = "no-change"
 DETAILS = {
@@ -223,6 +223,24 @@ def run_note(run: dict) -> str:
     )
 
 
+def rescan_section(floor: pd.DataFrame, observed: str) -> str:
+    """The change measurement's scan-rescan noise floor beside the errors (or why none)."""
+    if floor.empty:
+        return "<p>No scan-rescan noise floor is shown: the workspace has no same-day rescans.</p>"
+    which = (
+        "by registration for the regions with a boundary, by segmentation for the others"
+        if observed == "registration"
+        else "by segmentation"
+    )
+    return (
+        f"<h3>Scan-rescan noise floor</h3><p>The observed change is measured {which}. Below, "
+        "each measurement's median absolute change between a scan and its same-day rescan "
+        "(the same anatomy), as % of total brain volume (the unit of the errors above) and "
+        "as % of the region: an error near it is as small as the measurement can show.</p>"
+        + table_html(floor, "noise_floor.tsv")
+    )
+
+
 def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
     level = f"{100 * data['level']:g}%"
     encoded = base64.b64encode((out / "forest.png").read_bytes()).decode("ascii")
@@ -268,8 +286,9 @@ def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
         "their mean absolute error (% of total brain volume), with its participant-cluster "
         f"bootstrap {level} CI. Left of zero the network is better.</figcaption></figure>",
         f"<h2>Mean absolute error (% of total brain volume), regions by methods</h2><p>{floor}"
-        " No scan-rescan noise floor is shown: the workspace has no same-day rescans.</p>",
+        "</p>",
         table_html(tables["at_a_glance"], "at_a_glance.tsv"),
+        rescan_section(tables["noise_floor"], data["observed_change"]),
         *truth_section(tables),
         "<h2>Region by region</h2>",
         "<p>A method is better or worse only where the CI of the participant-level "

@@ -29,7 +29,13 @@ either direction's interpolation loses partly cancels. One way:
   over the visit's own region maps.
 
 The segmentation's change (the difference of the two visits' own
-volumes) is reported beside it in ``changes.tsv``.
+volumes) is reported beside it in ``changes.tsv``. With ``demons = false``
+only the boundary regions get a change by registration.
+
+A scan with a same-day rescan (the same anatomy, a new acquisition) is
+measured against it in the same way (``rescans.tsv``): every change found
+there is noise, and its median absolute value per region is the
+measurement's noise floor (:func:`noise_floor`).
 """
 
 from __future__ import annotations
@@ -56,6 +62,8 @@ from predictor.workspace import Layout
 
 #: columns of changes.tsv, before one pair of columns per region
 CHANGE_ID = ("participant_id", "session_from", "session_to", "years")
+#: columns of rescans.tsv, before the same pairs of columns
+RESCAN_ID = ("participant_id", "session_id")
 
 
 @dataclass(frozen=True, eq=False)
@@ -318,6 +326,31 @@ def _measure_pair(work: str, earlier: dict, later: dict, regions_raw: dict, sett
     return measured
 
 
+def _measure_all(layout: Layout, pairs, regions: RegionSet, settings, jobs, progress) -> list:
+    """:func:`_measure_pair` of every (earlier row, later row), in worker processes."""
+    from predictor.parallel import run_all
+    from predictor.preprocess import single_threaded_itk
+
+    arguments = [(str(layout.root), a, b, regions.raw, settings) for a, b in pairs]
+    return run_all(_measure_pair, arguments, jobs, progress, single_threaded_itk)
+
+
+def _change_row(earlier: dict, later: dict, result: dict, regions: RegionSet) -> dict:
+    """Each region's % change by registration (where measured) and by segmentation."""
+    row = {}
+    for name in regions.names:
+        if name in result["ratio"]:
+            row[f"{name}_pct_registration"] = 100 * (result["ratio"][name] - 1)
+        if earlier[name] > 0:
+            row[f"{name}_pct_segmentation"] = 100 * (later[name] / earlier[name] - 1)
+    return row
+
+
+def _failure(participant: str, session: str, what: str, result: dict) -> dict:
+    return {"participant_id": participant, "session_id": session, "image": "",
+            "reason": f"{what}: {result['failed']}"}  # fmt: skip
+
+
 def measure_changes(
     work: str | Path, regions: RegionSet, settings, jobs: int = 1, progress=None
 ) -> tuple[pd.DataFrame, list[dict]]:
@@ -326,41 +359,103 @@ def measure_changes(
     Per participant and pair (baseline, later visit): each region's change (%)
     by registration and by segmentation. A failed pair is reported and skipped.
     """
-    from predictor.parallel import run_all
-    from predictor.preprocess import single_threaded_itk
-
     layout = Layout(Path(work))
-    volumes = pd.read_csv(layout.volumes, sep="\t")
-    pairs = visit_pairs(volumes)
-    arguments = [(str(layout.root), a, b, regions.raw, settings) for a, b in pairs]
-    results = run_all(_measure_pair, arguments, jobs, progress, single_threaded_itk)
+    pairs = visit_pairs(pd.read_csv(layout.volumes, sep="\t"))
+    results = _measure_all(layout, pairs, regions, settings, jobs, progress)
     rows, failures = [], []
     for (earlier, later), result in zip(pairs, results, strict=True):
+        participant = earlier["participant_id"]
+        sessions = f"{earlier['session_id']}->{later['session_id']}"
         if "failed" in result:
-            failures.append(
-                {
-                    "participant_id": earlier["participant_id"],
-                    "session_id": f"{earlier['session_id']}->{later['session_id']}",
-                    "image": "",
-                    "reason": f"change by registration: {result['failed']}",
-                }
-            )
+            failures.append(_failure(participant, sessions, "change by registration", result))
             continue
-        row = {
-            "participant_id": earlier["participant_id"],
-            "session_from": earlier["session_id"],
-            "session_to": later["session_id"],
-            "years": round(later["age"] - earlier["age"], 4),
-        }
-        for name in regions.names:
-            if name in result["ratio"]:
-                row[f"{name}_pct_registration"] = 100 * (result["ratio"][name] - 1)
-            if earlier[name] > 0:
-                row[f"{name}_pct_segmentation"] = 100 * (later[name] / earlier[name] - 1)
-        rows.append(row)
+        rows.append(
+            {
+                "participant_id": participant,
+                "session_from": earlier["session_id"],
+                "session_to": later["session_id"],
+                "years": round(later["age"] - earlier["age"], 4),
+            }
+            | _change_row(earlier, later, result, regions)
+        )
     table = pd.DataFrame(rows, columns=list(CHANGE_ID) + _change_columns(regions))
     write_tsv(layout.changes, table)
     return table, failures
+
+
+def rescan_pairs(layout: Layout) -> list[tuple[dict, dict]]:
+    """(scan row, rescan row) of every prepared scan whose same-day rescan is prepared:
+    volumes.tsv's row, and the rescan's key and volumes (mL)."""
+    cohort = layout.read_cohort()
+    if "rescan_key" not in cohort.columns:
+        return []
+    volumes = pd.read_csv(layout.volumes, sep="\t", dtype={"key": str}).set_index("key")
+    pairs = []
+    for key, rescan in zip(cohort["key"], cohort["rescan_key"], strict=True):
+        files = layout.scan(rescan) if isinstance(rescan, str) else None
+        if files is None or key not in volumes.index or not files.result.is_file():
+            continue
+        pairs.append(
+            (volumes.loc[key].to_dict() | {"key": key},
+             files.read_result()["volumes_ml"] | {"key": rescan})
+        )  # fmt: skip
+    return pairs
+
+
+def measure_rescans(
+    work: str | Path, regions: RegionSet, settings, jobs: int = 1, progress=None
+) -> tuple[pd.DataFrame, list[dict]]:
+    """``rescans.tsv`` of a prepared workspace, and the rescan pairs that failed.
+
+    Per scan with a same-day rescan: each region's change (%) from the scan to
+    the rescan by registration and by segmentation; the anatomy is the same,
+    so all of it is measurement noise.
+    """
+    layout = Layout(Path(work))
+    pairs = rescan_pairs(layout)
+    results = _measure_all(layout, pairs, regions, settings, jobs, progress)
+    rows, failures = [], []
+    for (scan, rescan), result in zip(pairs, results, strict=True):
+        participant, session = scan["participant_id"], scan["session_id"]
+        if "failed" in result:
+            failures.append(_failure(participant, f"{session} rescan", "rescan", result))
+            continue
+        rows.append(
+            {"participant_id": participant, "session_id": session}
+            | _change_row(scan, rescan, result, regions)
+        )
+    table = pd.DataFrame(rows, columns=[*RESCAN_ID, *_change_columns(regions)])
+    write_tsv(layout.rescans, table)
+    return table, failures
+
+
+def noise_floor(layout: Layout, regions: RegionSet) -> pd.DataFrame:
+    """The change measurement's scan-rescan noise floor per region (empty without rescans).
+
+    From ``rescans.tsv``: the number of rescan pairs and, by each method, the
+    median absolute change (% of the region's volume; 0 for a perfect
+    measurement) and the same as % of the scan's total brain volume (the unit
+    of the forecast errors).
+    """
+    columns = ["region", "rescan_pairs"] + [
+        f"median_abs_{unit}_{method}"
+        for method in ("registration", "segmentation")
+        for unit in ("pct", "pct_tbv")
+    ]
+    if not layout.rescans.is_file():
+        return pd.DataFrame(columns=columns)
+    rescans = pd.read_csv(layout.rescans, sep="\t")
+    volumes = pd.read_csv(layout.volumes, sep="\t")
+    both = rescans.merge(volumes, on=["participant_id", "session_id"])
+    rows = []
+    for name in regions.names if len(both) else []:
+        row = {"region": name, "rescan_pairs": len(both)}
+        for method in ("registration", "segmentation"):
+            change = both.get(f"{name}_pct_{method}", pd.Series(dtype=float)).abs()
+            row[f"median_abs_pct_{method}"] = change.median()
+            row[f"median_abs_pct_tbv_{method}"] = (change / 100 * both[f"{name}_pct_tbv"]).median()
+        rows.append(row)
+    return pd.DataFrame(rows, columns=columns)
 
 
 def _change_columns(regions: RegionSet) -> list[str]:

@@ -489,9 +489,10 @@ def prepare_cohort(
 
     ``regions`` and ``coding`` (the cohort settings the table was read with)
     default to the shipped ``configs/``; both are recorded in the workspace.
-    Returns counts: prepared, cached, failed (and, with the longitudinal stage
-    on and no shard, pairs and pairs_failed); writes ``volumes.tsv``,
-    ``changes.tsv`` and ``failures.tsv`` from all complete entries.
+    Returns counts: prepared, cached, failed (scans and same-day rescans; and,
+    with the longitudinal stage on and no shard, pairs, pairs_failed and
+    rescans measured); writes ``volumes.tsv``, ``changes.tsv``, ``rescans.tsv``
+    and ``failures.tsv`` from all complete entries.
     ``progress_pairs()`` is called after each visit pair.
     """
     settings = settings or PrepareSettings.from_toml()
@@ -502,8 +503,14 @@ def prepare_cohort(
     loaded = cached_template(template_spec, regions)
     rows = cohort.to_dict("records")
     keys = [scan_key(row, settings, loaded) for row in rows]
+    # a same-day rescan is prepared as a scan of its own (no given mask), never as a visit
+    rescans = {i: row | {"image": row["rescan"], "brain_mask": None}
+               for i, row in enumerate(rows) if isinstance(row.get("rescan"), str)}  # fmt: skip
+    rescan_keys = {i: scan_key(row, settings, loaded) for i, row in rescans.items()}
+    entries = [(row, keys[i], row["session_id"]) for i, row in enumerate(rows)]
+    entries += [(row, rescan_keys[i], f"{row['session_id']} rescan") for i, row in rescans.items()]
     part, parts = shard
-    mine = [index for index, key in enumerate(keys) if int(key, 16) % parts == part - 1]
+    mine = [index for index, (_, key, _) in enumerate(entries) if int(key, 16) % parts == part - 1]
     write_json(
         layout.prepare_json,
         {
@@ -514,11 +521,15 @@ def prepare_cohort(
             "version": __version__,
         },
     )
-    write_tsv(layout.cohort, cohort.assign(key=keys))
+    write_tsv(
+        layout.cohort,
+        cohort.assign(key=keys, rescan_key=[rescan_keys.get(i, "") for i in range(len(rows))]),
+    )
     arguments = [
-        (rows[i], str(layout.scan(keys[i]).folder), template_spec, regions.raw, settings)
+        (entries[i][0], str(layout.scan(entries[i][1]).folder), template_spec, regions.raw,
+         settings)
         for i in mine
-    ]
+    ]  # fmt: skip
     outcomes = run_all(_run_scan, arguments, jobs, progress, initializer=single_threaded_itk)
     results = dict(zip(mine, outcomes, strict=True))
     summary = {
@@ -528,9 +539,9 @@ def prepare_cohort(
     }
     failures = [
         {
-            "participant_id": rows[i]["participant_id"],
-            "session_id": rows[i]["session_id"],
-            "image": Path(rows[i]["image"]).name,
+            "participant_id": entries[i][0]["participant_id"],
+            "session_id": entries[i][2],
+            "image": Path(entries[i][0]["image"]).name,
             "reason": r["failed"],
         }
         for i, r in sorted(results.items())
@@ -538,13 +549,17 @@ def prepare_cohort(
     ]
     write_tsv(layout.volumes, volume_table(layout, regions))
     if settings.longitudinal.enabled and parts == 1:
-        from predictor.longitudinal import measure_changes
+        from predictor.longitudinal import measure_changes, measure_rescans
 
         changes, pair_failures = measure_changes(
             layout.root, regions, settings.longitudinal, jobs, progress_pairs
         )
-        failures += pair_failures
-        summary |= {"pairs": len(changes), "pairs_failed": len(pair_failures)}
+        rescanned, rescan_failures = measure_rescans(
+            layout.root, regions, settings.longitudinal, jobs
+        )
+        failures += pair_failures + rescan_failures
+        summary |= {"pairs": len(changes), "pairs_failed": len(pair_failures),
+                    "rescans": len(rescanned)}  # fmt: skip
     write_tsv(
         layout.failures,
         pd.DataFrame(failures, columns=["participant_id", "session_id", "image", "reason"]),

@@ -3,7 +3,8 @@
 Layout::
 
     prepare.json         template, settings, regions and cohort coding of this workspace
-    cohort.tsv           the validated cohort with each scan's cache key
+    cohort.tsv           the validated cohort with each scan's cache key (and its
+                         same-day rescan's, rescan_key, where it has one)
     scans/<key>/         one folder per scan; result.json is written last and
                          marks the entry complete (anything else is redone)
         grid_T1w.nii.gz      normalised T1 on the working grid (template space)
@@ -21,6 +22,8 @@ Layout::
     volumes.tsv          one row per scan: regions in mL and % of total brain volume
     changes.tsv          per participant and pair of visits: each region's change
                          by registration and by segmentation
+    rescans.tsv          per scan with a same-day rescan: each region's change from
+                         the scan to its rescan (the measurement's noise floor)
     failures.tsv         scans (and visit pairs) that failed, with the reason
 
 No other module spells these names: it asks a :class:`Layout` or a
@@ -83,6 +86,7 @@ class Layout:
     volumes = property(lambda self: self.root / "volumes.tsv")
     failures = property(lambda self: self.root / "failures.tsv")
     changes = property(lambda self: self.root / "changes.tsv")
+    rescans = property(lambda self: self.root / "rescans.tsv")
 
     def pair(self, key: str) -> Path:
         return self.root / "pairs" / f"{key}.json"
@@ -93,7 +97,7 @@ class Layout:
     def read_cohort(self) -> pd.DataFrame:
         if not self.cohort.is_file():
             raise DataError(f"{self.root}: not a prepared workspace (cohort.tsv missing)")
-        return pd.read_csv(self.cohort, sep="\t", dtype={"key": str})
+        return pd.read_csv(self.cohort, sep="\t", dtype={"key": str, "rescan_key": str})
 
 
 @dataclass(frozen=True)

@@ -62,6 +62,29 @@ def test_reads_csv_with_brain_mask(table_dir):
     path.write_text(text)
     table = read_cohort(path)
     assert table.loc[0, "brain_mask"].endswith("extra.nii.gz")
+    assert table["rescan"].isna().all()
+
+
+def test_a_same_day_rescan_is_read_from_a_table_and_bids_runs(table_dir, tiny_cohort, tmp_path):
+    # table: a 'rescan' column; BIDS (specification 1.9, "run" entity): two runs of a
+    # session are its scan (run-1) and a same-day rescan (run-2); three are refused
+    import shutil
+
+    rows = [GOOD_ROWS[0] + "\timg/extra.nii.gz", GOOD_ROWS[1] + "\t"]
+    table = read_cohort(_table(table_dir, rows, HEADER.replace("image", "image\trescan")))
+    assert table.loc[0, "rescan"].endswith("extra.nii.gz") and table["rescan"].isna()[1]
+    copy = tmp_path / "bids"
+    shutil.copytree(tiny_cohort, copy, ignore=shutil.ignore_patterns("derivatives"))
+    anat = copy / "sub-002" / "ses-01" / "anat"
+    scan = anat / "sub-002_ses-01_T1w.nii.gz"
+    for run in (2, 1):  # run-2 first: the order on disk must not matter
+        shutil.copy(scan, anat / f"sub-002_ses-01_run-{run}_T1w.nii.gz")
+    scan.unlink()
+    row = read_cohort(copy).set_index(["participant_id", "session_id"]).loc[("sub-002", "ses-01")]
+    assert row["image"].endswith("run-1_T1w.nii.gz") and row["rescan"].endswith("run-2_T1w.nii.gz")
+    shutil.copy(anat / "sub-002_ses-01_run-1_T1w.nii.gz", anat / "sub-002_ses-01_run-3_T1w.nii.gz")
+    with pytest.raises(CohortError, match="sub-002_sessions.tsv line 2: 3 T1w images"):
+        read_cohort(copy)
 
 
 @pytest.mark.parametrize(

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import nibabel as nib
 import numpy as np
 import pandas as pd
@@ -316,3 +318,39 @@ def test_scanner_change_crosses_protocols(tmp_path):
         assert counted == pytest.approx(row.wm, rel=0.05)
     assert 1 in protocols.values() and 2 in protocols.values()
     assert all(protocols[(pid, "ses-01")] == 1 for pid, _ in protocols)
+
+
+def test_rescans_repeat_the_baseline_anatomy_with_a_new_acquisition(tmp_path):
+    # rescan_fraction = 1: every baseline session holds run-1 and run-2 (BIDS "run"
+    # entity), one truth row; the two scans share the anatomy (their label maps count
+    # the same white matter within the partial-volume tolerance of the tests above) but
+    # not the head pose, gain or noise. Other sessions keep one unnumbered scan.
+    from predictor.cohort import read_cohort
+
+    scenario = tmp_path / "rescans.toml"
+    scenario.write_text('extends = "memory_clinic"\n[cohort]\nrescan_fraction = 1.0\n')
+    out = generate_cohort(tmp_path / "bids", participants=2, seed=6, scenario_path=scenario)
+    visits = read_cohort(out)
+    first = visits.groupby("participant_id").head(1)
+    assert first["rescan"].str.endswith("_run-2_T1w.nii.gz").all()
+    assert visits.drop(first.index)["rescan"].isna().all()
+    truth = pd.read_csv(out / TRUTH / "true_volumes.tsv", sep="\t")
+    assert len(truth) == len(visits)
+    draws = json.loads((out / TRUTH / "draws.json").read_text())["participants"]
+    for row, draw in zip(first.itertuples(), draws, strict=True):
+        one, two = (np.asarray(nib.load(path).dataobj) for path in (row.image, row.rescan))
+        assert not np.array_equal(one, two)
+        baseline = draw["visits"][0]
+        assert baseline["pose_rotation"] != baseline["rescan"]["pose_rotation"]
+        anat = out / TRUTH / row.participant_id / row.session_id / "anat"
+        stem = f"{row.participant_id}_{row.session_id}"
+        counts = [
+            (np.asarray(nib.load(anat / f"{stem}_run-{run}_dseg.nii.gz").dataobj) == 3).sum()
+            for run in (1, 2)
+        ]
+        true_wm = truth.set_index(["participant_id", "session_id"]).loc[
+            (row.participant_id, row.session_id), "wm"
+        ]
+        voxel_ml = Scenario.from_toml().size("tiny").voxel_mm ** 3 / 1000
+        for count in counts:
+            assert count * voxel_ml == pytest.approx(true_wm, rel=0.05)

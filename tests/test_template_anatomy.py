@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+from pathlib import Path
 
 import nibabel as nib
 import numpy as np
@@ -109,13 +110,18 @@ def test_cohort_is_bids_and_reproducible(tmp_path, scenario):
     )
     assert len(read_cohort(first)) >= 3  # the project's BIDS reader accepts it
     truth = pd.read_csv(first / TRUTH / "true_volumes.tsv", sep="\t")
-    for row in truth.itertuples():
-        anat = f"{row.participant_id}/{row.session_id}/anat/{row.participant_id}_{row.session_id}"
-        for path in (f"{anat}_T1w.nii.gz", f"{TRUTH}/{anat}_dseg.nii.gz"):
-            assert (first / path).read_bytes() == (second / path).read_bytes(), path
-        labels = nib.load(first / TRUTH / f"{anat}_dseg.nii.gz")
-        voxel_ml = abs(np.linalg.det(labels.affine[:3, :3])) / 1000
-        counted = (np.asarray(labels.dataobj) == 3).sum() * voxel_ml  # label counts
-        assert counted == pytest.approx(row.wm, rel=0.1)
+    for row in truth.itertuples():  # every scan of the session (a rescan too) and its labels
+        anat = Path(row.participant_id) / row.session_id / "anat"
+        scans = sorted((first / anat).glob("*_T1w.nii.gz"))
+        label_maps = sorted((first / TRUTH / anat).glob("*_dseg.nii.gz"))
+        assert scans and len(scans) == len(label_maps)
+        for path in scans + label_maps:
+            relative = path.relative_to(first)
+            assert path.read_bytes() == (second / relative).read_bytes(), relative
+        for path in label_maps:
+            labels = nib.load(path)
+            voxel_ml = abs(np.linalg.det(labels.affine[:3, :3])) / 1000
+            counted = (np.asarray(labels.dataobj) == 3).sum() * voxel_ml  # label counts
+            assert counted == pytest.approx(row.wm, rel=0.1)
     assert GRID_MM == 2.0
     assert not (first / "derivatives" / "phantom-template").exists()  # prepared against mni152

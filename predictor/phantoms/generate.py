@@ -5,6 +5,7 @@ Layout under OUT::
     dataset_description.json, participants.tsv, participants.json
     sub-001/sub-001_sessions.tsv
     sub-001/ses-01/anat/sub-001_ses-01_T1w.nii.gz
+    sub-002/ses-01/anat/sub-002_ses-01_run-{1,2}_T1w.nii.gz   a same-day rescan
     derivatives/phantom-truth/
         dataset_description.json, labels.tsv, draws.json
         true_volumes.tsv            every visit's true regional volumes (mL)
@@ -111,10 +112,20 @@ def protocol_change(scenario: Scenario, index: int, seed: int, visits: int) -> i
     return int(rng.integers(2, visits + 1))
 
 
+def rescanned(scenario: Scenario, index: int, seed: int) -> bool:
+    """Whether the participant has a same-day rescan of its baseline (``rescan_fraction``)."""
+    fraction = float(scenario.cohort.get("rescan_fraction", 0.0))
+    return fraction > 0 and seeded_rng(seed, index, 4).random() < fraction
+
+
 def _make_participant(
     scenario_source: str, size_name: str, index: int, diagnosis: str, seed: int, out: str
 ) -> dict:
-    """Render and write all visits of one participant; return its table rows."""
+    """Render and write all visits of one participant; return its table rows.
+
+    A rescanned participant's baseline session holds two scans of the same
+    anatomy (``run-1``, ``run-2``): new head pose, gain, bias field and noise.
+    """
     scenario = Scenario.from_toml(scenario_source)
     draw, anatomy = draw_participant(scenario, index, diagnosis, seed)
     switch = protocol_change(scenario, index, seed, len(draw.visit_years))
@@ -124,6 +135,7 @@ def _make_participant(
 
         subject = Subject.build(scenario, draw, seeded_rng(seed, index, 3))
     root, pid = Path(out), draw.participant_id
+    rescan = rescanned(scenario, index, seed)
     truth_rows, best_rows, session_rows, visits = [], [], [], []
     for number, years in enumerate(draw.visit_years, start=1):
         changed = switch is not None and number >= switch
@@ -132,28 +144,40 @@ def _make_participant(
         imaging = scenario.imaging_at(changed)
         affine, _ = scanner_grid(size)
         session = _session(number)
-        rng = seeded_rng(seed, index, 1, number)
-        pose = Pose.draw(rng, imaging["rotation_degrees"], imaging["translation_mm"])
-        if subject is None:
-            true_row, best_row, progression = _visit_truth(scenario, draw, anatomy, number, years)
-            clean, labels, _ = render(
-                anatomy,
-                progression,
-                size,
-                pose,
-                int(imaging["supersample"]),
-                tissue_intensities(imaging),
+        runs = [seeded_rng(seed, index, 1, number)]
+        if rescan and number == 1:
+            runs.append(seeded_rng(seed, index, 5))
+        acquired = []
+        for run, rng in enumerate(runs, start=1):
+            pose = Pose.draw(rng, imaging["rotation_degrees"], imaging["translation_mm"])
+            if subject is None:
+                true_row, best_row, progression = _visit_truth(
+                    scenario, draw, anatomy, number, years
+                )
+                clean, labels, _ = render(
+                    anatomy,
+                    progression,
+                    size,
+                    pose,
+                    int(imaging["supersample"]),
+                    tissue_intensities(imaging),
+                )
+            else:
+                clean, labels, truth, best = subject.visit(years, size, pose)
+                key = _visit_key(draw, number, years)
+                true_row, best_row = key | truth, key | best
+            image, acquisition = acquire(clean, size, imaging, rng)
+            stem = f"{pid}_{session}" + (f"_run-{run}" if len(runs) > 1 else "")
+            anat = Path(pid) / session / "anat"
+            save_array(image, affine, root / anat / f"{stem}_T1w.nii.gz", np.int16)
+            save_array(labels, affine, root / TRUTH / anat / f"{stem}_dseg.nii.gz", np.uint8)
+            acquired.append(
+                {
+                    "pose_rotation": pose.rotation.tolist(),
+                    "pose_translation_mm": pose.translation.tolist(),
+                }
+                | acquisition
             )
-        else:
-            clean, labels, truth, best = subject.visit(years, size, pose)
-            key = _visit_key(draw, number, years)
-            true_row, best_row = key | truth, key | best
-        image, acquisition = acquire(clean, size, imaging, rng)
-        stem = f"{pid}_{session}"
-        save_array(image, affine, root / pid / session / "anat" / f"{stem}_T1w.nii.gz", np.int16)
-        save_array(
-            labels, affine, root / TRUTH / pid / session / "anat" / f"{stem}_dseg.nii.gz", np.uint8
-        )
         truth_rows.append(true_row)
         best_rows.append(best_row)
         session_rows.append(
@@ -170,10 +194,9 @@ def _make_participant(
                 "years": years,
                 "protocol": 2 if changed else 1,
                 "voxel_mm": size.voxel_mm,
-                "pose_rotation": pose.rotation.tolist(),
-                "pose_translation_mm": pose.translation.tolist(),
             }
-            | acquisition
+            | acquired[0]
+            | ({"rescan": acquired[1]} if len(acquired) > 1 else {})
         )
     write_tsv(root / pid / f"{pid}_sessions.tsv", pd.DataFrame(session_rows))
     rates = {f"{region}_percent_per_year": 100 * rate for region, rate in draw.rates.items()}
