@@ -36,7 +36,7 @@ from scipy import ndimage, stats
 from predictor.config import load_settings
 from predictor.errors import DataError, PredictorError
 from predictor.forecast import as_model, check_grid, forecast, prepare_for
-from predictor.longitudinal import Visit, observed_by_registration, pair_change
+from predictor.longitudinal import Visit, noise_floor, observed_by_registration, pair_change
 from predictor.nifti import load_scan
 from predictor.pairs import SETS, visit_pairs
 from predictor.parallel import run_all
@@ -67,6 +67,7 @@ class Comparison:
     by_horizon: pd.DataFrame
     by_diagnosis: pd.DataFrame
     consistency: pd.DataFrame  # measured vs Jacobian-integral network volumes
+    noise_floor: pd.DataFrame  # the change measurement's scan-rescan noise floor (or empty)
     data: dict  # counts describing the data and the split
     examples: list  # (title, baseline, follow-up, forecast) working-grid T1 (X, Y, Z)
     regions: tuple[str, ...]  # the regions compared, in report order
@@ -400,6 +401,7 @@ def compare(
         by_horizon=grouped(errors.assign(horizon=horizon_bins(errors["years"])), "horizon"),
         by_diagnosis=grouped(errors, "diagnosis"),
         consistency=consistency_table(pairs, names),
+        noise_floor=noise_floor(workspace.layout, workspace.regions),
         data={
             "participants": {name: len(split[name]) for name in SETS},
             "test_pairs": len(pairs),

@@ -23,7 +23,14 @@ from predictor.compare import FLOOR, NETWORKS, POPULATION
 from predictor.evaluate import Evaluation
 from predictor.figures import pyplot, save_figure
 from predictor.files import write_json, write_text, write_tsv
-from predictor.report import STYLE, VARIANT_WORDS, method_colours, observed_note, table_html
+from predictor.report import (
+    STYLE,
+    VARIANT_WORDS,
+    method_colours,
+    observed_note,
+    rescan_section,
+    table_html,
+)
 
 TABLES = (
     "summary", "headlines", "tests", "skill", "coverage", "errors", "by_horizon", "by_diagnosis",
@@ -220,24 +227,6 @@ def run_note(run: dict) -> str:
         f"{run['epochs']} epochs of {pairs} training pairs (network channels "
         f"{', '.join(str(c) for c in run['channels'])}); a coarser grid or fewer epochs "
         f"than a study would use may understate what the network can do. {scans}</p>"
-    )
-
-
-def rescan_section(floor: pd.DataFrame, observed: str) -> str:
-    """The change measurement's scan-rescan noise floor beside the errors (or why none)."""
-    if floor.empty:
-        return "<p>No scan-rescan noise floor is shown: the workspace has no same-day rescans.</p>"
-    which = (
-        "by registration for the regions with a boundary, by segmentation for the others"
-        if observed == "registration"
-        else "by segmentation"
-    )
-    return (
-        f"<h3>Scan-rescan noise floor</h3><p>The observed change is measured {which}. Below, "
-        "each measurement's median absolute change between a scan and its same-day rescan "
-        "(the same anatomy), as % of total brain volume (the unit of the errors above) and "
-        "as % of the region: an error near it is as small as the measurement can show.</p>"
-        + table_html(floor, "noise_floor.tsv")
     )
 
 

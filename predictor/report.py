@@ -30,6 +30,7 @@ TABLES = (
     "by_horizon",
     "by_diagnosis",
     "consistency",
+    "noise_floor",
 )
 FIGURES = {
     "error_by_region.png": "Mean absolute forecast error by region and method (bars: bootstrap "
@@ -290,6 +291,24 @@ def observed_note(data: dict) -> str:
     )
 
 
+def rescan_section(floor: pd.DataFrame, observed: str) -> str:
+    """The change measurement's scan-rescan noise floor beside the errors (or why none)."""
+    if floor.empty:
+        return "<p>No scan-rescan noise floor is shown: the workspace has no same-day rescans.</p>"
+    which = (
+        "by registration for the regions with a boundary, by segmentation for the others"
+        if observed == "registration"
+        else "by segmentation"
+    )
+    return (
+        f"<h3>Scan-rescan noise floor</h3><p>The observed change is measured {which}. Below, "
+        "each measurement's median absolute change between a scan and its same-day rescan "
+        "(the same anatomy), as % of total brain volume (the unit of the errors above) and "
+        "as % of the region: an error near it is as small as the measurement can show.</p>"
+        + table_html(floor, "noise_floor.tsv")
+    )
+
+
 def render_page(tables: dict[str, pd.DataFrame], data: dict, figures: list[str], out: Path):
     summary, tests = tables["summary"], tables["tests"]
     participants = data["participants"]
@@ -328,6 +347,7 @@ def render_page(tables: dict[str, pd.DataFrame], data: dict, figures: list[str],
         "<h2>Forecast error (% of total brain volume)</h2>",
         floor_note,
         table_html(summary, "summary.tsv"),
+        rescan_section(tables["noise_floor"], data["observed_change"]),
         "<h2>Network minus each comparator, per participant (% of total brain volume)</h2>",
         "<p>Mean difference with its participant-cluster bootstrap CI; exact sign test over "
         "participants, uncorrected for the primary region and Holm-corrected for the other "

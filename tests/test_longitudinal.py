@@ -186,8 +186,8 @@ def test_same_day_rescans_measure_the_noise_floor(realistic_workspace):
     # brain 0.28% (all three negative: the boundary shift reads some atrophy into a new
     # acquisition; segmentation 0.09%), hippocampi 0.69% and 0.36% (segmentation 1.3-1.7%).
     from predictor.cohort import read_cohort
-    from predictor.evaluation_report import rescan_section
     from predictor.longitudinal import noise_floor
+    from predictor.report import rescan_section
     from predictor.workspace import Layout
 
     cohort, work = realistic_workspace
