@@ -181,10 +181,11 @@ def prepare(
 
         floor = noise_floor(Layout(work), region_set)
         typer.echo(
-            f"scan-rescan noise floor, median |change| (% of the region) over "
+            f"scan-rescan noise floor, median change and |change| (% of the region) over "
             f"{summary['rescans']} same-day rescan(s) ({work / 'rescans.tsv'}):"
         )
-        shown = ["region", "median_abs_pct_registration", "median_abs_pct_segmentation"]
+        shown = ["region", "median_pct_registration", "median_abs_pct_registration",
+                 "median_abs_pct_segmentation"]  # fmt: skip
         typer.echo(floor[shown].round(3).to_string(index=False))
     if summary["failed"]:
         typer.echo(

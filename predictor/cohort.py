@@ -186,11 +186,13 @@ def _bids_rows(root: Path) -> list[RawRow]:
                 else []
             )
             runs = sorted((int(RUN.search(p.name)[1]), p) for p in images if RUN.search(p.name))
-            if len(images) > 1 and (len(images) > 2 or len(runs) != 2):
+            stems = {RUN.sub("_", p.name) for p in images}  # the names without their run
+            paired = [n for n, _ in runs] == [1, 2] and len(stems) == 1
+            if len(images) > 1 and not paired:
                 names = ", ".join(p.name for p in images)
                 raise CohortError(
                     f"{sessions_file} line {line}: {len(images)} T1w images in {anat} ({names}); "
-                    "keep one, or two runs (run-2 a same-day rescan), or list the scans in a table"
+                    "keep one, or run-1 and run-2 (a same-day rescan), or list the scans in a table"
                 )
             if len(images) == 2:
                 images = [path for _, path in runs]

@@ -172,7 +172,7 @@ def run_demo(
         template,
         PrepareSettings.from_toml(grid_mm=settings.grid_mm),
         jobs,
-        progress=stage("prepare", len(table)),
+        progress=stage("prepare", len(table) + int(table["rescan"].notna().sum())),
     )
     accuracy = prepare_accuracy(folders["work"], folders["cohort"])
     write_tsv(out / "prepare_accuracy.tsv", accuracy)

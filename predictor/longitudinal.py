@@ -432,15 +432,15 @@ def measure_rescans(
 def noise_floor(layout: Layout, regions: RegionSet) -> pd.DataFrame:
     """The change measurement's scan-rescan noise floor per region (empty without rescans).
 
-    From ``rescans.tsv``: the number of rescan pairs and, by each method, the
-    median absolute change (% of the region's volume; 0 for a perfect
-    measurement) and the same as % of the scan's total brain volume (the unit
-    of the forecast errors).
+    From ``rescans.tsv``, by each method: the number of rescan pairs measured,
+    the median change (%; its sign shows a bias), the median absolute change
+    (% of the region's volume; 0 for a perfect measurement) and the same as %
+    of the scan's total brain volume (the unit of the forecast errors).
     """
-    columns = ["region", "rescan_pairs"] + [
-        f"median_abs_{unit}_{method}"
+    columns = ["region"] + [
+        f"{figure}_{method}"
         for method in ("registration", "segmentation")
-        for unit in ("pct", "pct_tbv")
+        for figure in ("pairs", "median_pct", "median_abs_pct", "median_abs_pct_tbv")
     ]
     if not layout.rescans.is_file():
         return pd.DataFrame(columns=columns)
@@ -449,11 +449,15 @@ def noise_floor(layout: Layout, regions: RegionSet) -> pd.DataFrame:
     both = rescans.merge(volumes, on=["participant_id", "session_id"])
     rows = []
     for name in regions.names if len(both) else []:
-        row = {"region": name, "rescan_pairs": len(both)}
+        row = {"region": name}
         for method in ("registration", "segmentation"):
-            change = both.get(f"{name}_pct_{method}", pd.Series(dtype=float)).abs()
-            row[f"median_abs_pct_{method}"] = change.median()
-            row[f"median_abs_pct_tbv_{method}"] = (change / 100 * both[f"{name}_pct_tbv"]).median()
+            change = both[f"{name}_pct_{method}"]
+            row[f"pairs_{method}"] = int(change.notna().sum())
+            row[f"median_pct_{method}"] = change.median()
+            row[f"median_abs_pct_{method}"] = change.abs().median()
+            row[f"median_abs_pct_tbv_{method}"] = (
+                change.abs() / 100 * both[f"{name}_pct_tbv"]
+            ).median()
         rows.append(row)
     return pd.DataFrame(rows, columns=columns)
 

@@ -20,7 +20,7 @@ import pandas as pd
 
 from predictor import __version__
 from predictor.config import CohortSettings, load_settings
-from predictor.errors import ConfigError, PredictorError, ScanError
+from predictor.errors import CohortError, ConfigError, PredictorError, ScanError
 from predictor.files import exclusive, redact_folders, sha256_file, write_json, write_tsv
 from predictor.nifti import Scan, load_scan, save_array
 from predictor.parallel import run_all
@@ -507,6 +507,12 @@ def prepare_cohort(
     rescans = {i: row | {"image": row["rescan"], "brain_mask": None}
                for i, row in enumerate(rows) if isinstance(row.get("rescan"), str)}  # fmt: skip
     rescan_keys = {i: scan_key(row, settings, loaded) for i, row in rescans.items()}
+    for i in rescan_keys:
+        if rescan_keys[i] == keys[i]:
+            raise CohortError(
+                f"{rows[i]['rescan']}: the same bytes as its scan {rows[i]['image']}; a rescan "
+                "must be a new acquisition"
+            )
     entries = [(row, keys[i], row["session_id"]) for i, row in enumerate(rows)]
     entries += [(row, rescan_keys[i], f"{row['session_id']} rescan") for i, row in rescans.items()]
     part, parts = shard
@@ -560,6 +566,8 @@ def prepare_cohort(
         failures += pair_failures + rescan_failures
         summary |= {"pairs": len(changes), "pairs_failed": len(pair_failures),
                     "rescans": len(rescanned)}  # fmt: skip
+    elif parts == 1:  # no rescan measured by this run: no noise floor from an earlier one
+        layout.rescans.unlink(missing_ok=True)
     write_tsv(
         layout.failures,
         pd.DataFrame(failures, columns=["participant_id", "session_id", "image", "reason"]),

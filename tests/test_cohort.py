@@ -85,6 +85,9 @@ def test_a_same_day_rescan_is_read_from_a_table_and_bids_runs(table_dir, tiny_co
     shutil.copy(anat / "sub-002_ses-01_run-1_T1w.nii.gz", anat / "sub-002_ses-01_run-3_T1w.nii.gz")
     with pytest.raises(CohortError, match="sub-002_sessions.tsv line 2: 3 T1w images"):
         read_cohort(copy)
+    (anat / "sub-002_ses-01_run-2_T1w.nii.gz").unlink()  # run-1 and run-3: not a rescan pair
+    with pytest.raises(CohortError, match="2 T1w images.*run-1 and run-2"):
+        read_cohort(copy)
 
 
 @pytest.mark.parametrize(

@@ -195,7 +195,8 @@ def test_same_day_rescans_measure_the_noise_floor(realistic_workspace):
     assert len(pd.read_csv(layout.volumes, sep="\t")) == len(read_cohort(cohort))
     floor = noise_floor(layout, REGIONS)
     indexed = floor.set_index("region")
-    assert (indexed["rescan_pairs"] == 3).all()
+    assert (indexed["pairs_segmentation"] == 3).all()
+    assert (indexed["pairs_registration"] == 3).sum() == 4  # the regions with a boundary
     assert indexed.loc["brain", "median_abs_pct_registration"] <= 0.3, indexed
     for side in ("left", "right"):
         assert indexed.loc[f"hippocampus_{side}", "median_abs_pct_registration"] <= 1.5, indexed

@@ -9,6 +9,7 @@ import subprocess
 import sys
 import time
 from dataclasses import replace
+from pathlib import Path
 
 import nibabel as nib
 import numpy as np
@@ -17,7 +18,7 @@ import pytest
 import SimpleITK as sitk
 
 from predictor.cohort import read_cohort
-from predictor.errors import ConfigError
+from predictor.errors import CohortError, ConfigError
 from predictor.phantoms.generate import TEMPLATE, TRUTH, generate_cohort
 from predictor.phantoms.imaging import Pose, bias_field, render, scanner_grid, tissue_intensities
 from predictor.phantoms.participants import mean_anatomy
@@ -261,3 +262,14 @@ def test_failed_scan_is_listed_and_others_go_on(tiny_cohort, small, tmp_path):
     assert str(tmp_path) not in failures.loc[0, "reason"]  # file name only
     result = json.loads(next((tmp_path / "work" / "scans").glob("*/result.json")).read_text())
     assert str(tmp_path) not in json.dumps(result)  # no absolute input paths in outputs
+
+
+def test_a_rescan_with_its_scans_bytes_is_refused(tiny_cohort, small, tmp_path):
+    # a byte-for-byte copy would be measured against itself: a noise floor of exactly 0
+    table = small[1].copy()
+    copy = tmp_path / "copy.nii.gz"
+    copy.write_bytes(Path(table.loc[0, "image"]).read_bytes())
+    table["rescan"] = [str(copy)] + [None] * (len(table) - 1)
+    with pytest.raises(CohortError, match="copy.nii.gz: the same bytes as its scan"):
+        prepare_cohort(table, tmp_path / "work", tiny_cohort / TEMPLATE, SETTINGS)
+    assert not (tmp_path / "work").exists()  # refused before anything is written

@@ -109,7 +109,10 @@ class Scenario:
         fractions = require(cohort, "diagnosis_fractions", source, dict)
         if abs(sum(fractions.values()) - 1.0) > 1e-6:
             raise ConfigError(f"{source}: diagnosis_fractions must sum to 1")
-        if not 0 <= cohort.get("rescan_fraction", 0) <= 1:
+        rescans = cohort.get("rescan_fraction", 0)
+        if not isinstance(rescans, int | float) or isinstance(rescans, bool) or not (
+            0 <= rescans <= 1
+        ):
             raise ConfigError(f"{source} [cohort] 'rescan_fraction': must lie in [0, 1]")
         rates_raw = require(raw, "rates_percent_per_year", source, dict)
         rates = {}
