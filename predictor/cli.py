@@ -157,7 +157,7 @@ def prepare(
     """
     from predictor.cohort import read_cohort
     from predictor.config import CohortSettings
-    from predictor.prepare import PrepareSettings, parse_shard, prepare_cohort
+    from predictor.prepare import PrepareSettings, parse_shard, prepare_cohort, scan_count
     from predictor.regions import RegionSet
 
     coding = CohortSettings.from_toml(cohort_config)
@@ -165,8 +165,8 @@ def prepare(
     table = read_cohort(cohort, settings=coding, allow_outside=allow_outside)
     settings = PrepareSettings.from_toml(config, grid_mm=grid_mm)
     part = parse_shard(shard)
-    scans = len(table) + int(table["rescan"].notna().sum())  # same-day rescans too
-    progress, advance = progress_bar("preparing scans", scans if part[1] == 1 else None)
+    total = scan_count(table) if part[1] == 1 else None
+    progress, advance = progress_bar("preparing scans", total)
     with progress:
         summary = prepare_cohort(
             table, work, template, settings, jobs, part, advance, region_set, coding

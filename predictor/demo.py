@@ -143,7 +143,7 @@ def run_demo(
     from predictor.files import write_tsv
     from predictor.forecast_io import forecast_cohort
     from predictor.phantoms.generate import TEMPLATE, generate_cohort
-    from predictor.prepare import PrepareSettings, prepare_cohort
+    from predictor.prepare import PrepareSettings, prepare_cohort, scan_count
     from predictor.training import TrainConfig
     from predictor.trials import Design, trial_report
 
@@ -172,7 +172,7 @@ def run_demo(
         template,
         PrepareSettings.from_toml(grid_mm=settings.grid_mm),
         jobs,
-        progress=stage("prepare", len(table) + int(table["rescan"].notna().sum())),
+        progress=stage("prepare", scan_count(table)),
     )
     accuracy = prepare_accuracy(folders["work"], folders["cohort"])
     write_tsv(out / "prepare_accuracy.tsv", accuracy)

@@ -473,6 +473,12 @@ def _prepare_entry(row: dict, files: ScanFiles, template: Template, settings) ->
     return result | {"cached": False}
 
 
+def scan_count(cohort: pd.DataFrame) -> int:
+    """Scans :func:`prepare_cohort` prepares for a validated cohort: its visits and their
+    same-day rescans."""
+    return len(cohort) + int(cohort["rescan"].notna().sum())
+
+
 def prepare_cohort(
     cohort: pd.DataFrame,
     work: str | os.PathLike[str],
