@@ -14,7 +14,7 @@ from typing import Annotated
 import typer
 
 from predictor.cautions import CAUTION
-from predictor.errors import PredictorError
+from predictor.errors import DataError, PredictorError
 
 app = typer.Typer(
     help="Forecast longitudinal brain-MRI change on a CPU. " + CAUTION,
@@ -501,9 +501,7 @@ def evaluation_text(evaluation) -> str:
 def trial_size(
     source: Annotated[
         Path,
-        typer.Option(
-            "--from", help="A compare report folder or a forecast --cohort folder."
-        ),
+        typer.Option("--from", help="A `predictor evaluate` folder (or a compare report)."),
     ],
     region: Annotated[str, typer.Option(help="Region, e.g. hippocampus_left, ventricles.")],
     effect: Annotated[
@@ -512,36 +510,46 @@ def trial_size(
     power: Annotated[float, typer.Option(help="Power, within (0, 1).")] = 0.8,
     alpha: Annotated[float, typer.Option(help="Two-sided significance level, (0, 0.5].")] = 0.05,
     years: Annotated[float, typer.Option(help="Trial duration (rates over it), years.")] = 2.0,
+    window: Annotated[
+        float,
+        typer.Option(help="A participant needs a visit within this many years of --years."),
+    ] = 0.5,
     enrich: Annotated[
         list[float],
-        typer.Option(help="Enrolled fractions of top forecast atrophy, e.g. --enrich 0.5 0.3."),
+        typer.Option(help="Enrolled fractions q compared (1 is always), e.g. --enrich 0.5 0.3."),
     ] = [0.5, 0.3],  # noqa: B006 (typer needs a list default)
-    method: Annotated[
-        str | None,
-        typer.Option(help="Forecast: network-jacobian|network (compare), network|prior."),
+    screen_cost: Annotated[
+        float | None, typer.Option(help="Cost of screening one participant (with --enrol-cost).")
     ] = None,
-    observed: Annotated[
-        Path | None, typer.Option(help="With forecasts: a workspace to take observed changes from.")
+    enrol_cost: Annotated[
+        float | None, typer.Option(help="Cost of enrolling one participant (same currency).")
     ] = None,
+    seed: Annotated[int, typer.Option(help="Seed of the bootstrap and the random order.")] = 0,
     out: Annotated[
         Path | None, typer.Option(help="Output folder [default: FROM/trial-size].")
     ] = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print the result as JSON.")] = False,
 ) -> None:
-    """Participants per arm to detect a slowing of atrophy, and enrichment by forecast.
+    """Participants per arm to detect a slowing of atrophy, and enrichment by screening rules.
 
-    Rates are annualised changes (% per year) of the region over the trial's
-    duration; n per arm is for a two-arm, two-sided comparison (exact t-test,
-    normal approximation beside it) with a bootstrap 95% CI. Enrichment keeps
-    the top fraction of forecast atrophy; 1/q are screened per enrolled.
+    Rates are each held-out participant's observed annualised change (% per
+    year, least squares over the visits within the trial's duration); n per arm
+    is for a two-arm, two-sided exact t-test, for a slowing of the total rate and
+    of the disease-related rate (minus cognitively normal ageing), with participant
+    bootstrap 95% CIs. Screening rules (random order, diagnosis, baseline
+    hippocampus, every held-out forecast) are compared at equal enrolled
+    fractions q; 1/q are screened per enrolled.
     """
     import json
 
-    from predictor.trials import Design, trial_report
+    from predictor.trials import Costs, Design, trial_report
 
-    design = Design(effect=effect, power=power, alpha=alpha, years=years)
+    design = Design(effect=effect, power=power, alpha=alpha, years=years, window=window)
+    if (screen_cost is None) != (enrol_cost is None):
+        raise DataError("give both --screen-cost and --enrol-cost, or neither")
+    costs = None if screen_cost is None else Costs(screen_cost, enrol_cost)
     summary = trial_report(
-        source, out or source / "trial-size", region, design, enrich, method, observed
+        source, out or source / "trial-size", region, design, enrich, costs, seed
     )
     if as_json:
         typer.echo(json.dumps(summary, indent=2))
@@ -549,11 +557,15 @@ def trial_size(
     import pandas as pd
 
     table = pd.DataFrame(summary["enrichment"])
-    wanted = ("fraction", "screened_per_enrolled", "forecast_n_per_arm", "forecast_n_ci_low",
-              "forecast_n_ci_high", "observed_n_per_arm")  # fmt: skip
+    wanted = ("rule", "fraction", "total_n_per_arm", "total_n_per_arm_ci_low",
+              "total_n_per_arm_ci_high", "disease_n_per_arm", "apparent_n_per_arm",
+              "total_cost")  # fmt: skip
     columns = [c for c in wanted if c in table]
-    typer.echo(f"{region}, {summary['source']}:")
+    typer.echo(f"{region}, {summary['source']}, {summary['participants']} participants:")
     typer.echo(table[columns].round(1).to_string(index=False))
+    for line in summary["verdicts"]:
+        typer.echo(line)
+    typer.echo(f"Note: {summary['apparent_warning']}.")
     typer.echo(summary["caution"])
 
 
@@ -609,6 +621,10 @@ def demo(
         "forecast once while held out), the network's own volumes:"
     )
     typer.echo(evaluation_text(result["evaluation"]))
+    trial = result["trial"]
+    typer.echo(f"Trial size ({trial['region']}, {trial['participants']} held-out participants):")
+    for line in trial["verdicts"]:
+        typer.echo(f"  {line}")
     for key, folder in result["folders"].items():
         typer.echo(f"{key:>10}: {folder}")
     typer.echo(f"report: {result['report']}")

@@ -418,7 +418,8 @@ def compare(
 
 
 def error_table(pairs: pd.DataFrame, methods: dict[str, np.ndarray], names) -> pd.DataFrame:
-    """Long table of forecast errors: pair x region x method (mL and percentages)."""
+    """Long table of forecast errors: pair x region x method (mL and percentages; ``age``
+    is the baseline's, ``years`` the interval)."""
     frames = []
     observed = pairs[[f"{r}_follow" for r in names]].to_numpy()
     baseline = pairs[list(names)].to_numpy()
@@ -432,6 +433,7 @@ def error_table(pairs: pd.DataFrame, methods: dict[str, np.ndarray], names) -> p
                         "participant_id": pairs["participant_id"],
                         "session_id": pairs["session_id"],
                         "diagnosis": pairs["diagnosis"],
+                        "age": pairs["age"],
                         "years": pairs["years"],
                         "region": region,
                         "method": method,

@@ -9,7 +9,8 @@ trial-size, into one folder (settings in ``configs/demo.toml``)::
                      forecasts.tsv), evaluation.html, forest.png, TSVs
     OUT/forecasts/   forecasts of every participant's baseline scan, each by the network
                      of the fold that held the participant out
-    OUT/trial/       sample size per arm against enrichment (TSV, JSON, PNG)
+    OUT/trial/       sample size per arm and enrichment by screening rules, from the
+                     evaluation's held-out forecasts (TSV, JSON, PNG)
     OUT/prepare_accuracy.tsv   measured against true volumes (% error)
     OUT/change_accuracy.tsv    measured against true change, by registration and segmentation
 
@@ -48,6 +49,7 @@ class DemoSettings:
     trial_region: str
     trial_years: float
     trial_enrich: tuple[float, ...]
+    trial_costs: tuple[float, float]
     seed: int
 
     @classmethod
@@ -145,7 +147,7 @@ def run_demo(
     from predictor.phantoms.generate import TEMPLATE, generate_cohort
     from predictor.prepare import PrepareSettings, prepare_cohort, scan_count
     from predictor.training import TrainConfig
-    from predictor.trials import Design, trial_report
+    from predictor.trials import Costs, Design, trial_report
 
     settings = DemoSettings.from_toml(quick)
     out = Path(out)
@@ -210,12 +212,13 @@ def run_demo(
     )
     trial_done = stage("trial-size", 1)
     trial = trial_report(
-        folders["forecasts"],
+        folders["evaluation"],
         folders["trial"],
         settings.trial_region,
         Design(years=settings.trial_years),
         settings.trial_enrich,
-        observed=folders["work"],
+        Costs(*settings.trial_costs),
+        settings.seed,
     )
     if trial_done:
         trial_done()

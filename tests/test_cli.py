@@ -57,6 +57,10 @@ def test_demo_quick_runs_every_stage_then_prepare_reuses_its_cache(tmp_path):
         assert (out / path).is_file(), path
     assert f"report: {out / 'evaluation' / 'evaluation.html'}" in result.output
     assert "Cross-validated (3 folds" in result.output
+    # trial sizes from the evaluation's held-out forecasts, every rule beside the network
+    trial = json.loads((out / "trial" / "trial_size.json").read_text())
+    assert trial["source"].startswith("held-out forecasts of cross-validation")
+    assert "cheapest design" in result.output and trial["network_rule"] is not None
     # every participant's baseline forecast by the network of the fold that held it out
     folds = json.loads((out / "evaluation" / "folds.json").read_text())["assignment"]
     forecasts = pd.read_csv(out / "forecasts" / "forecasts.tsv", sep="\t")
