@@ -12,8 +12,14 @@ import pytest
 from predictor.phantoms.anatomy import Progression, region_volumes
 from predictor.phantoms.generate import TRUTH, generate_cohort
 from predictor.phantoms.imaging import acquire, scanner_grid
-from predictor.phantoms.participants import assign_groups, draw_participant, trajectory
+from predictor.phantoms.participants import (
+    assign_groups,
+    draw_participant,
+    draw_progression,
+    trajectory,
+)
 from predictor.phantoms.scenario import RATE_REGIONS, Scenario
+from predictor.rng import seeded_rng
 
 
 @pytest.fixture(scope="module")
@@ -53,7 +59,7 @@ def test_group_mean_rates_equal_configured_rates(scenario):
     # The age factor and participant factor have mean 1, so over many draws each
     # group's mean annual rate is the configured (published) one within 5%.
     groups = assign_groups(scenario.cohort["diagnosis_fractions"], 1500, seed=11)
-    draws = [draw_participant(scenario, k, groups[k], seed=11)[0] for k in range(1500)]
+    draws = [draw_progression(scenario, k, groups[k], seeded_rng(11, k, 0)) for k in range(1500)]
     for region in RATE_REGIONS:
         for group in scenario.diagnoses:
             rates = [d.rates[region] for d in draws if d.diagnosis == group]

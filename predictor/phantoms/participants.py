@@ -215,6 +215,22 @@ def draw_participant(
 ) -> tuple[Draw, Anatomy]:
     """Draw participant number ``index`` (0-based) of a cohort with ``seed``."""
     rng = seeded_rng(seed, index, 0)
+    draw = draw_progression(scenario, index, diagnosis, rng)
+    stages = {
+        region: scenario.progression["stage_mean"][diagnosis] + value
+        for region, value in draw.deviations.items()
+    }
+    anatomy, head_scale = build_anatomy(scenario, draw.sex, stages, draw.baseline_age, rng)
+    draw = replace(draw, head_scale=head_scale)
+    return replace(draw, visit_years=_until_dropout(anatomy, draw)), anatomy
+
+
+def draw_progression(
+    scenario: Scenario, index: int, diagnosis: str, rng: np.random.Generator
+) -> Draw:
+    """Sex, age, factors, rates and planned visits of participant ``index`` from ``rng``:
+    the first part of :func:`draw_participant`, before the anatomy (head scale 1, no
+    drop-out yet), cheap enough to draw thousands."""
     cohort, progression = scenario.cohort, scenario.progression
     sex_fractions = cohort["sex_fractions"]
     sex = "F" if rng.random() < sex_fractions["F"] else "M"
@@ -242,11 +258,7 @@ def draw_participant(
     years = (0.0,) + tuple(
         round(float(k + rng.uniform(-jitter, jitter)), 2) for k in range(1, follow_up + 1)
     )
-    stages = {
-        region: progression["stage_mean"][diagnosis] + value for region, value in deviations.items()
-    }
-    anatomy, head_scale = build_anatomy(scenario, sex, stages, age, rng)
-    draw = Draw(
+    return Draw(
         participant_id=f"sub-{index + 1:03d}",
         sex=sex,
         diagnosis=diagnosis,
@@ -258,9 +270,8 @@ def draw_participant(
         acceleration=acceleration(scenario, diagnosis, deviations),
         rates=rates,
         visit_years=years,
-        head_scale=head_scale,
+        head_scale=1.0,
     )
-    return replace(draw, visit_years=_until_dropout(anatomy, draw)), anatomy
 
 
 def _until_dropout(anatomy: Anatomy, draw: Draw) -> tuple[float, ...]:
