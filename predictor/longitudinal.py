@@ -118,6 +118,7 @@ def rigid_alignment(fixed: Visit, moving: Visit, settings) -> np.ndarray:
         histogram_bins=48,
         sampling_fraction=0.3,
         learning_rate=1.0,
+        min_step_mm=settings.rigid_min_step_mm,
         iterations=settings.rigid_iterations,
         shrink_factors=settings.rigid_shrink_factors,
         smoothing_mm=settings.rigid_smoothing_mm,

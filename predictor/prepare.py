@@ -64,6 +64,7 @@ class RegistrationSettings:
     smoothing_mm: tuple[float, ...]
     iterations: int
     learning_rate: float
+    min_step_mm: float
     max_metric: float
     max_affine_volume_change: float
     volume_scale: tuple[float, float]
@@ -106,6 +107,7 @@ class LongitudinalSettings:
     rigid_shrink_factors: tuple[int, ...]
     rigid_smoothing_mm: tuple[float, ...]
     rigid_iterations: int
+    rigid_min_step_mm: float
     demons_shrink_factors: tuple[int, ...]
     demons_iterations: tuple[int, ...]
     demons_field_sd_voxels: float

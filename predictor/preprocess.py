@@ -144,7 +144,8 @@ def register_affine(
 def run_registration(fixed, fixed_mask, moving, initial, settings):
     """Mattes mutual information, multi-resolution, regular-step gradient descent (SimpleITK).
 
-    ``settings`` gives histogram_bins, sampling_fraction, learning_rate, iterations,
+    ``settings`` gives histogram_bins, sampling_fraction, learning_rate, min_step_mm (a
+    level ends once the step, as the largest physical shift, falls below it), iterations,
     shrink_factors and smoothing_mm (per level). Returns the transform and the method.
     """
     method = sitk.ImageRegistrationMethod()
@@ -155,7 +156,7 @@ def run_registration(fixed, fixed_mask, moving, initial, settings):
     method.SetInterpolator(sitk.sitkLinear)
     method.SetOptimizerAsRegularStepGradientDescent(
         learningRate=settings.learning_rate,
-        minStep=1e-4,
+        minStep=settings.min_step_mm,
         numberOfIterations=settings.iterations,
         gradientMagnitudeTolerance=1e-8,
     )

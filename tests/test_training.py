@@ -219,22 +219,33 @@ def test_resume_gives_bitwise_equal_weights(tiny_workspace, tmp_path):
 
 @pytest.mark.slow
 def test_torchrun_two_processes_match_a_single_process(tiny_workspace, tmp_path):
+    # One optimiser step on one batch of two pairs: each of two torchrun processes takes
+    # one pair and DDP averages their gradients, which must give the single process's
+    # step. Adam's first step is about the learning rate times the gradient's sign, so a
+    # wrong pair, augmentation or split moves weights by about the learning rate; the
+    # summation order alone moved them by 0.6% of it (2026-12-05). Over more steps such
+    # float-level differences grow (Adam divides near-zero gradients by their own size):
+    # after 2 epochs of 16 pairs the validation loss differed by 10.6%, which is why this
+    # test compares one step, not a trained model.
     torchrun = shutil.which("torchrun", path=str(Path(sys.executable).parent))
     config = tmp_path / "quick.toml"
     raw = QUICK.to_dict()
-    raw["training"]["max_pairs_per_epoch"] = 16
+    raw["training"]["max_pairs_per_epoch"] = raw["training"]["batch_pairs"] = 2
     config.write_text(_toml(raw))
     single = tmp_path / "single"
-    train(tiny_workspace, single, TrainConfig.from_toml(config), epochs=2)
+    train(tiny_workspace, single, TrainConfig.from_toml(config), epochs=1)
     environment = os.environ | {"OMP_NUM_THREADS": "1"}
     command = [torchrun, "--standalone", "--nproc_per_node", "2", "-m", "predictor.cli", "train"]
     command += [str(tiny_workspace), str(tmp_path / "ddp"), "--config", str(config)]
-    command += ["--epochs", "2"]
+    command += ["--epochs", "1"]
     done = subprocess.run(command, capture_output=True, text=True, env=environment, timeout=600)
     assert done.returncode == 0, done.stderr[-2000:]
-    one = pd.read_csv(single / "log.tsv", sep="\t").val_total.iloc[-1]
-    two = pd.read_csv(tmp_path / "ddp" / "log.tsv", sep="\t").val_total.iloc[-1]
-    assert two == pytest.approx(one, rel=0.10)
+    one, two = load_tensors(single / WEIGHTS), load_tensors(tmp_path / "ddp" / WEIGHTS)
+    largest = max((one[key] - two[key]).abs().max().item() for key in one)
+    assert largest < 0.05 * raw["training"]["learning_rate"], largest
+    # both processes' validation sums are gathered: the same validation loss
+    logs = [pd.read_csv(f / "log.tsv", sep="\t") for f in (single, tmp_path / "ddp")]
+    assert logs[1].val_total.iloc[-1] == pytest.approx(logs[0].val_total.iloc[-1], rel=0.01)
 
 
 def _toml(raw: dict) -> str:
