@@ -35,6 +35,7 @@ import torch
 import torch.nn.functional as F
 from scipy import ndimage
 
+from predictor.atypical import anatomy_note
 from predictor.config import load_settings
 from predictor.errors import DataError, ModelError
 from predictor.fields import identity_grid, jacobian_determinant, region_volume_ratio, sample_at
@@ -301,6 +302,8 @@ def forecast(
     sex_code, label, horizons, notes = check_request(model, float(age), sex, diagnosis, years)
     prepared = prepared if prepared is not None else prepare_for(model, scan)
     check_grid(model, prepared)
+    unusual = anatomy_note(info.training_range.get("anatomy"), prepared.volumes)
+    notes += [unusual] if unusual else []
     condition = encode_condition(
         [age], [sex_code], [label], info.coding, info.condition["age_mean"],
         info.condition["age_sd"],
@@ -340,7 +343,9 @@ def volume_table(
 
     Columns: region, years, baseline_ml, network_ml, network_change_ml,
     network_percent_per_year, prior_mean_ml, prior_sd_ml, prior_lower_ml,
-    prior_upper_ml (90% interval), prior_percent_per_year, outside_prior_95.
+    prior_upper_ml (90% interval for an observed follow-up), prior_percent_per_year,
+    outside_prior_95 (the network's forecast outside the prior's 95% interval for the true
+    volume, without the observation's residual noise: a mean against a mean).
     """
     horizons = sorted(network_ml)
     request = pd.DataFrame(
@@ -349,6 +354,11 @@ def volume_table(
     notes = []
     try:
         prior = model.prior.predict(request, horizons).set_index(["region", "years"])
+        # the flag holds the network's forecast (a mean) against the prior's interval for the
+        # participant's true volume, not the wider one for a noisy observed follow-up
+        mean_sd = model.prior.predict(request, horizons, noise_free=True).set_index(
+            ["region", "years"]
+        )["sd_ml"]
     except DataError as error:
         prior, notes = None, [f"no prior forecast: {error}"]
     rows = []
@@ -365,7 +375,8 @@ def volume_table(
             }
             if prior is not None and (region, t) in prior.index:
                 mean, sd = prior.loc[(region, t), ["mean_ml", "sd_ml"]]
-                outside = bool(abs(net - mean) > Z95 * sd) if t > 0 else False
+                true_sd = mean_sd.loc[(region, t)]
+                outside = bool(abs(net - mean) > Z95 * true_sd) if t > 0 else False
                 row |= {
                     "prior_mean_ml": mean,
                     "prior_sd_ml": sd,
@@ -377,7 +388,8 @@ def volume_table(
                 if outside:
                     notes.append(
                         f"{region} at {t:g} years: network forecast {net:.2f} mL is outside the "
-                        f"prior's 95% interval {mean - Z95 * sd:.2f}-{mean + Z95 * sd:.2f} mL"
+                        f"prior's 95% interval for the true volume "
+                        f"{mean - Z95 * true_sd:.2f}-{mean + Z95 * true_sd:.2f} mL"
                     )
             rows.append(row)
     return pd.DataFrame(rows), notes

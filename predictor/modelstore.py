@@ -97,7 +97,7 @@ class ModelInfo:
     cohort: dict  # the sex and diagnosis coding (CohortSettings.to_dict())
     condition: dict  # {"age_mean": years, "age_sd": years}
     split: dict  # set -> participant ids
-    training_range: dict  # ages, longest interval, diagnoses and sexes seen, pairs
+    training_range: dict  # ages, longest interval, diagnoses and sexes seen, pairs, anatomy
     prior: str  # file name of the regional prior
     prior_warnings: list
     fingerprint: str  # workspace volumes + config + seed

@@ -606,7 +606,12 @@ class MixedEffectsForecaster:
             rows[participant] = fit.cov_re @ z.T @ np.linalg.solve(v, residual)
         return pd.DataFrame.from_dict(rows, orient="index", columns=["intercept", "years"])
 
-    def predict(self, baseline: pd.DataFrame, years: Sequence[float]) -> pd.DataFrame:
+    def predict(
+        self, baseline: pd.DataFrame, years: Sequence[float], noise_free: bool = False
+    ) -> pd.DataFrame:
+        """The common table. ``sd_ml`` and the bounds are for an observed follow-up (its
+        residual noise included); with ``noise_free``, for the participant's true volume
+        at the horizon (the mean of its follow-up observations), the like of a forecast."""
         horizons = check_request(baseline, years, self.labels_, self.regions_)
         base = baseline.reset_index(drop=True).assign(baseline_age=baseline["age"].to_numpy())
         grid = _grid(base, horizons)
@@ -621,7 +626,7 @@ class MixedEffectsForecaster:
             weight = cross / (g[0, 0] + s2)
             y0 = grid[region].to_numpy(float)
             mean = xt @ fit.beta + weight * (y0 - x0 @ fit.beta)
-            own = g[0, 0] + 2 * t * g[0, 1] + t**2 * g[1, 1] + s2
+            own = g[0, 0] + 2 * t * g[0, 1] + t**2 * g[1, 1] + (0.0 if noise_free else s2)
             conditional = own - cross**2 / (g[0, 0] + s2)
             d = xt - weight[:, None] * x0
             variance = conditional + np.einsum("ij,jk,ik->i", d, fit.cov_beta, d)

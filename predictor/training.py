@@ -32,6 +32,7 @@ import pandas as pd
 import torch
 import torch.distributed as dist
 
+from predictor.atypical import anatomy_reference
 from predictor.config import load_settings, settings_from_table
 from predictor.errors import DataError, OutputError
 from predictor.fields import jacobian_determinant, region_volume_ratio, warp
@@ -261,6 +262,7 @@ def prepare_run(
     digest.update(str(seed).encode())
     digest.update(json.dumps(split, sort_keys=True).encode())
     train_rows = volumes[volumes["participant_id"].isin(split["train"])]
+    baselines = train_rows.sort_values("age").groupby("participant_id").head(1)
     info = ModelInfo(
         schema=SCHEMA,
         config=config.to_dict(),
@@ -278,6 +280,7 @@ def prepare_run(
             "diagnoses": sorted(set(train_rows["diagnosis"])),
             "sexes": sorted(set(train_rows["sex"])),
             "pairs": len(pairs["train"]),
+            "anatomy": anatomy_reference(baselines, regions),
         },
         prior=PRIOR,
         prior_warnings=prior_warnings,

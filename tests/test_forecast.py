@@ -273,3 +273,34 @@ def test_forecast_command_single_scan(tiny_model, baseline_row, tmp_path):
     assert expand_lists(["x", "--years", "1", "2", "5", "--out", "o"]) == [
         "x", "--years", "1", "--years", "2", "--years", "5", "--out", "o",
     ]  # fmt: skip
+
+
+def test_prior_flag_holds_a_mean_against_the_prior_interval_for_a_mean():
+    # A network forecast between the prior's 95% interval for the true volume and the
+    # wider one for an observed follow-up is flagged; one inside the narrower is not.
+    from predictor.forecast import Z95, volume_table
+    from predictor.phantoms.generate import true_volume_table
+    from predictor.phantoms.scenario import Scenario
+
+    model = constant_velocity_model()
+    truth, _ = true_volume_table(Scenario.from_toml(), 1, seed=7)
+    first = truth.iloc[0]
+    baseline = {region: float(first[region]) for region in model.prior.regions_}
+    request = pd.DataFrame([{"participant_id": "p", "age": first["age"], "sex": first["sex"],
+                             "diagnosis": first["diagnosis"]} | baseline])  # fmt: skip
+    observed = model.prior.predict(request, [3.0]).set_index("region")
+    true = model.prior.predict(request, [3.0], noise_free=True).set_index("region")
+    region = "hippocampus_left"
+    mean, wide = observed.loc[region, "mean_ml"], observed.loc[region, "sd_ml"]
+    narrow = true.loc[region, "sd_ml"]
+    assert wide > 1.01 * narrow  # the residual noise of one observation is not negligible
+    for value, flagged in (
+        (mean + Z95 * (wide + narrow) / 2, True),
+        (mean + Z95 * narrow / 2, False),
+    ):
+        network = {3.0: baseline | {region: value}}
+        table, notes = volume_table(model, baseline, network, first["age"], first["sex"],
+                                    first["diagnosis"])  # fmt: skip
+        row = table[(table["region"] == region)].iloc[0]
+        assert bool(row["outside_prior_95"]) is flagged
+        assert any("interval for the true volume" in note for note in notes) is flagged

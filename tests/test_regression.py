@@ -205,6 +205,21 @@ def test_mixed_effects_recovers_configured_rates(phantom_truth, linear_scenario)
             )
 
 
+def test_interval_for_the_true_volume_leaves_out_only_the_residual_noise(phantom_truth):
+    # A forecast (a mean) is held against the prior's interval for the participant's true
+    # volume: the two predictive variances differ by exactly the residual variance that
+    # statsmodels' MixedLM estimated (MixedLMResults.scale), at every horizon.
+    truth, _ = phantom_truth
+    model = MixedEffectsForecaster().fit(truth, ["hippocampus_left"])
+    base = baseline_rows(check_table(truth, ["hippocampus_left"])).head(20)
+    observed = model.predict(base, [1.0, 3.0])
+    true = model.predict(base, [1.0, 3.0], noise_free=True)
+    residual = model.fits_["hippocampus_left"].residual_var
+    np.testing.assert_allclose(observed.sd_ml**2 - true.sd_ml**2, residual, rtol=1e-9)
+    np.testing.assert_array_equal(true.mean_ml, observed.mean_ml)
+    assert (true.sd_ml < observed.sd_ml).all()
+
+
 def test_conformal_intervals_cover_held_out_followups(phantom_truth):
     truth, regions = phantom_truth
     ids = truth.participant_id.unique()

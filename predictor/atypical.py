@@ -1,0 +1,92 @@
+"""Out-of-range anatomy: how far a scan's regional volumes lie from the training
+participants' baselines.
+
+Each baseline is described by the log of every region's volume over the head
+size (the first reference region, the intracranial volume), so that head size
+itself does not count. The training participants' vectors give a mean and a
+Ledoit-Wolf shrunk covariance (Ledoit and Wolf 2004, scikit-learn's
+``LedoitWolf``), which stays invertible with fewer participants than a
+well-estimated full covariance needs. A scan's Mahalanobis distance from them
+is compared with a threshold calibrated on the training participants: the
+largest of their leave-one-out distances (each participant measured against
+the mean and covariance of the others), which a new participant exchangeable
+with them exceeds with probability about 1 / (n + 1).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+
+import numpy as np
+import pandas as pd
+
+from predictor.regions import RegionSet
+
+#: fewer training participants than this give no reference (and no warning)
+MIN_PARTICIPANTS = 10
+#: volumes (mL) are floored here before the log, so an empty region is far, not infinite
+FLOOR_ML = 1e-3
+
+
+def features(volumes: pd.DataFrame, names, head_size: str | None) -> np.ndarray:
+    """(P, R) log of each region's volume over the head size (mL over mL)."""
+    table = np.maximum(volumes[list(names)].to_numpy(float), FLOOR_ML)
+    divisor = np.maximum(volumes[head_size].to_numpy(float), FLOOR_ML)[:, None] if head_size else 1
+    return np.log(table / divisor)
+
+
+def _fit(x: np.ndarray):
+    """Scikit-learn's Ledoit-Wolf fit of the rows of ``x`` (location_, precision_, covariance_)."""
+    from sklearn.covariance import LedoitWolf
+
+    return LedoitWolf().fit(x)
+
+
+def mahalanobis(x: np.ndarray, mean: np.ndarray, precision: np.ndarray) -> np.ndarray:
+    """Mahalanobis distance of each row of ``x`` (..., R) from ``mean`` under ``precision``."""
+    centred = np.asarray(x, float) - mean
+    return np.sqrt(np.einsum("...i,ij,...j->...", centred, precision, centred))
+
+
+def anatomy_reference(baselines: pd.DataFrame, regions: RegionSet) -> dict | None:
+    """The training participants' reference (one baseline row each, volumes in mL): regions,
+    head size, mean, SD, precision and the leave-one-out threshold; None with too few."""
+    head = regions.head_size
+    names = [name for name in regions.names if name != head]
+    x = features(baselines, names, head)
+    if len(x) < MIN_PARTICIPANTS:
+        return None
+    left_out = []
+    for i in range(len(x)):
+        others = _fit(np.delete(x, i, axis=0))
+        left_out.append(mahalanobis(x[i], others.location_, others.precision_))
+    fitted = _fit(x)
+    return {
+        "regions": names,
+        "head_size": head,
+        "mean": fitted.location_.tolist(),
+        "sd": np.sqrt(np.diag(fitted.covariance_)).tolist(),
+        "precision": fitted.precision_.tolist(),
+        "threshold": float(max(left_out)),
+        "participants": len(x),
+    }
+
+
+def anatomy_note(reference: dict | None, volumes: Mapping[str, float]) -> str | None:
+    """A warning where the scan's regional volumes (mL) lie beyond the reference's threshold;
+    None where they do not or where the model has no reference."""
+    if reference is None:
+        return None
+    row = pd.DataFrame([dict(volumes)])
+    x = features(row, reference["regions"], reference["head_size"])[0]
+    mean, precision = np.array(reference["mean"]), np.array(reference["precision"])
+    distance = float(mahalanobis(x, mean, precision))
+    if distance <= reference["threshold"]:
+        return None
+    far = np.argmax(np.abs(x - mean) / np.array(reference["sd"]))
+    return (
+        f"regional volumes lie far from the training participants' (Mahalanobis distance "
+        f"{distance:.1f} > {reference['threshold']:.1f}, the largest of the "
+        f"{reference['participants']} training participants' leave-one-out distances; "
+        f"most unusual: {reference['regions'][far]}): the forecast extrapolates"
+    )

@@ -1,0 +1,68 @@
+"""Out-of-range anatomy: Mahalanobis distance of regional volumes (predictor.atypical)."""
+
+from __future__ import annotations
+
+import json
+from dataclasses import replace
+
+import pandas as pd
+import pytest
+from scipy.spatial import distance
+from sklearn.covariance import LedoitWolf
+
+from predictor.atypical import anatomy_note, anatomy_reference, mahalanobis
+from predictor.workspace import read_workspace
+
+
+def test_distance_is_scipys_mahalanobis(rng):
+    # scipy.spatial.distance.mahalanobis under scikit-learn's Ledoit-Wolf precision
+    x = rng.normal(size=(30, 5))
+    fitted = LedoitWolf().fit(x)
+    for row in x[:5]:
+        expected = distance.mahalanobis(row, fitted.location_, fitted.precision_)
+        assert mahalanobis(row, fitted.location_, fitted.precision_) == pytest.approx(expected)
+
+
+@pytest.fixture(scope="module")
+def baselines(tiny_workspace):
+    workspace = read_workspace(tiny_workspace)
+    first = workspace.volumes.sort_values("age").groupby("participant_id").head(1)
+    return first, workspace.regions
+
+
+def test_training_participants_pass_and_fourfold_ventricles_are_flagged(baselines):
+    # Calibrated on the participants themselves (largest leave-one-out distance): none of
+    # them is flagged; ventricles four times the largest seen are.
+    table, regions = baselines
+    reference = anatomy_reference(table, regions)
+    assert reference["participants"] == len(table) == 20
+    assert regions.head_size not in reference["regions"]
+    for row in table.to_dict("records"):
+        assert anatomy_note(reference, row) is None, row["participant_id"]
+    odd = table.iloc[0].to_dict() | {"ventricles": 4 * table["ventricles"].max()}
+    note = anatomy_note(reference, odd)
+    assert note is not None and "most unusual: ventricles" in note
+    assert anatomy_reference(table.iloc[:9], regions) is None  # too few to calibrate
+
+
+def test_forecast_warns_about_an_unusual_anatomy(tiny_model, tiny_workspace):
+    # The model keeps its training participants' reference in model.json; a forecast of a
+    # training participant's scan carries no anatomy warning, the same scan read with
+    # fourfold ventricles does (in the notes written to the summary and provenance).
+    from predictor.forecast import forecast, prepare_for
+    from predictor.modelstore import load_model
+    from predictor.nifti import load_scan
+
+    model = load_model(tiny_model)
+    stored = json.loads((tiny_model / "model.json").read_text())["training_range"]["anatomy"]
+    assert stored["participants"] == len(model.info.split["train"])
+    cohort = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t")
+    row = cohort[cohort["participant_id"] == model.info.split["train"][0]].iloc[0]
+    scan = load_scan(row["image"])
+    prepared = prepare_for(model, scan)
+    request = (row["age"], row["sex"], row["diagnosis"], [1.0])
+    plain = forecast(model, scan, *request, prepared=prepared)
+    assert not [note for note in plain.warnings if "Mahalanobis" in note]
+    volumes = prepared.volumes | {"ventricles": 4 * prepared.volumes["ventricles"]}
+    odd = forecast(model, scan, *request, prepared=replace(prepared, volumes=volumes))
+    assert [note for note in odd.warnings if "most unusual: ventricles" in note]
