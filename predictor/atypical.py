@@ -3,10 +3,12 @@ participants' baselines.
 
 Each baseline is described by the log of every region's volume over the head
 size (the first reference region, the intracranial volume), so that head size
-itself does not count. The training participants' vectors give a mean and a
-Ledoit-Wolf shrunk covariance (Ledoit and Wolf 2004, scikit-learn's
-``LedoitWolf``), which stays invertible with fewer participants than a
-well-estimated full covariance needs. A scan's Mahalanobis distance from them
+itself does not count. The training participants' vectors are standardised
+(mean and SD per region) and their correlation shrunk by Ledoit and Wolf's
+(2004) estimator (scikit-learn's ``LedoitWolf`` on the standardised vectors),
+which stays invertible with fewer participants than a well-estimated full
+covariance needs and shrinks towards independent regions, not towards one
+common variance. A scan's Mahalanobis distance from them
 is compared with a threshold calibrated on the training participants: the
 largest of their leave-one-out distances (each participant measured against
 the mean and covariance of the others), which a new participant exchangeable
@@ -35,17 +37,25 @@ def features(volumes: pd.DataFrame, names, head_size: str | None) -> np.ndarray:
     return np.log(table / divisor)
 
 
-def _fit(x: np.ndarray):
-    """Scikit-learn's Ledoit-Wolf fit of the rows of ``x`` (location_, precision_, covariance_)."""
+def _fit(x: np.ndarray) -> dict[str, np.ndarray]:
+    """Mean and SD (R,) of the rows of ``x`` and the Ledoit-Wolf precision (R, R) of the
+    standardised rows."""
     from sklearn.covariance import LedoitWolf
 
-    return LedoitWolf().fit(x)
+    mean, sd = x.mean(axis=0), x.std(axis=0, ddof=1)
+    precision = LedoitWolf(assume_centered=True).fit((x - mean) / sd).precision_
+    return {"mean": mean, "sd": sd, "precision": precision}
 
 
 def mahalanobis(x: np.ndarray, mean: np.ndarray, precision: np.ndarray) -> np.ndarray:
     """Mahalanobis distance of each row of ``x`` (..., R) from ``mean`` under ``precision``."""
     centred = np.asarray(x, float) - mean
     return np.sqrt(np.einsum("...i,ij,...j->...", centred, precision, centred))
+
+
+def distance(x: np.ndarray, fit: dict) -> np.ndarray:
+    """Mahalanobis distance of the standardised rows of ``x`` under a :func:`_fit`."""
+    return mahalanobis((np.asarray(x, float) - fit["mean"]) / fit["sd"], 0.0, fit["precision"])
 
 
 def anatomy_reference(baselines: pd.DataFrame, regions: RegionSet) -> dict | None:
@@ -56,17 +66,14 @@ def anatomy_reference(baselines: pd.DataFrame, regions: RegionSet) -> dict | Non
     x = features(baselines, names, head)
     if len(x) < MIN_PARTICIPANTS:
         return None
-    left_out = []
-    for i in range(len(x)):
-        others = _fit(np.delete(x, i, axis=0))
-        left_out.append(mahalanobis(x[i], others.location_, others.precision_))
+    left_out = [distance(x[i], _fit(np.delete(x, i, axis=0))) for i in range(len(x))]
     fitted = _fit(x)
     return {
         "regions": names,
         "head_size": head,
-        "mean": fitted.location_.tolist(),
-        "sd": np.sqrt(np.diag(fitted.covariance_)).tolist(),
-        "precision": fitted.precision_.tolist(),
+        "mean": fitted["mean"].tolist(),
+        "sd": fitted["sd"].tolist(),
+        "precision": fitted["precision"].tolist(),
         "threshold": float(max(left_out)),
         "participants": len(x),
     }
@@ -79,14 +86,14 @@ def anatomy_note(reference: dict | None, volumes: Mapping[str, float]) -> str | 
         return None
     row = pd.DataFrame([dict(volumes)])
     x = features(row, reference["regions"], reference["head_size"])[0]
-    mean, precision = np.array(reference["mean"]), np.array(reference["precision"])
-    distance = float(mahalanobis(x, mean, precision))
-    if distance <= reference["threshold"]:
+    fit = {key: np.array(reference[key]) for key in ("mean", "sd", "precision")}
+    far_from = float(distance(x, fit))
+    if far_from <= reference["threshold"]:
         return None
-    far = np.argmax(np.abs(x - mean) / np.array(reference["sd"]))
+    far = np.argmax(np.abs(x - fit["mean"]) / fit["sd"])
     return (
         f"regional volumes lie far from the training participants' (Mahalanobis distance "
-        f"{distance:.1f} > {reference['threshold']:.1f}, the largest of the "
+        f"{far_from:.1f} > {reference['threshold']:.1f}, the largest of the "
         f"{reference['participants']} training participants' leave-one-out distances; "
         f"most unusual: {reference['regions'][far]}): the forecast extrapolates"
     )
