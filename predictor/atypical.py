@@ -10,9 +10,10 @@ which stays invertible with fewer participants than a well-estimated full
 covariance needs and shrinks towards independent regions, not towards one
 common variance. A scan's Mahalanobis distance from them
 is compared with a threshold calibrated on the training participants: the
-largest of their leave-one-out distances (each participant measured against
-the mean and covariance of the others), which a new participant exchangeable
-with them exceeds with probability about 1 / (n + 1).
+largest of their leave-one-out distances (each participant's scans measured
+against the mean and covariance of the others'), which a new participant
+exchangeable with them exceeds with probability about 1 / (n + 1). Every visit
+of a training participant counts, since the network saw each as an input.
 """
 
 from __future__ import annotations
@@ -28,6 +29,8 @@ from predictor.regions import RegionSet
 MIN_PARTICIPANTS = 10
 #: volumes (mL) are floored here before the log, so an empty region is far, not infinite
 FLOOR_ML = 1e-3
+#: SD (log units) of a region that never varied in training: any difference is far
+FLOOR_SD = 1e-6
 
 
 def features(volumes: pd.DataFrame, names, head_size: str | None) -> np.ndarray:
@@ -43,6 +46,7 @@ def _fit(x: np.ndarray) -> dict[str, np.ndarray]:
     from sklearn.covariance import LedoitWolf
 
     mean, sd = x.mean(axis=0), x.std(axis=0, ddof=1)
+    sd = np.where(sd > 0, sd, FLOOR_SD)  # a region the same in every training scan
     precision = LedoitWolf(assume_centered=True).fit((x - mean) / sd).precision_
     return {"mean": mean, "sd": sd, "precision": precision}
 
@@ -58,15 +62,20 @@ def distance(x: np.ndarray, fit: dict) -> np.ndarray:
     return mahalanobis((np.asarray(x, float) - fit["mean"]) / fit["sd"], 0.0, fit["precision"])
 
 
-def anatomy_reference(baselines: pd.DataFrame, regions: RegionSet) -> dict | None:
-    """The training participants' reference (one baseline row each, volumes in mL): regions,
-    head size, mean, SD, precision and the leave-one-out threshold; None with too few."""
+def anatomy_reference(visits: pd.DataFrame, regions: RegionSet) -> dict | None:
+    """The training participants' reference from every visit they have (each one a scan the
+    network saw as an input; volumes in mL, a participant_id column): regions, head size,
+    mean, SD, precision and the threshold, the largest distance of a participant's visits
+    from a fit without that participant; None with too few participants."""
     head = regions.head_size
     names = [name for name in regions.names if name != head]
-    x = features(baselines, names, head)
-    if len(x) < MIN_PARTICIPANTS:
+    x = features(visits, names, head)
+    people = visits["participant_id"].to_numpy()
+    if len(set(people)) < MIN_PARTICIPANTS:
         return None
-    left_out = [distance(x[i], _fit(np.delete(x, i, axis=0))) for i in range(len(x))]
+    left_out = [
+        distance(x[people == person], _fit(x[people != person])).max() for person in set(people)
+    ]
     fitted = _fit(x)
     return {
         "regions": names,
@@ -75,7 +84,8 @@ def anatomy_reference(baselines: pd.DataFrame, regions: RegionSet) -> dict | Non
         "sd": fitted["sd"].tolist(),
         "precision": fitted["precision"].tolist(),
         "threshold": float(max(left_out)),
-        "participants": len(x),
+        "participants": len(set(people)),
+        "scans": len(x),
     }
 
 
@@ -90,10 +100,12 @@ def anatomy_note(reference: dict | None, volumes: Mapping[str, float]) -> str | 
     far_from = float(distance(x, fit))
     if far_from <= reference["threshold"]:
         return None
-    far = np.argmax(np.abs(x - fit["mean"]) / fit["sd"])
+    standard = (x - fit["mean"]) / fit["sd"]
+    far = int(np.argmax(np.abs(standard)))
     return (
         f"regional volumes lie far from the training participants' (Mahalanobis distance "
         f"{far_from:.1f} > {reference['threshold']:.1f}, the largest of the "
         f"{reference['participants']} training participants' leave-one-out distances; "
-        f"most unusual: {reference['regions'][far]}): the forecast extrapolates"
+        f"furthest from their mean: {reference['regions'][far]}, {standard[far]:+.1f} SD): the "
+        "forecast extrapolates"
     )

@@ -343,9 +343,10 @@ def volume_table(
 
     Columns: region, years, baseline_ml, network_ml, network_change_ml,
     network_percent_per_year, prior_mean_ml, prior_sd_ml, prior_lower_ml,
-    prior_upper_ml (90% interval for an observed follow-up), prior_percent_per_year,
-    outside_prior_95 (the network's forecast outside the prior's 95% interval for the true
-    volume, without the observation's residual noise: a mean against a mean).
+    prior_upper_ml (SD and 90% interval for an observed follow-up), prior_true_sd_ml (SD
+    of the participant's true volume, without the residual noise of one observation),
+    prior_percent_per_year, outside_prior_95 (the network's forecast, an estimate of the
+    true volume, outside the prior's 95% prediction interval for the true volume).
     """
     horizons = sorted(network_ml)
     request = pd.DataFrame(
@@ -354,8 +355,8 @@ def volume_table(
     notes = []
     try:
         prior = model.prior.predict(request, horizons).set_index(["region", "years"])
-        # the flag holds the network's forecast (a mean) against the prior's interval for the
-        # participant's true volume, not the wider one for a noisy observed follow-up
+        # the flag holds the network's forecast (an estimate of the true volume) against the
+        # prior's interval for the true volume, not the wider one for an observed follow-up
         mean_sd = model.prior.predict(request, horizons, noise_free=True).set_index(
             ["region", "years"]
         )["sd_ml"]
@@ -380,6 +381,7 @@ def volume_table(
                 row |= {
                     "prior_mean_ml": mean,
                     "prior_sd_ml": sd,
+                    "prior_true_sd_ml": true_sd,
                     "prior_lower_ml": mean - Z90 * sd,
                     "prior_upper_ml": mean + Z90 * sd,
                     "prior_percent_per_year": 100 * (mean / base - 1) / t if t > 0 else np.nan,

@@ -262,7 +262,6 @@ def prepare_run(
     digest.update(str(seed).encode())
     digest.update(json.dumps(split, sort_keys=True).encode())
     train_rows = volumes[volumes["participant_id"].isin(split["train"])]
-    baselines = train_rows.sort_values("age").groupby("participant_id").head(1)
     info = ModelInfo(
         schema=SCHEMA,
         config=config.to_dict(),
@@ -280,7 +279,7 @@ def prepare_run(
             "diagnoses": sorted(set(train_rows["diagnosis"])),
             "sexes": sorted(set(train_rows["sex"])),
             "pairs": len(pairs["train"]),
-            "anatomy": anatomy_reference(baselines, regions),
+            "anatomy": anatomy_reference(train_rows, regions),
         },
         prior=PRIOR,
         prior_warnings=prior_warnings,

@@ -50,7 +50,8 @@ from predictor.compare import FLOOR, JACOBIAN, NETWORK, NETWORKS, POPULATION
 from predictor.config import CohortSettings
 from predictor.errors import DataError
 from predictor.files import write_json, write_tsv
-from predictor.regions import TOTAL_BRAIN
+from predictor.modelstore import read_model_json
+from predictor.regions import TOTAL_BRAIN, RegionSet
 from predictor.rng import seeded_rng
 
 MIN_PARTICIPANTS = 10
@@ -105,14 +106,18 @@ class Costs:
     enrol: float
 
     def __post_init__(self):
-        if min(self.screen, self.enrol) < 0 or self.screen + self.enrol == 0:
+        finite = np.isfinite([self.screen, self.enrol]).all()
+        if not finite or min(self.screen, self.enrol) < 0 or self.screen + self.enrol == 0:
             raise DataError(
-                f"costs must be >= 0 and not both 0, got screen {self.screen}, enrol {self.enrol}"
+                f"costs must be finite, >= 0 and not both 0, got screen {self.screen}, enrol "
+                f"{self.enrol}"
             )
 
-    def total(self, n_per_arm, fraction):
-        """Cost of a two-arm trial with ``n_per_arm`` enrolled per arm at enrolled fraction q."""
-        return 2 * np.asarray(n_per_arm) * (self.enrol + self.screen / fraction)
+    def total(self, n_per_arm, screened_per_enrolled: float):
+        """Cost of a two-arm trial with ``n_per_arm`` enrolled per arm (whole participants)
+        and ``screened_per_enrolled`` screened for each."""
+        enrolled = np.ceil(np.asarray(n_per_arm, float))
+        return 2 * enrolled * (self.enrol + self.screen * screened_per_enrolled)
 
 
 # --- sample size -------------------------------------------------------------------------
@@ -137,6 +142,10 @@ def t_power(n: float, d: float, alpha: float) -> float:
 def n_t(mean_rate: float, sd_rate: float, design: Design) -> float:
     """Per-arm n of the exact two-sample t-test (unrounded; noncentral t, root of the power)."""
     d = design.effect * abs(mean_rate) / sd_rate
+    # the smallest trial already has the power (a huge effect or no spread; scipy's
+    # noncentral t returns NaN for d far beyond 50, where the power is 1 to machine precision)
+    if d > 50 or t_power(2.0 + 1e-9, d, design.alpha) >= design.power:
+        return 2.0
     start = n_normal(mean_rate, sd_rate, design)
     return float(
         optimize.brentq(
@@ -193,6 +202,23 @@ def held_out_errors(folder: Path) -> tuple[pd.DataFrame, str]:
             "folder"
         )
     raise DataError(f"{folder}: not a `predictor evaluate` or `compare` folder (no {HELD_OUT})")
+
+
+def declared_direction(folder: Path, region: str) -> float:
+    """+1 where ``region`` grows with disease, -1 where it shrinks: its declared change in
+    the regions the evaluation's models were trained with (fold 1's network), or in the
+    shipped regions for a compare report. A region declared not to change is refused."""
+    models = sorted(folder.glob("fold-*/network/model.json"))
+    regions = read_model_json(models[0].parent).region_set if models else RegionSet.from_toml()
+    if region not in regions.names:
+        raise DataError(f"region '{region}' is not one of {', '.join(regions.names)}")
+    direction = regions.get(region).direction
+    if direction == 0:
+        raise DataError(
+            f"region '{region}' has change = \"none\" in its regions file; a trial outcome "
+            "needs a direction (shrinks or grows)"
+        )
+    return float(direction)
 
 
 def participant_rates(errors: pd.DataFrame, region: str, design: Design) -> pd.DataFrame:
@@ -255,9 +281,11 @@ def rule_scores(rates: pd.DataFrame, direction: float, coding: CohortSettings, s
         RANDOM: seeded_rng(seed, 31).random(len(rates)),
         DIAGNOSIS: rates["diagnosis"].map(order).to_numpy(float),
     }
+    left_out = {}
     if rates["hippocampus_pct_brain"].notna().all():
         scores[HIPPOCAMPUS] = -rates["hippocampus_pct_brain"].to_numpy()
-    left_out = {}
+    else:
+        left_out[HIPPOCAMPUS] = "no hippocampus regions or no whole-brain volume in the table"
     for column in (c for c in rates if c.startswith(FORECAST)):
         missing = int(rates[column].isna().sum())
         if missing:  # a forecaster not fitted in some fold cannot rank everyone
@@ -311,6 +339,8 @@ def enrichment_table(
         point = np.lexsort((tie, -score))
         resampled = np.take_along_axis(draws, np.lexsort((ties, -score[draws]), axis=-1), -1)
         for fraction in fractions:
+            if not 0 < fraction <= 1:
+                raise DataError(f"enrolled fractions must be within (0, 1], got {fraction:g}")
             enrolled = int(np.ceil(fraction * count))
             if enrolled < MIN_PARTICIPANTS:
                 raise DataError(
@@ -340,8 +370,9 @@ def enrichment_table(
                 samples[(rule, fraction, effect)] = boot
                 row |= _with_ci(f"{effect}_n_per_arm", n, boot)
                 if costs is not None:
+                    ratio = row["screened_per_enrolled"]
                     row |= _with_ci(
-                        f"{effect}_cost", costs.total(n, fraction), costs.total(boot, fraction)
+                        f"{effect}_cost", costs.total(n, ratio), costs.total(boot, ratio)
                     )
             if rule.startswith(FORECAST):
                 forecast = rates[rule].to_numpy()[chosen]
@@ -369,54 +400,60 @@ def network_rule(scores) -> str | None:
 
 
 def verdicts(table: pd.DataFrame, samples: dict, scores, costs: Costs | None) -> list[str]:
-    """Plain statements: the best rule at each enrolled fraction (fewest per arm, total
-    effect) against the network's forecast (paired bootstrap CI of the difference), and,
-    with costs, the cheapest design overall."""
+    """Plain statements (n in whole participants, 95% CIs): the unenriched n; at each enrolled
+    fraction the non-network rule with the fewest per arm (picked on these participants,
+    which favours it) beside the network's forecast (paired bootstrap CI of the difference);
+    with costs, the cheapest design (no enrichment, or a rule at a fraction below 1)."""
     lines, network = [], network_rule(scores)
-    unenriched = table[(table["rule"] == RANDOM) & (table["fraction"] == 1.0)].iloc[0]
-    lines.append(
-        f"no enrichment: {unenriched['total_n_per_arm']:.0f} per arm "
-        f"[{unenriched['total_n_per_arm_ci_low']:.0f}, {unenriched['total_n_per_arm_ci_high']:.0f}]"
-    )
-    rules = table[(table["rule"] != RANDOM) & (table["fraction"] < 1.0)]
-    for fraction, rows in rules.groupby("fraction", sort=False):
-        networks = {FORECAST + method for method in NETWORKS}
+    unenriched = table[(table["rule"] == RANDOM) & (table["fraction"] == 1.0)]
+    lines.append(f"no enrichment: {_n(unenriched.iloc[0], 'total_n_per_arm')} per arm")
+    networks = {FORECAST + method for method in NETWORKS}
+    enriched = table[(table["rule"] != RANDOM) & (table["fraction"] < 1.0)]
+    for fraction, rows in enriched.groupby("fraction", sort=False):
         others = rows[~rows["rule"].isin(networks)].dropna(subset=["total_n_per_arm"])
         if others.empty:
             continue
         best = others.loc[others["total_n_per_arm"].idxmin()]
         text = (
-            f"enrolling {fraction:g}: fewest per arm by {best['rule']}, "
-            f"{best['total_n_per_arm']:.0f} [{best['total_n_per_arm_ci_low']:.0f}, "
-            f"{best['total_n_per_arm_ci_high']:.0f}]"
+            f"enrolling {fraction:g}: fewest per arm among the non-network rules "
+            f"{best['rule']}, {_n(best, 'total_n_per_arm')}"
         )
         if network in set(rows["rule"]):
             own = rows[rows["rule"] == network].iloc[0]
-            difference = _difference(samples, network, best["rule"], fraction)
+            low, high = _difference(samples, network, best["rule"], fraction)
             text += (
-                f"; the network {own['total_n_per_arm']:.0f}, difference "
-                f"{own['total_n_per_arm'] - best['total_n_per_arm']:+.0f} "
-                f"[{difference[0]:+.0f}, {difference[1]:+.0f}]"
+                f"; the network {_n(own, 'total_n_per_arm')}, difference "
+                f"{own['total_n_per_arm'] - best['total_n_per_arm']:+.0f} [{low:+.0f}, {high:+.0f}]"
             )
         lines.append(text)
-    ranked = table[table["rule"] != RANDOM].dropna(subset=["total_cost"]) if costs else None
-    if ranked is not None and len(ranked):
-        best = ranked.loc[ranked["total_cost"].idxmin()]
-        lines.append(
-            f"cheapest design: {best['rule']} enrolling {best['fraction']:g}, cost "
-            f"{best['total_cost']:.0f} [{best['total_cost_ci_low']:.0f}, "
-            f"{best['total_cost_ci_high']:.0f}]"
-        )
+    if costs is not None:
+        candidates = pd.concat([unenriched.assign(rule="no enrichment"), enriched])
+        candidates = candidates.dropna(subset=["total_cost"])
+        best = candidates.loc[candidates["total_cost"].idxmin()]
+        where = "" if best["rule"] == "no enrichment" else f" enrolling {best['fraction']:g}"
+        lines.append(f"cheapest design: {best['rule']}{where}, cost {_n(best, 'total_cost')}")
     return lines
 
 
+def _n(row, column: str) -> str:
+    """``column`` of ``row`` rounded up, with its 95% CI (or 'not estimable')."""
+    value = row[column]
+    if not np.isfinite(value):
+        return "not estimable"
+    bounds = [row[f"{column}_ci_{side}"] for side in ("low", "high")]
+    low, high = (f"{b:.0f}" if np.isfinite(b) else "unbounded" for b in bounds)
+    return f"{np.ceil(value):.0f} [{low}, {high}]"
+
+
 def _difference(samples, rule: str, other: str, fraction: float) -> tuple[float, float]:
-    """Paired bootstrap 95% CI of n(rule) - n(other) at one fraction (total effect)."""
-    difference = samples[(rule, fraction, "total")] - samples[(other, fraction, "total")]
-    finite = difference[np.isfinite(difference)]
-    if finite.size < 0.95 * difference.size:
-        return float("nan"), float("nan")
-    low, high = np.quantile(finite, [0.025, 0.975])
+    """Paired bootstrap 95% CI of n(rule) - n(other) at one fraction (total effect; a bound
+    is +-inf where more than 2.5% of the resamples left one rule nothing to slow)."""
+    with np.errstate(invalid="ignore"):
+        difference = samples[(rule, fraction, "total")] - samples[(other, fraction, "total")]
+    # a resample where both had no change to slow is a tie; one where only one had keeps its
+    # infinite difference, so a bound is infinite where more than 2.5% are
+    difference = np.where(np.isnan(difference), 0.0, difference)
+    low, high = np.quantile(difference, [0.025, 0.975])
     return float(low), float(high)
 
 
@@ -444,8 +481,13 @@ def trial_report(
             f"{source}: {len(rates)} participants have a visit within {design.window:g} years "
             f"of {design.years:g} years; at least {MIN_PARTICIPANTS} are needed"
         )
-    # the direction of progression: the cohort's mean observed change
-    direction = 1.0 if rates["observed"].mean() >= 0 else -1.0
+    direction = declared_direction(folder, region)
+    warnings = []
+    if direction * rates["observed"].mean() <= 0:
+        warnings.append(
+            f"{region} is declared to {'grow' if direction > 0 else 'shrink'} with disease, "
+            f"but its mean observed rate is {rates['observed'].mean():+.2f} % per year"
+        )
     scores, left_out = rule_scores(rates, direction, coding, seed)
     fractions = sorted({1.0, *map(float, fractions)}, reverse=True)
     table, samples = enrichment_table(
@@ -462,6 +504,7 @@ def trial_report(
         "excluded": int(errors["participant_id"].nunique() - len(rates)),
         "network_rule": network_rule(scores),
         "rules_left_out": left_out,
+        "warnings": warnings,
         "verdicts": verdicts(table, samples, scores, costs),
         "apparent_warning": APPARENT_WARNING,
         "caution": TRIAL_CAUTION,
@@ -501,8 +544,11 @@ def enrichment_figure(table: pd.DataFrame, region: str, design: Design, costs: C
         high = (rows["total_n_per_arm_ci_high"] - rows["total_n_per_arm"]).clip(lower=0)
         left.errorbar(rows["fraction"], rows["total_n_per_arm"], yerr=[low, high.fillna(0)],
                       capsize=2, **style)  # fmt: skip
+        open_ended = rows[rows["total_n_per_arm_ci_high"].isna()]
+        left.scatter(open_ended["fraction"], open_ended["total_n_per_arm"], marker="^", s=60,
+                     color=colour, zorder=3)  # fmt: skip
         right.plot(rows["fraction"], rows[column], **style)
-    left.set_ylabel("participants per arm (observed rates)")
+    left.set_ylabel("participants per arm (observed rates; ^: CI without an upper bound)")
     right.set_ylabel("total cost (both arms)" if costs is not None else
                      "participants screened (both arms)")  # fmt: skip
     for axis in (left, right):

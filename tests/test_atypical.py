@@ -24,25 +24,27 @@ def test_distance_is_scipys_mahalanobis(rng):
 
 
 @pytest.fixture(scope="module")
-def baselines(tiny_workspace):
+def visits(tiny_workspace):
     workspace = read_workspace(tiny_workspace)
-    first = workspace.volumes.sort_values("age").groupby("participant_id").head(1)
-    return first, workspace.regions
+    return workspace.volumes, workspace.regions
 
 
-def test_training_participants_pass_and_fourfold_ventricles_are_flagged(baselines):
-    # Calibrated on the participants themselves (largest leave-one-out distance): none of
-    # them is flagged; ventricles four times the largest seen are.
-    table, regions = baselines
+def test_training_participants_pass_and_fourfold_ventricles_are_flagged(visits):
+    # Calibrated on the participants themselves (each participant's scans against a fit
+    # without it): none of their scans is flagged; ventricles four times the largest seen
+    # are, and the note names them.
+    table, regions = visits
     reference = anatomy_reference(table, regions)
-    assert reference["participants"] == len(table) == 20
+    assert reference["participants"] == table["participant_id"].nunique() == 20
+    assert reference["scans"] == len(table)
     assert regions.head_size not in reference["regions"]
     for row in table.to_dict("records"):
-        assert anatomy_note(reference, row) is None, row["participant_id"]
+        assert anatomy_note(reference, row) is None, row["key"]
     odd = table.iloc[0].to_dict() | {"ventricles": 4 * table["ventricles"].max()}
     note = anatomy_note(reference, odd)
-    assert note is not None and "most unusual: ventricles" in note
-    assert anatomy_reference(table.iloc[:9], regions) is None  # too few to calibrate
+    assert note is not None and "furthest from their mean: ventricles" in note
+    few = table[table["participant_id"].isin(sorted(set(table["participant_id"]))[:9])]
+    assert anatomy_reference(few, regions) is None  # too few participants to calibrate
 
 
 def test_forecast_warns_about_an_unusual_anatomy(tiny_model, tiny_workspace):
@@ -68,4 +70,4 @@ def test_forecast_warns_about_an_unusual_anatomy(tiny_model, tiny_workspace):
     largest = training[training["participant_id"].isin(model.info.split["train"])]["ventricles"]
     volumes = prepared.volumes | {"ventricles": 4 * largest.max()}
     odd = forecast(model, scan, *request, prepared=replace(prepared, volumes=volumes))
-    assert [note for note in odd.warnings if "most unusual: ventricles" in note]
+    assert [note for note in odd.warnings if "furthest from their mean: ventricles" in note]
