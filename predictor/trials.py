@@ -386,7 +386,9 @@ def enrichment_table(
 def _with_ci(name: str, value: float, boot: np.ndarray) -> dict:
     """``name``, ``name_ci_low`` and ``name_ci_high`` (percentile bootstrap 95%; NaN where
     more than 2.5% of the resamples had no change to slow)."""
-    low, high = (q if np.isfinite(q) else np.nan for q in np.quantile(boot, [0.025, 0.975]))
+    with np.errstate(invalid="ignore"):  # interpolating between two infinite resamples
+        quantiles = np.quantile(boot, [0.025, 0.975])
+    low, high = (q if np.isfinite(q) else np.nan for q in quantiles)
     return {name: value, f"{name}_ci_low": low, f"{name}_ci_high": high}
 
 
@@ -453,7 +455,8 @@ def _difference(samples, rule: str, other: str, fraction: float) -> tuple[float,
     # a resample where both had no change to slow is a tie; one where only one had keeps its
     # infinite difference, so a bound is infinite where more than 2.5% are
     difference = np.where(np.isnan(difference), 0.0, difference)
-    low, high = np.quantile(difference, [0.025, 0.975])
+    with np.errstate(invalid="ignore"):
+        low, high = np.quantile(difference, [0.025, 0.975])
     return float(low), float(high)
 
 
