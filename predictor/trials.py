@@ -551,7 +551,7 @@ def enrichment_figure(table: pd.DataFrame, region: str, design: Design, costs: C
         left.scatter(open_ended["fraction"], open_ended["total_n_per_arm"], marker="^", s=60,
                      color=colour, zorder=3)  # fmt: skip
         right.plot(rows["fraction"], rows[column], **style)
-    left.set_ylabel("participants per arm (observed rates; ^: CI without an upper bound)")
+    left.set_ylabel("participants per arm (observed rates)")
     right.set_ylabel("total cost (both arms)" if costs is not None else
                      "participants screened (both arms)")  # fmt: skip
     for axis in (left, right):
@@ -564,7 +564,8 @@ def enrichment_figure(table: pd.DataFrame, region: str, design: Design, costs: C
     left.legend(fontsize=7)
     figure.suptitle(
         f"{region.replace('_', ' ')}: {100 * design.effect:g}% slowing of the total rate, "
-        f"power {design.power:g}, alpha {design.alpha:g}, {design.years:g} years",
+        f"power {design.power:g}, alpha {design.alpha:g}, {design.years:g} years; bars: 95% "
+        "bootstrap CI (^: no upper bound)",
         fontsize=10,
     )
     figure.text(0.5, 0.01, CAPTION, ha="center", va="bottom", fontsize=7, color="#8a1c1c")
