@@ -248,6 +248,15 @@ def train(
     ] = False,
     seed: Annotated[int | None, typer.Option(help="Seed [default: the config's].")] = None,
     force: Annotated[bool, typer.Option(help="Start over in a MODEL folder holding one.")] = False,
+    members: Annotated[
+        int,
+        typer.Option(min=1, help="Ensemble members K (seeds S..S+K-1, each on a bootstrap of "
+                     "the training participants); K > 1 gives forecasts a spread."),
+    ] = 1,
+    member: Annotated[
+        int | None,
+        typer.Option(min=1, help="Train only member k of --members K (a cluster array task)."),
+    ] = None,
 ) -> None:
     """Train the conditional velocity-field network on a CPU.
 
@@ -257,10 +266,13 @@ def train(
     network predicts an annualised velocity field (working-grid voxels per
     year) whose exponential over the interval (years) warps the baseline.
     A checkpoint is written every epoch; the best epoch's weights are kept.
-    Under torchrun (gloo backend) the work is shared by the processes.
+    Under torchrun (gloo backend) the work is shared by the processes. With
+    --members K, MODEL holds K members (member-1 ... member-K) that share the
+    validation and test participants; calibrate their intervals with
+    predictor calibrate.
     """
+    from predictor.ensemble import train_members
     from predictor.training import TrainConfig
-    from predictor.training import train as run_training
 
     settings = TrainConfig.from_toml(config)
     total = epochs or settings.training.epochs
@@ -285,8 +297,10 @@ def train(
             )
 
     with progress:
-        last = run_training(work, model, settings, epochs, resume, seed, force, on_step, on_epoch)
-    typer.echo(f"model in {model} (weights.pt, model.json, log.tsv, loss_curves.png)")
+        last = train_members(work, model, settings, members, seed, None, resume, force, member,
+                             epochs, on_step=on_step, on_epoch=on_epoch)  # fmt: skip
+    held = "member-k/" if members > 1 else ""
+    typer.echo(f"model in {model} ({held}weights.pt, model.json, log.tsv, loss_curves.png)")
     if last:
         typer.echo(f"last epoch {last['epoch']}: training loss {last['train_total']:.4g}")
     typer.echo(CAUTION)
@@ -340,9 +354,10 @@ def forecast(
 
     if cohort is not None:
         from predictor.cohort import read_cohort
-        from predictor.modelstore import read_model_json
+        from predictor.modelstore import member_folders, read_model_json
 
-        coding = read_model_json(model).coding  # the codes the model was trained with
+        # the codes the model (its first member) was trained with
+        coding = read_model_json(member_folders(model)[0]).coding
         table = read_cohort(cohort, settings=coding, allow_outside=allow_outside)
         count = table["participant_id"].nunique() if session is None else None
         progress, advance = progress_bar("forecasting", count)
@@ -451,6 +466,11 @@ def evaluate(
         typer.Option(help="Choose a loss weight per fold on inner validation participants "
                      "only (grid in configs/evaluate.toml; one training per value)."),
     ] = False,
+    members: Annotated[
+        int,
+        typer.Option(min=1, help="Ensemble members per fold's network (K trainings per fold); "
+                     "2 or more gives conformal intervals and conformal.tsv."),
+    ] = 1,
 ) -> None:
     """Cross-validate the network against the population field and the regressions.
 
@@ -472,7 +492,7 @@ def evaluate(
         evaluation = run_evaluation(
             work, out, folds, TrainConfig.from_toml(config), fold, jobs, seed,
             measure=scan_volumes, progress=advance,
-            tune=TuneSettings.from_toml() if tune else None,
+            tune=TuneSettings.from_toml() if tune else None, members=members,
         )  # fmt: skip
     if evaluation is None:
         typer.echo(f"fold {fold} done in {out}; run without --fold to collect")
@@ -480,6 +500,36 @@ def evaluate(
     page = write_evaluation(evaluation, out)
     typer.echo(evaluation_text(evaluation))
     typer.echo(f"report: {page}")
+    typer.echo(CAUTION)
+
+
+@app.command()
+@reports_errors
+def calibrate(
+    model: Annotated[Path, typer.Argument(help="An ensemble model folder (train --members K).")],
+    source: Annotated[
+        Path,
+        typer.Option("--from", help="A `predictor evaluate --members K` folder (conformal.tsv)."),
+    ],
+    level: Annotated[float, typer.Option(help="Interval level, within (0, 1).")] = 0.9,
+    seed: Annotated[int, typer.Option(help="Seed of the one-pair-per-participant draw.")] = 0,
+) -> None:
+    """Calibrate an ensemble's regional intervals on held-out forecasts.
+
+    Normalised split-conformal (Lei et al. 2018): each held-out pair's score is
+    |observed - forecast| / sqrt(member SD^2 + prior residual variance) (mL / mL),
+    one pair per participant; the interval is the forecast +- the scores'
+    conformal quantile times that scale. Writes MODEL/calibration.json; forecasts
+    then carry network_lower_ml and network_upper_ml.
+    """
+    from predictor.ensemble import calibrate as run_calibration
+
+    payload = run_calibration(source, model, level, seed)
+    for region, q in payload["quantiles"].items():
+        typer.echo(f"{region}: q = {q:.3g} ({payload['participants'][region]} participants)")
+    if "note" in payload:
+        typer.echo(f"note: {payload['note']}")
+    typer.echo(f"calibration at {level:g} in {model / 'calibration.json'}")
     typer.echo(CAUTION)
 
 

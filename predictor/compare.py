@@ -35,7 +35,7 @@ from scipy import ndimage, stats
 
 from predictor.config import load_settings
 from predictor.errors import DataError, PredictorError
-from predictor.forecast import as_model, check_grid, forecast, prepare_for
+from predictor.forecast import as_ensemble, as_model, check_grid, forecast, prepare_for
 from predictor.longitudinal import Visit, noise_floor, observed_by_registration, pair_change
 from predictor.nifti import load_scan
 from predictor.pairs import SETS, visit_pairs
@@ -153,10 +153,12 @@ def network_pairs(
     from the baseline visit to the forecast scan by
     :func:`~predictor.longitudinal.pair_change`;
     with ``population_dir``, the population-field model's Jacobian volumes of
-    the participant's own regions (``population_<region>``); the longest-horizon
-    pair also carries its working-grid images (``example``).
+    the participant's own regions (``population_<region>``); with an ensemble, the
+    scale of the conformal score of each Jacobian volume (``scale_<region>``, mL); the
+    longest-horizon pair also carries its working-grid images (``example``).
     """
-    model = as_model(model_dir)
+    ensemble = as_ensemble(model_dir)
+    model = ensemble.lead
     first = pairs.iloc[0]
     layout = Layout(Path(work))
     image = layout.read_cohort().set_index("key").loc[first.base_key, "image"]
@@ -168,9 +170,10 @@ def network_pairs(
         prepared = prepare_for(model, scan)
     horizons = pairs["years"].tolist()
     result = forecast(
-        model, scan, first.age, first.sex, first.diagnosis, horizons, prepared=prepared
+        ensemble, scan, first.age, first.sex, first.diagnosis, horizons, prepared=prepared
     )
-    jacobian = result.volumes.set_index(["region", "years"])["network_ml"]
+    table = result.volumes.set_index(["region", "years"])
+    jacobian, scale = table["network_ml"], table["network_scale_ml"]
     population = None
     if population_dir is not None:
         field = forecast(as_model(population_dir), scan, first.age, first.sex, first.diagnosis,
@@ -182,6 +185,7 @@ def network_pairs(
         row = {"base_key": pair.base_key, "follow_key": pair.follow_key}
         for region in model.info.region_set.names:
             row[f"jacobian_{region}"] = float(jacobian.loc[(region, horizon.years)])
+            row[f"scale_{region}"] = float(scale.loc[(region, horizon.years)])
             if population is not None:
                 row[f"population_{region}"] = float(population.loc[(region, horizon.years)])
         if not measure:
@@ -320,8 +324,9 @@ def _population(folder, model) -> str:
     population = as_model(folder)
     if population.info.config["training"]["image_input"] != "template":
         raise DataError(f"{folder}: not a population-field model (image_input is not template)")
-    if population.info.split != model.info.split:
-        raise DataError(f"{folder}: trained on another participant split than the model")
+    # an ensemble's members train on bootstraps; the test participants are what must agree
+    if sorted(population.info.split["test"]) != sorted(model.info.split["test"]):
+        raise DataError(f"{folder}: has other test participants than the model")
     return str(Path(folder).resolve())
 
 
@@ -350,7 +355,7 @@ def compare(
     network's use of the participant's own scan adds anything to age, sex and diagnosis.
     """
     settings = settings or CompareSettings.from_toml()
-    model = as_model(model_dir)
+    model = as_ensemble(model_dir).lead  # every member shares the test participants
     split = model.info.split
     check_split(split)
     workspace = read_workspace(work)

@@ -17,6 +17,12 @@ evaluation with the statistics of :mod:`predictor.compare` (participant-level
 differences, cluster bootstrap, Holm), the subject-specific skill of every
 method (calibration slope and R^2 of individual annualised change) and the
 coverage of every interval a method gives.
+
+With ``--members K`` each fold's network is an ensemble of K members
+(:mod:`predictor.ensemble`); the held-out conformal scores of its Jacobian volumes
+go to ``conformal.tsv`` (what ``predictor calibrate`` reads), and each fold's
+participants get intervals calibrated on the other folds' participants, whose
+coverage is reported beside the regressions'.
 """
 
 from __future__ import annotations
@@ -49,6 +55,7 @@ from predictor.compare import (
     summarise,
 )
 from predictor.config import load_settings
+from predictor.ensemble import cross_fitted, score_table, train_members
 from predictor.errors import DataError
 from predictor.files import write_json, write_tsv
 from predictor.longitudinal import noise_floor, observed_by_registration
@@ -70,7 +77,7 @@ MODELS = {"network": "scan", "population": "template"}
 #: columns of a fold's forecasts.tsv
 FORECAST_COLUMNS = (
     "participant_id", "base_key", "follow_key", "years", "region", "method",
-    "forecast_ml", "lower_ml", "upper_ml",
+    "forecast_ml", "lower_ml", "upper_ml", "scale_ml",
 )  # fmt: skip
 
 
@@ -107,6 +114,7 @@ class Evaluation:
     headlines: pd.DataFrame  # region x network variant: verdicts and subject-specific skill
     skill: pd.DataFrame  # region x method: calibration slope and R^2 of individual change
     coverage: pd.DataFrame  # method x region x group: share of pairs inside the interval
+    conformal: pd.DataFrame  # the network's held-out conformal scores (empty: one member)
     by_horizon: pd.DataFrame
     by_diagnosis: pd.DataFrame
     # phantom cohorts: mean |error| and paired tests against the *true* change (else empty)
@@ -206,10 +214,12 @@ def fold_folder(out: Path, fold: int) -> Path:
 def run_fold(
     work, out: Path, fold: int, config: TrainConfig, seed: int, jobs: int,
     measure: bool = True, progress=None, tune: TuneSettings | None = None,
-    observed_change: str = "segmentation",
+    observed_change: str = "segmentation", members: int = 1,
 ):  # fmt: skip
     """Train fold ``fold``'s two models (resuming) and forecast its participants' pairs.
 
+    ``members``: the network is an ensemble of this many members (the population field
+    stays one model).
     ``measure``: also measure the network's forecast scans like real ones (slowest step),
     by ``observed_change`` (the observed change's measurement, :func:`network_pairs`).
     ``tune``: choose a loss weight per model on the fold's inner validation participants
@@ -217,7 +227,7 @@ def run_fold(
     fold that has it is done.
     """
     folder = fold_folder(out, fold)
-    check_stamp(folder, fold_stamp(config, seed, measure, tune, observed_change))
+    check_stamp(folder, fold_stamp(config, seed, measure, tune, observed_change, members))
     if (folder / FORECASTS).is_file():
         return folder / FORECASTS
     workspace = read_workspace(work)
@@ -229,7 +239,8 @@ def run_fold(
     chosen = {}
     for name, image_input in MODELS.items():
         settings = replace(config, training=replace(config.training, image_input=image_input))
-        chosen[name] = train_model(work, folder, name, settings, seed, split, tune)
+        count = members if name == "network" else 1
+        chosen[name] = train_model(work, folder, name, settings, seed, split, tune, count)
     if tune is not None:
         write_json(folder / TUNING, chosen)
     pairs = baseline_pairs(volumes, split["test"], workspace.regions)
@@ -250,7 +261,10 @@ def run_fold(
             if f"{prefix}{names[0]}" not in measured:
                 continue
             values = measured[[f"{prefix}{r}" for r in names]].to_numpy()
-            rows.append(_long(measured, method, names, values, None))
+            scale = None
+            if method == JACOBIAN:  # the scale of its conformal score (NaN: one member)
+                scale = measured[[f"scale_{r}" for r in names]].to_numpy()
+            rows.append(_long(measured, method, names, values, None, scale))
         regressions, not_fitted = regression_forecasts(
             volumes, split["train"] + split["validation"], pairs, workspace.regions,
             workspace.cohort, seed, jobs,
@@ -262,10 +276,14 @@ def run_fold(
     return write_tsv(folder / FORECASTS, table[list(FORECAST_COLUMNS)])
 
 
-def fold_stamp(config: TrainConfig, seed: int, measure: bool, tune, observed_change) -> dict:
+def fold_stamp(
+    config: TrainConfig, seed: int, measure: bool, tune, observed_change, members: int = 1
+) -> dict:
     """What a fold's results depend on besides the workspace (``fold-<k>/fold.json``)."""
     stamp = {"config": config.to_dict(), "seed": seed, "measure": measure,
              "tune": None if tune is None else asdict(tune)}  # fmt: skip
+    if members > 1:  # a single-member fold keeps the stamp it always had
+        stamp["members"] = members
     if measure:  # how the forecast scans are measured; nothing else depends on it
         stamp["observed_change"] = observed_change
     return json.loads(json.dumps(stamp))
@@ -278,7 +296,8 @@ def check_stamp(folder: Path, stamp: dict) -> None:
         if json.loads(path.read_text()) != stamp:
             raise DataError(
                 f"{folder}: was run with other settings (training config, seed, --tune, "
-                "--no-scan-volumes or the observed change of configs/compare.toml); rerun "
+                "--members, --no-scan-volumes or the observed change of configs/compare.toml); "
+                "rerun "
                 "with those settings or use another OUT"
             )
         return
@@ -286,11 +305,14 @@ def check_stamp(folder: Path, stamp: dict) -> None:
     write_json(path, stamp)
 
 
-def train_model(work, folder: Path, name: str, config: TrainConfig, seed, split, tune) -> dict:
-    """Train one of a fold's models (resuming); with ``tune``, one per value of the tuned
-    weight, keeping the lowest inner-validation figure. Returns what was chosen."""
+def train_model(
+    work, folder: Path, name: str, config: TrainConfig, seed, split, tune, members: int = 1
+) -> dict:
+    """Train one of a fold's models (resuming; ``members`` > 1: an ensemble); with ``tune``,
+    one per value of the tuned weight, keeping the lowest inner-validation figure. Returns
+    what was chosen."""
     if tune is None:
-        train(work, folder / name, config, resume=True, seed=seed, split=split)
+        train_members(work, folder / name, config, members, seed, split, resume=True)
         return {"folder": name}
     scores = {}
     for value in tune.tune_values:
@@ -318,8 +340,9 @@ def model_folder(folder: Path, name: str) -> Path:
     return folder / name
 
 
-def _long(pairs: pd.DataFrame, method: str, names, values, bounds) -> pd.DataFrame:
-    """One method's (P, R) forecasts (and (P, R, 2) bounds or None) as forecasts.tsv rows."""
+def _long(pairs: pd.DataFrame, method: str, names, values, bounds, scale=None) -> pd.DataFrame:
+    """One method's (P, R) forecasts (and (P, R, 2) bounds, (P, R) conformal scales, or
+    None) as forecasts.tsv rows."""
     frames = []
     for j, region in enumerate(names):
         frames.append(
@@ -334,6 +357,7 @@ def _long(pairs: pd.DataFrame, method: str, names, values, bounds) -> pd.DataFra
                     "forecast_ml": values[:, j],
                     "lower_ml": np.nan if bounds is None else bounds[:, j, 0],
                     "upper_ml": np.nan if bounds is None else bounds[:, j, 1],
+                    "scale_ml": np.nan if scale is None else scale[:, j],
                 }
             )
         )
@@ -361,7 +385,7 @@ def check_folds(out: Path, saved: dict) -> pd.DataFrame:
                 "every fold must use the same training config, seed, --tune, "
                 "--no-scan-volumes and (with scan volumes) observed change"
             )
-        for model in sorted(path.parent for path in folder.glob("*/model.json")):
+        for model in sorted(path.parent for path in folder.glob("**/model.json")):
             split = read_model_json(model).split
             seen = (set(split["train"]) | set(split["validation"])) & members
             if seen:
@@ -402,6 +426,13 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
                 [wide[c].reindex(index=keys, columns=names).to_numpy()
                  for c in ("lower_ml", "upper_ml")], -1,
             )  # fmt: skip
+    conformal = conformal_scores(forecasts, pairs, names, seed)
+    if not conformal.empty:
+        wide = conformal.pivot(index=["base_key", "follow_key"], columns="region")
+        bounds[JACOBIAN] = np.stack(
+            [wide[c].reindex(index=keys, columns=names).to_numpy()
+             for c in ("lower_ml", "upper_ml")], -1,
+        )  # fmt: skip
     missing = int(np.isnan(methods[JACOBIAN]).any(axis=1).sum())
     if missing:
         raise DataError(f"{out}: {missing} pair(s) have no network forecast in any fold")
@@ -422,6 +453,7 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
             checks = workspace.regions.checks
             truth_tests = paired_tests(against, known, checks, settings, seed)
     skill = skill_table(errors, workspace.regions.checks, settings, seed)
+    run = run_summary(out, workspace)
     not_fitted, tuning = {}, {}
     for fold in range(1, saved["folds"] + 1):
         if (fold_folder(out, fold) / TUNING).is_file():
@@ -437,6 +469,7 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
         headlines=with_skill(headlines(tests), skill),
         skill=skill,
         coverage=coverage_table(pairs, bounds, names),
+        conformal=conformal,
         by_horizon=grouped(errors.assign(horizon=horizon_bins(errors["years"])), "horizon"),
         by_diagnosis=grouped(errors, "diagnosis"),
         truth_summary=truth_summary,
@@ -455,7 +488,13 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
             "level": settings.level,
             "not_fitted": not_fitted,
             "tuning": tuning,
-            "run": run_summary(out, workspace),
+            "members": run["members"],
+            "network_interval": (
+                "conformal, each fold calibrated on the other folds' participants"
+                if not conformal.empty
+                else "none: single-member networks have no spread (evaluate --members 2 or more)"
+            ),
+            "run": run,
         },
         regions=tuple(names),
     )
@@ -474,7 +513,28 @@ def run_summary(out: Path, workspace) -> dict:
         "max_pairs_per_epoch": training["max_pairs_per_epoch"],
         "channels": network["channels"],
         "scan_volumes": stamp["measure"],
+        "members": stamp.get("members", 1),
     }
+
+
+def conformal_scores(forecasts: pd.DataFrame, pairs: pd.DataFrame, names, seed: int):
+    """The network's held-out conformal scores (its Jacobian volumes against the observed
+    follow-ups) with each fold's cross-fitted interval (:func:`predictor.ensemble.cross_fitted`);
+    empty where the folds' networks had one member (no scale)."""
+    if "scale_ml" not in forecasts:
+        return pd.DataFrame()
+    rows = forecasts[(forecasts["method"] == JACOBIAN) & forecasts["scale_ml"].notna()]
+    if rows.empty:
+        return pd.DataFrame()
+    observed = pairs.melt(
+        id_vars=["base_key", "follow_key", "diagnosis"], value_vars=[f"{r}_follow" for r in names],
+        var_name="region", value_name="observed_ml",
+    )  # fmt: skip
+    observed["region"] = observed["region"].str.removesuffix("_follow")
+    table = rows.merge(observed, on=["base_key", "follow_key", "region"], validate="one_to_one")
+    columns = ["participant_id", "fold", "diagnosis", "base_key", "follow_key", "years",
+               "region", "forecast_ml", "observed_ml", "scale_ml"]  # fmt: skip
+    return cross_fitted(score_table(table[columns]), LEVEL, seed).reset_index(drop=True)
 
 
 # --- subject-specific skill and coverage ---------------------------------------------------
@@ -604,6 +664,7 @@ def evaluate(
     measure: bool = True,
     progress=None,
     tune: TuneSettings | None = None,
+    members: int = 1,
 ) -> Evaluation | None:
     """Cross-validate on a prepared workspace into ``out``.
 
@@ -613,6 +674,8 @@ def evaluate(
     Without ``measure`` the network's forecast scans are not measured (only its own
     Jacobian-integral volumes are scored), which saves most of the forecasting time.
     ``tune`` (``configs/evaluate.toml``) chooses a loss weight per fold on inner validation.
+    ``members``: each fold's network is an ensemble of this many members (see the module
+    docstring).
     """
     out = Path(out)
     config = config or TrainConfig.from_toml()
@@ -622,13 +685,17 @@ def evaluate(
             '--tune needs monitor = "val_volume_error" under [training]: the validation '
             "loss is weighted by the very weight being tuned"
         )
+    if tune is not None and members > 1:
+        raise DataError("--tune with --members is not supported: tune with one member first")
+    if members < 1:
+        raise DataError(f"--members must be 1 or more, got {members}")
     saved = start_folds(read_workspace(work).volumes, out, folds, seed)
     if fold is not None and not 1 <= fold <= saved["folds"]:
         raise DataError(f"--fold must be within 1..{saved['folds']}, got {fold}")
     chosen = [fold] if fold is not None else range(1, saved["folds"] + 1)
     for k in chosen:
         run_fold(work, out, k, config, seed, jobs, measure, progress, tune,
-                 settings.observed_change)  # fmt: skip
+                 settings.observed_change, members)  # fmt: skip
     if fold is not None:
         return None
     return collect(work, out, settings, seed)

@@ -34,7 +34,7 @@ from predictor.report import (
 
 TABLES = (
     "summary", "headlines", "tests", "skill", "coverage", "errors", "by_horizon", "by_diagnosis",
-    "truth_summary", "truth_tests", "noise_floor",
+    "truth_summary", "truth_tests", "noise_floor", "conformal",
 )  # fmt: skip
 NO_CHANGE = "no-change"
 DETAILS = {
@@ -299,6 +299,12 @@ def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
         )
     if not_fitted:
         parts.append(f"<h2>Forecasters not fitted on some folds</h2><ul>{not_fitted}</ul>")
+    parts.append(
+        f"<p>Intervals of the network's volumes ({data['members']} member(s) per fold): "
+        f"{html.escape(data['network_interval'])}. Their coverage is under "
+        "<i>coverage</i> below; conformal.tsv holds every held-out score, the input of "
+        "<code>predictor calibrate</code>.</p>"
+    )
     for name, title in DETAILS.items():
         if tables[name].empty:
             continue

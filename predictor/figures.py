@@ -19,6 +19,8 @@ from predictor.files import write_bytes
 #: our own colour choices: greys for scans, a brown-teal diverging map for differences,
 #: a purple-green diverging map for the log-Jacobian
 SCAN_MAP, DIFFERENCE_MAP, JACOBIAN_MAP = "gray", "BrBG", "PRGn"
+#: a sequential map for the members' spread (0 = the members agree)
+SPREAD_MAP = "YlOrBr"
 NETWORK_COLOUR, PRIOR_COLOUR = "#1b7f79", "#b8651b"
 DPI = 80
 
@@ -60,8 +62,10 @@ def forecast_overview(
     brain: np.ndarray,
     voxel_mm: np.ndarray,
     title: str,
+    log_jacobian_sd: np.ndarray | None = None,
 ):
-    """Baseline, forecast, difference and log-Jacobian in three planes (a matplotlib Figure).
+    """Baseline, forecast, difference and log-Jacobian in three planes (a matplotlib Figure),
+    and the members' log-Jacobian SD when given (an ensemble's voxel-wise uncertainty).
 
     Arrays are (X, Y, Z) in RAS order; ``brain`` is a boolean mask that
     chooses the slices (its centre) and the intensity window.
@@ -93,10 +97,17 @@ def forecast_overview(
             "log volume ratio (< 0: shrinkage)",
         ),
     ]
+    if log_jacobian_sd is not None:
+        sd = [np.where(m, p, np.nan) for p, m in zip(planes(log_jacobian_sd, centre), inside,
+                                                      strict=True)]  # fmt: skip
+        columns.append(("member spread", sd, SPREAD_MAP, (0, limit(sd, 1e-4)),
+                        "SD of the log-Jacobian across members"))  # fmt: skip
     # displayed rows over columns: axial y/x, coronal z/x, sagittal z/y
     aspects = [voxel_mm[1] / voxel_mm[0], voxel_mm[2] / voxel_mm[0], voxel_mm[2] / voxel_mm[1]]
-    figure = plt.figure(figsize=(13, 10.5))
-    layout = figure.add_gridspec(4, 4, height_ratios=[1, 1, 1, 0.06], hspace=0.08, wspace=0.05)
+    figure = plt.figure(figsize=(3.25 * len(columns), 10.5))
+    layout = figure.add_gridspec(
+        4, len(columns), height_ratios=[1, 1, 1, 0.06], hspace=0.08, wspace=0.05
+    )
     for column, (name, shown_planes, colour_map, limits, unit) in enumerate(columns):
         for row, (plane, aspect) in enumerate(zip(shown_planes, aspects, strict=True)):
             axis = figure.add_subplot(layout[row, column])
@@ -125,7 +136,8 @@ def forecast_overview(
 def trajectories(
     table: pd.DataFrame, prior_band: pd.DataFrame | None, baseline_age: float, title: str
 ):
-    """Each region's forecast volume (mL) against age: network points, prior mean and 90% band.
+    """Each region's forecast volume (mL) against age: network points (with their conformal
+    interval as bars where the model is calibrated), prior mean and 90% band.
 
     ``table`` is a forecast volume table (region, years, network_ml, ...);
     ``prior_band`` has region, years, mean_ml, lower_ml, upper_ml on a fine
@@ -148,6 +160,14 @@ def trajectories(
             axis.plot(ages, band["mean_ml"], color=PRIOR_COLOUR, label="mixed-effects prior")
         axis.plot(baseline_age + own["years"], own["network_ml"], "o-", color=NETWORK_COLOUR,
                   label="network")  # fmt: skip
+        bounded = own[own["years"] > 0].dropna(subset=["network_lower_ml"])
+        if len(bounded):
+            axis.errorbar(
+                baseline_age + bounded["years"], bounded["network_ml"],
+                yerr=[bounded["network_ml"] - bounded["network_lower_ml"],
+                      bounded["network_upper_ml"] - bounded["network_ml"]],
+                fmt="none", ecolor=NETWORK_COLOUR, capsize=3, label="network interval",
+            )  # fmt: skip
         axis.set_title(region.replace("_", " "), fontsize=10)
         axis.set_xlabel("age (years)", fontsize=8)
         axis.set_ylabel("volume (mL)", fontsize=8)

@@ -5,15 +5,19 @@ For a baseline scan, its age (years), sex and diagnosis, and horizons ``t``
 
 1. prepares the scan with the model's template and settings (or takes a
    :class:`~predictor.prepare.PreparedScan`);
-2. runs the network once on the working grid (velocity ``v``);
+2. runs each member of the model once on the working grid (velocity ``v_m``;
+   a plain model folder is one member) and takes their mean ``v``;
 3. for each horizon integrates ``exp(t v)`` and ``exp(-t v)`` on the grid
    and carries them to the scan's native grid through the native-to-template
    affine: the forecast is the *full-resolution* baseline pulled back through
-   the inverse map, so it keeps the scan's shape, affine, resolution and
-   anatomy;
-4. integrates the Jacobian determinant over the baseline's native region
-   maps: the network's forecast volumes (mL); beside them, the mixed-effects
-   prior's forecast with its 90% interval.
+   the inverse map (resampled once per horizon, whatever the member count), so
+   it keeps the scan's shape, affine, resolution and anatomy;
+4. integrates each member's Jacobian determinant over the baseline's native
+   region maps: the network's forecast volume of a region (mL) is the member
+   mean, its spread the member SD, and with a calibration
+   (:mod:`predictor.ensemble`) it carries a conformal interval; the member SD of
+   the log-Jacobian is a voxel-wise uncertainty map. Beside them, the
+   mixed-effects prior's forecast with its 90% interval.
 
 Native-space geometry: with ``M`` the native-voxel -> grid-voxel affine, a
 grid displacement ``d`` (grid voxels) at ``M x`` is the native displacement
@@ -24,6 +28,7 @@ determinant is unchanged by this change of coordinates.
 
 from __future__ import annotations
 
+import json
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -37,9 +42,18 @@ from scipy import ndimage
 
 from predictor.atypical import anatomy_note
 from predictor.config import load_settings
+from predictor.ensemble import interval_scale, residual_var, uncalibrated_note
 from predictor.errors import DataError, ModelError
 from predictor.fields import identity_grid, jacobian_determinant, region_volume_ratio, sample_at
-from predictor.modelstore import TrainedModel, load_model, read_model_json
+from predictor.modelstore import (
+    Ensemble,
+    TrainedModel,
+    load_ensemble,
+    load_model,
+    member_folders,
+    read_calibration,
+    read_model_json,
+)
 from predictor.network import encode_condition
 from predictor.nifti import Scan, load_scan
 from predictor.pairs import grid_entry, network_input, region_weights, template_entry
@@ -77,6 +91,7 @@ class HorizonForecast:
     years: float
     image: np.ndarray  # (X, Y, Z) float32, the input's own intensities, warped
     log_jacobian: np.ndarray  # (X, Y, Z) log volume ratio of the forward map (< 0: shrinkage)
+    log_jacobian_sd: np.ndarray | None  # (X, Y, Z) member SD of the log-Jacobian; None: 1 member
     displacement_mm: np.ndarray  # (X, Y, Z, 3) RAS mm: forecast(p) = baseline(p + u(p))
     grid_ratio: dict[str, float]  # prior regions' volume ratios from the working grid
 
@@ -109,6 +124,31 @@ def as_model(model: TrainedModel | str | os.PathLike[str]) -> TrainedModel:
             _MODELS.pop(next(iter(_MODELS)))
         _MODELS[key] = load_model(folder)
     return _MODELS[key]
+
+
+#: ensembles loaded in this process, keyed by folder, member checksums and calibration
+_ENSEMBLES: dict[tuple, Ensemble] = {}
+
+
+def as_ensemble(model: Ensemble | TrainedModel | str | os.PathLike[str]) -> Ensemble:
+    """A loaded ensemble: ``model`` itself, a loaded model as one member, or the model
+    folder at ``model`` (cached per process by its members' checksums)."""
+    if isinstance(model, Ensemble):
+        return model
+    if isinstance(model, TrainedModel):
+        return Ensemble(model.folder, (model,), None)
+    folder = Path(model).resolve()
+    calibration = read_calibration(folder)
+    key = (
+        str(folder),
+        tuple(read_model_json(path).weights_sha256 for path in member_folders(folder)),
+        json.dumps(calibration, sort_keys=True),
+    )
+    if key not in _ENSEMBLES:
+        while len(_ENSEMBLES) >= 2:
+            _ENSEMBLES.pop(next(iter(_ENSEMBLES)))
+        _ENSEMBLES[key] = load_ensemble(folder)
+    return _ENSEMBLES[key]
 
 
 def check_request(
@@ -261,21 +301,25 @@ class NativeWarp:
         self.resample = baseline_resampler(scan.data, interpolation)
         self.index = identity_grid(scan.data.shape)[0]
 
-    def __call__(self, backward: torch.Tensor, determinant: torch.Tensor):
-        """(forecast image, displacement (X, Y, Z, 3) RAS mm, Jacobian determinant) natively.
+    def __call__(self, backward: torch.Tensor, determinant: torch.Tensor, extra=None):
+        """(forecast image, displacement (X, Y, Z, 3) RAS mm, Jacobian determinant, extra)
+        natively.
 
         ``backward`` (1, 3, D, H, W) pull-back displacement and ``determinant``
-        (1, D, H, W) of the forward map, both on the working grid.
+        (1, D, H, W) of the forward map, both on the working grid; ``extra`` (1, C, D,
+        H, W) more grid fields sampled in the same pass ((C, X, Y, Z) out; None: none).
         """
-        both = self.sampler(torch.cat([backward, determinant[:, None]], 1))
-        back_native, native_det = both[:3], both[3].numpy()
+        fields = [backward, determinant[:, None]] + ([] if extra is None else [extra])
+        sampled = self.sampler(torch.cat(fields, 1))
+        back_native, native_det = sampled[:3], sampled[3].numpy()
         source = self.index + torch.einsum("ij,jxyz->ixyz", self.to_native, back_native)
         displacement = torch.einsum("ij,jxyz->xyzi", self.to_mm, back_native).numpy()
-        return self.resample(source), displacement, native_det
+        more = None if extra is None else sampled[4:].numpy()
+        return self.resample(source), displacement, native_det, more
 
 
 def forecast(
-    model: TrainedModel | str | os.PathLike[str],
+    model: Ensemble | TrainedModel | str | os.PathLike[str],
     image: Scan | str | os.PathLike[str],
     age: float,
     sex: str,
@@ -286,69 +330,99 @@ def forecast(
 ) -> ForecastResult:
     """Forecast ``image`` at each horizon in ``years`` (see the module docstring).
 
-    ``age`` is the baseline age in years; ``sex`` and ``diagnosis`` use the
-    model's cohort codes; ``interpolation`` ('cubic' or 'linear') defaults to
-    ``configs/forecast.toml``. Returns arrays in the scan's RAS order and the
-    volume table.
+    ``model``: a model folder (one member or an ensemble) or a loaded one. ``age`` is
+    the baseline age in years; ``sex`` and ``diagnosis`` use the model's cohort codes;
+    ``interpolation`` ('cubic' or 'linear') defaults to ``configs/forecast.toml``.
+    Returns arrays in the scan's RAS order and the volume table.
     """
     interpolation = interpolation or ForecastSettings.from_toml().interpolation
     if interpolation not in INTERPOLATIONS:
         raise DataError(
             f"interpolation must be one of {list(INTERPOLATIONS)}; '{interpolation}' was given"
         )
-    model = as_model(model)
-    info, regions = model.info, model.info.region_set
+    ensemble = as_ensemble(model)
+    lead = ensemble.lead
+    info, regions = lead.info, lead.info.region_set
     scan = image if isinstance(image, Scan) else load_scan(image)
-    sex_code, label, horizons, notes = check_request(model, float(age), sex, diagnosis, years)
-    prepared = prepared if prepared is not None else prepare_for(model, scan)
-    check_grid(model, prepared)
+    sex_code, label, horizons, notes = check_request(lead, float(age), sex, diagnosis, years)
+    prepared = prepared if prepared is not None else prepare_for(lead, scan)
+    check_grid(lead, prepared)
     unusual = anatomy_note(info.training_range.get("anatomy"), prepared.volumes)
     notes += [unusual] if unusual else []
-    condition = encode_condition(
-        [age], [sex_code], [label], info.coding, info.condition["age_mean"],
-        info.condition["age_sd"],
-    )  # fmt: skip
-    inputs, grid_weights = network_inputs(model, prepared)
+    inputs, grid_weights = network_inputs(lead, prepared)
     native = NativeWarp(scan, prepared, info.grid_affine, interpolation)
-    outputs, network_ml = [], {}
+    several = len(ensemble.members) > 1
+    outputs, member_ml = [], {}
     with torch.no_grad():
-        velocity = model.network(inputs, condition)
+        velocities = torch.cat([member_velocity(m, inputs, age, sex_code, label)
+                                for m in ensemble.members])  # fmt: skip
+        velocity = velocities.mean(0, keepdim=True)
         for t in horizons:
-            forward = model.network.displacement(velocity, t, info.grid_shape)
-            backward = model.network.displacement(velocity, -t, info.grid_shape)
+            forward = lead.network.displacement(velocity, t, info.grid_shape)
+            backward = lead.network.displacement(velocity, -t, info.grid_shape)
             determinant = jacobian_determinant(forward)
             ratio = region_volume_ratio(grid_weights, determinant)[0].tolist()
-            warped, displacement, native_det = native(backward, determinant)
+            extra = None
+            if several:  # each member's determinant, and the SD of their log-Jacobians
+                each = torch.cat([
+                    jacobian_determinant(lead.network.displacement(v[None], t, info.grid_shape))
+                    for v in velocities
+                ])  # fmt: skip
+                spread = torch.log(each.clamp_min(1e-3)).std(0, keepdim=True)
+                extra = torch.cat([each, spread])[None]
+            warped, displacement, native_det, sampled = native(backward, determinant, extra)
             log_jacobian = np.log(np.maximum(native_det, 1e-3))
             ratios = dict(zip(regions.prior, ratio, strict=True))
-            outputs.append(HorizonForecast(t, warped, log_jacobian, displacement, ratios))
-            network_ml[t] = region_volumes(
-                prepared.native_tissue, prepared.native_deep, scan.voxel_volume_ml, regions,
-                native_det,
-            )  # fmt: skip
-    table, prior_notes = volume_table(model, prepared.volumes, network_ml, age, sex_code, label)
+            outputs.append(
+                HorizonForecast(t, warped, log_jacobian, None if extra is None else sampled[-1],
+                                displacement, ratios)  # fmt: skip
+            )
+            member_ml[t] = [
+                region_volumes(prepared.native_tissue, prepared.native_deep,
+                               scan.voxel_volume_ml, regions, det)  # fmt: skip
+                for det in (sampled[:-1] if several else [native_det])
+            ]
+    table, prior_notes = volume_table(ensemble, prepared.volumes, member_ml, age, sex_code, label)
+    missing = uncalibrated_note(len(ensemble.members), ensemble.calibration)
+    notes += prior_notes + ([missing] if missing else [])
     condition_used = {"age": float(age), "sex": sex_code, "diagnosis": label}
-    return ForecastResult(scan, prepared, outputs, table, notes + prior_notes, condition_used)
+    return ForecastResult(scan, prepared, outputs, table, notes, condition_used)
+
+
+def member_velocity(model: TrainedModel, inputs, age: float, sex: str, label: str):
+    """One member's velocity (1, 3, D, H, W) for a scan's network input and covariates
+    (each member standardises age with its own training statistics)."""
+    condition = encode_condition(
+        [age], [sex], [label], model.info.coding, model.info.condition["age_mean"],
+        model.info.condition["age_sd"],
+    )  # fmt: skip
+    return model.network(inputs, condition)
 
 
 def volume_table(
-    model: TrainedModel,
+    ensemble: Ensemble,
     baseline_ml: dict[str, float],
-    network_ml: dict[float, dict[str, float]],
+    member_ml: dict[float, list[dict[str, float]]],
     age: float,
     sex: str,
     diagnosis: str,
 ) -> tuple[pd.DataFrame, list[str]]:
     """Baseline, network and prior volumes per region and horizon, and prior warnings.
 
-    Columns: region, years, baseline_ml, network_ml, network_change_ml,
-    network_percent_per_year, prior_mean_ml, prior_sd_ml, prior_lower_ml,
-    prior_upper_ml (SD and 90% interval for an observed follow-up), prior_true_sd_ml (SD
-    of the participant's true volume, without the residual noise of one observation),
-    prior_percent_per_year, outside_prior_95 (the network's forecast, an estimate of the
-    true volume, outside the prior's 95% prediction interval for the true volume).
+    ``member_ml``: horizon -> each member's forecast volumes. Columns: region, years,
+    baseline_ml, network_ml (member mean), network_sd_ml (member SD; NaN for one
+    member), network_scale_ml (the conformal score's scale,
+    :func:`~predictor.ensemble.interval_scale`), network_lower_ml and network_upper_ml
+    (the calibrated conformal interval; NaN without calibration),
+    network_change_ml, network_percent_per_year, prior_mean_ml, prior_sd_ml,
+    prior_lower_ml, prior_upper_ml (SD and 90% interval for an observed follow-up),
+    prior_true_sd_ml (SD of the participant's true volume, without the residual noise
+    of one observation), prior_percent_per_year, outside_prior_95 (the network's
+    forecast, an estimate of the true volume, outside the prior's 95% prediction
+    interval for the true volume).
     """
-    horizons = sorted(network_ml)
+    model, calibration = ensemble.lead, ensemble.calibration
+    horizons = sorted(member_ml)
     request = pd.DataFrame(
         [{"participant_id": "scan", "age": age, "sex": sex, "diagnosis": diagnosis} | baseline_ml]
     )
@@ -365,12 +439,23 @@ def volume_table(
     rows = []
     for region in model.info.region_set.names:
         for t in horizons:
-            base, net = baseline_ml[region], network_ml[t][region]
+            base = baseline_ml[region]
+            each = np.array([volumes[region] for volumes in member_ml[t]])
+            net = float(each.mean())
+            spread = float(each.std(ddof=1)) if len(each) > 1 else np.nan
+            scale = float(interval_scale(spread, residual_var(model, region)))
+            half = np.nan
+            if calibration is not None and t > 0:
+                half = calibration["quantiles"].get(region, np.nan) * scale
             row = {
                 "region": region,
                 "years": t,
                 "baseline_ml": base,
                 "network_ml": net,
+                "network_sd_ml": spread,
+                "network_scale_ml": scale,
+                "network_lower_ml": net - half,
+                "network_upper_ml": net + half,
                 "network_change_ml": net - base,
                 "network_percent_per_year": 100 * (net / base - 1) / t if t > 0 else np.nan,
             }

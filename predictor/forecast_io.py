@@ -8,9 +8,11 @@ name without ``.nii[.gz]`` and ``_T1w``) and horizon label ``H``
     DIR/[sub-001/ses-01/anat/]
         S_desc-H_T1w.nii.gz            forecast scan: the input's shape, affine, orientation
         S_desc-H_logjacobian.nii.gz    log volume ratio of the forward map (< 0: shrinkage)
+        S_desc-H_logjacobiansd.nii.gz  (ensembles) member SD of the log-Jacobian
         S_desc-H_displacement.nii.gz   vector image, RAS mm: forecast(p) = baseline(p + u(p))
-        S_desc-H_overview.png          baseline, forecast, difference, log-Jacobian
-        S_desc-forecast_volumes.tsv    regions x horizons: baseline, network, prior, change
+        S_desc-H_overview.png          baseline, forecast, difference, log-Jacobian (, SD)
+        S_desc-forecast_volumes.tsv    regions x horizons: baseline, network (member mean,
+                                       SD, calibrated interval), prior, change
         S_desc-forecast_trajectories.png
         S_desc-forecast_provenance.json    written last: marks the forecast complete
     DIR/forecasts.tsv, DIR/failures.tsv    (cohort runs) every participant's volumes; failures
@@ -40,8 +42,8 @@ from predictor.files import (
     write_json,
     write_tsv,
 )
-from predictor.forecast import ForecastResult, as_model, forecast
-from predictor.modelstore import TrainedModel, package_versions
+from predictor.forecast import ForecastResult, as_ensemble, forecast
+from predictor.modelstore import Ensemble, TrainedModel, package_versions
 from predictor.nifti import save_like
 from predictor.parallel import run_all
 
@@ -73,29 +75,32 @@ def scan_stem(name: str) -> str:
     return stem.removesuffix("_T1w")
 
 
-def prior_band(model: TrainedModel, result: ForecastResult, points: int = 25) -> pd.DataFrame:
+def prior_band(model: Ensemble, result: ForecastResult, points: int = 25) -> pd.DataFrame:
     """The prior's mean and 90% interval on a fine grid of horizons (for the trajectories)."""
     longest = max(h.years for h in result.horizons)
     request = pd.DataFrame(
         [{"participant_id": "scan"} | result.condition | result.prepared.volumes]
     )
     try:
-        return model.prior.predict(request, np.linspace(0.0, max(longest, 0.5), points))
+        return model.lead.prior.predict(request, np.linspace(0.0, max(longest, 0.5), points))
     except DataError:
         return None
 
 
 def write_forecast(
     result: ForecastResult,
-    model: TrainedModel,
+    model: Ensemble | TrainedModel,
     folder: str | os.PathLike[str],
     stem: str,
     input_checksum: str,
     identifiers: dict | None = None,
 ) -> dict:
-    """Write every output of one scan's forecast (see the module docstring); returns provenance."""
+    """Write every output of one scan's forecast (see the module docstring); returns provenance.
+
+    ``model``: the ensemble (or the one model) that made it."""
     from predictor.figures import figure_png, forecast_overview, save_figure, trajectories
 
+    model = as_ensemble(model)
     folder = Path(folder)
     scan = result.scan
     brain = sum(result.prepared.native_tissue.values()) > 0.5
@@ -107,11 +112,11 @@ def write_forecast(
         written, overviews = [], {}
         for horizon in result.horizons:
             base = f"{stem}_desc-{horizon_label(horizon.years)}"
-            for suffix, array in (
-                ("T1w", horizon.image),
-                ("logjacobian", horizon.log_jacobian),
-                ("displacement", horizon.displacement_mm),
-            ):
+            images = [("T1w", horizon.image), ("logjacobian", horizon.log_jacobian),
+                      ("displacement", horizon.displacement_mm)]  # fmt: skip
+            if horizon.log_jacobian_sd is not None:
+                images.append(("logjacobiansd", horizon.log_jacobian_sd))
+            for suffix, array in images:
                 name = f"{base}_{suffix}.nii.gz"
                 written.append(pool.submit(save_like, array, scan, folder / name))
                 outputs.append(name)
@@ -123,6 +128,7 @@ def write_forecast(
                 scan.voxel_size_mm,
                 f"{stem}: forecast at +{horizon.years:g} years (age {result.condition['age']:g}, "
                 f"{result.condition['diagnosis']})",
+                horizon.log_jacobian_sd,
             )
             overviews[f"{base}_overview.png"] = figure_png(figure)
         for future in written:
@@ -144,24 +150,29 @@ def write_forecast(
     return provenance
 
 
-def _provenance(result, model, input_checksum, identifiers, outputs) -> dict:
+def _provenance(result, model: Ensemble, input_checksum, identifiers, outputs) -> dict:
+    lead, calibration = model.lead, model.calibration
     return {
         "kind": "predictor forecast",
         "cautions": CAUTION,
         "model": {
             "folder": model.folder.name,
             "weights_sha256": model.checksum,
-            "template": Path(model.info.template).name,
-            "epochs_run": model.info.epochs_run,
-            "best_epoch": model.info.best_epoch,
+            "template": Path(lead.info.template).name,
+            "members": len(model.members),
+            "epochs_run": [m.info.epochs_run for m in model.members],
+            "best_epoch": [m.info.best_epoch for m in model.members],
+            "calibration": None if calibration is None else {
+                key: calibration[key] for key in ("level", "method", "participants")
+            },
         },
         "input": {"file": result.scan.name, "sha256": input_checksum},
         "participant": (identifiers or {}) | result.condition,
         "horizons_years": [h.years for h in result.horizons],
         "warnings": result.warnings,
         "settings": {
-            "prepare": model.info.prepare_settings,
-            "grid": model.info.grid,
+            "prepare": lead.info.prepare_settings,
+            "grid": lead.info.grid,
         },
         "registration": {
             key: value
@@ -171,7 +182,8 @@ def _provenance(result, model, input_checksum, identifiers, outputs) -> dict:
         "conventions": {
             "displacement": "RAS millimetres; forecast(p) = baseline(p + u(p))",
             "log_jacobian": "log of the forward map's Jacobian determinant; < 0 means shrinkage",
-            "volumes": "mL; prior interval 90%; percent per year = linear annualised change",
+            "volumes": "mL; network = member mean, its interval conformal at the calibration's "
+            "level; prior interval 90%; percent per year = linear annualised change",
         },
         "outputs": outputs,
         "versions": package_versions(),
@@ -212,7 +224,7 @@ def write_description(out: Path) -> None:
 
 
 def forecast_one(
-    model: TrainedModel | str | os.PathLike[str],
+    model: Ensemble | str | os.PathLike[str],
     image: str | os.PathLike[str],
     age: float,
     sex: str,
@@ -222,7 +234,7 @@ def forecast_one(
     identifiers: dict | None = None,
 ) -> tuple[dict, bool]:
     """Forecast one scan file into ``out``; returns (provenance, skipped because complete)."""
-    model = as_model(model)
+    model = as_ensemble(model)
     horizons = check_horizons(years)
     out, image = Path(out), Path(image)
     identifiers = identifiers or {}
@@ -292,7 +304,7 @@ def forecast_cohort(
     else:
         models = dict.fromkeys(cohort["participant_id"], str(model_dir))
     for folder in sorted(set(models.values())):
-        as_model(folder)  # fail early on a bad model folder
+        as_ensemble(folder)  # fail early on a bad model folder
     horizons = check_horizons(years)
     out = Path(out)
     if session is None:

@@ -13,6 +13,15 @@ Layout::
     log.tsv           one row per epoch: loss terms and validation metrics
     loss_curves.png   the log as a picture (redrawn every 5 epochs and at the end)
 
+An ensemble (``predictor train --members K``, or a fold of ``evaluate --members
+K``) is a folder of model folders::
+
+    ensemble.json     {"schema": 1, "members": ["member-1", ...]}
+    member-<k>/       one model folder each (the layout above)
+    calibration.json  the conformal calibration of its intervals (predictor calibrate)
+
+A plain model folder is a one-member ensemble (:func:`load_ensemble`).
+
 Every file is written atomically; ``.pt`` files are read with
 ``torch.load(weights_only=True)``, so a file carrying a pickled payload is
 refused, never executed.
@@ -20,6 +29,7 @@ refused, never executed.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import pickle
@@ -41,6 +51,10 @@ MODEL_JSON = "model.json"
 WEIGHTS = "weights.pt"
 CHECKPOINT = "checkpoint.pt"
 PRIOR = "prior.json"
+ENSEMBLE_JSON = "ensemble.json"
+CALIBRATION = "calibration.json"
+#: what every member of an ensemble must share (one preparation serves them all)
+SHARED = ("grid", "template", "prepare_settings", "regions", "cohort")
 #: version of the model.json schema (ModelInfo); bumped when a field changes meaning
 SCHEMA = 2
 PACKAGES = ("predictor", "torch", "numpy", "scipy", "SimpleITK", "nibabel", "statsmodels")
@@ -107,6 +121,7 @@ class ModelInfo:
     best_epoch: int = 0
     stopped_early: bool = False
     complete: bool = False
+    bootstrap: dict = field(default_factory=dict)  # ensemble member: participant -> draws
 
     @classmethod
     def from_json(cls, raw, source: str) -> ModelInfo:
@@ -234,3 +249,90 @@ def write_model_json(folder: str | os.PathLike[str], info: ModelInfo) -> Path:
         info, weights_sha256=sha256_file(folder / WEIGHTS), versions=package_versions()
     )
     return write_json(folder / MODEL_JSON, stamped.to_json())
+
+
+# --- ensembles ----------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class Ensemble:
+    """A loaded model folder as members (one for a plain model folder) and its calibration.
+
+    ``calibration``: the content of ``calibration.json`` (see
+    :func:`predictor.ensemble.calibrate`), or None where the folder has none.
+    """
+
+    folder: Path
+    members: tuple[TrainedModel, ...]
+    calibration: dict | None
+
+    @property
+    def lead(self) -> TrainedModel:
+        """The first member: its description, prior and coding stand for the ensemble's."""
+        return self.members[0]
+
+    @property
+    def checksum(self) -> str:
+        """The weights' SHA-256 of one uncalibrated member; otherwise the SHA-256 of every
+        member's checksum and the calibration (what a forecast's outputs depend on)."""
+        if len(self.members) == 1 and self.calibration is None:
+            return self.lead.checksum
+        state = [[m.checksum for m in self.members], self.calibration]
+        return hashlib.sha256(json.dumps(state, sort_keys=True).encode()).hexdigest()
+
+
+def member_folder(folder: str | os.PathLike[str], member: int) -> Path:
+    """Folder of member ``member`` (1-based) of an ensemble."""
+    return Path(folder) / f"member-{member}"
+
+
+def member_folders(folder: str | os.PathLike[str]) -> list[Path]:
+    """The member model folders of ``folder`` (itself, for a plain model folder)."""
+    folder = Path(folder)
+    path = folder / ENSEMBLE_JSON
+    if not path.is_file():
+        return [folder]
+    try:
+        raw = json.loads(path.read_text())
+        names = [str(name) for name in raw["members"]]
+    except (ValueError, KeyError, TypeError, UnicodeDecodeError) as error:
+        raise ModelError(f"{path}: not an ensemble description ({error})") from error
+    if raw.get("schema") != 1 or not names or any("/" in n or n in ("", ".", "..") for n in names):
+        raise ModelError(f"{path}: schema must be 1 and members a list of folder names")
+    return [folder / name for name in names]
+
+
+def write_ensemble_json(folder: str | os.PathLike[str], members: int) -> Path:
+    """Describe ``folder`` as an ensemble of ``members`` member folders."""
+    names = [member_folder(folder, k).name for k in range(1, members + 1)]
+    return write_json(Path(folder) / ENSEMBLE_JSON, {"schema": 1, "members": names})
+
+
+def read_calibration(folder: str | os.PathLike[str]) -> dict | None:
+    """``calibration.json`` of a model folder, or None; a damaged file is a ModelError."""
+    path = Path(folder) / CALIBRATION
+    if not path.is_file():
+        return None
+    try:
+        raw = json.loads(path.read_text())
+        raw["quantiles"] = {str(r): float(q) for r, q in raw["quantiles"].items()}
+        raw["level"] = float(raw["level"])
+    except (ValueError, KeyError, TypeError, AttributeError) as error:
+        raise ModelError(f"{path}: not a calibration ({error})") from error
+    return raw
+
+
+def load_ensemble(folder: str | os.PathLike[str]) -> Ensemble:
+    """Every member of a model folder, checked to share what one preparation needs."""
+    members = tuple(load_model(path) for path in member_folders(folder))
+    lead = members[0].info
+    for member in members[1:]:
+        differ = [key for key in SHARED if getattr(member.info, key) != getattr(lead, key)]
+        for part, key in (("network", None), ("training", "image_input")):
+            mine, theirs = member.info.config[part], lead.config[part]
+            if (mine if key is None else mine[key]) != (theirs if key is None else theirs[key]):
+                differ.append(part if key is None else key)
+        if differ:
+            raise ModelError(
+                f"{member.folder}: differs from {members[0].folder} in {', '.join(differ)}; "
+                "every member of an ensemble must share them"
+            )
+    return Ensemble(Path(folder), members, read_calibration(folder))

@@ -69,6 +69,19 @@ def split_participants(
     return {"train": train, "validation": validation, "test": test}
 
 
+def bootstrap_counts(participants, diagnosis, seed: int, member: int) -> dict[str, int]:
+    """How many times each participant is drawn by ensemble member ``member``'s bootstrap:
+    within each diagnosis, as many draws with replacement as the diagnosis has
+    participants (a stratified bootstrap: no diagnosis can vanish). 0: not drawn."""
+    rng = seeded_rng(seed, 43, member)
+    counts = dict.fromkeys(sorted(participants), 0)
+    for label in sorted({diagnosis[p] for p in counts}):
+        group = [p for p in counts if diagnosis[p] == label]
+        for participant in rng.choice(np.asarray(group, dtype=object), size=len(group)):
+            counts[str(participant)] += 1
+    return counts
+
+
 def stratified_draw(candidates, diagnosis, size, rng) -> list[str]:
     """``size`` candidates, diagnosis groups taking turns in a seeded order."""
     groups = {}

@@ -63,6 +63,7 @@ from predictor.pairs import (
     Batch,
     ScanStore,
     attach_prior,
+    bootstrap_counts,
     fit_prior,
     make_batch,
     split_participants,
@@ -227,12 +228,16 @@ class Run:
 
 
 def prepare_run(
-    work, config: TrainConfig, seed: int, split: dict[str, list[str]] | None = None
+    work, config: TrainConfig, seed: int, split: dict[str, list[str]] | None = None,
+    member: int | None = None,
 ) -> tuple[Run, object]:
     """Split, pairs, prior and conditioning statistics of a workspace; returns the prior too.
 
     ``split`` (train / validation / test participant lists) replaces the config's seeded
-    80/10/10 split, as cross-validation folds do.
+    80/10/10 split, as cross-validation folds do. ``member`` (an ensemble member's number)
+    trains on that member's stratified bootstrap of the training participants
+    (:func:`~predictor.pairs.bootstrap_counts`): a participant drawn k times gives each of
+    its pairs k times per epoch; the prior is still fitted on every training participant.
     """
     workspace = read_workspace(work)
     volumes, regions, coding = workspace.volumes, workspace.regions, workspace.cohort
@@ -248,6 +253,15 @@ def prepare_run(
     }
     if pairs["train"].empty:
         raise DataError("the training participants have no follow-up visits: nothing to learn")
+    counts = {}
+    if member is not None:
+        diagnosis = volumes.groupby("participant_id")["diagnosis"].first()
+        counts = bootstrap_counts(split["train"], diagnosis, seed, member)
+        repeat = pairs["train"]["participant_id"].map(counts).to_numpy()
+        pairs["train"] = pairs["train"].loc[pairs["train"].index.repeat(repeat)]
+        pairs["train"] = pairs["train"].reset_index(drop=True)
+        if pairs["train"].empty:
+            raise DataError(f"member {member}'s bootstrap drew no participant with a follow-up")
     ages = pairs["train"]["age"].to_numpy()
     age_mean, age_sd = float(ages.mean()), float(max(ages.std(), 1.0))
     conditions = {
@@ -261,6 +275,8 @@ def prepare_run(
     digest.update(json.dumps(config.to_dict(), sort_keys=True).encode())
     digest.update(str(seed).encode())
     digest.update(json.dumps(split, sort_keys=True).encode())
+    if counts:
+        digest.update(json.dumps(counts, sort_keys=True).encode())
     train_rows = volumes[volumes["participant_id"].isin(split["train"])]
     info = ModelInfo(
         schema=SCHEMA,
@@ -284,6 +300,7 @@ def prepare_run(
         prior=PRIOR,
         prior_warnings=prior_warnings,
         fingerprint=digest.hexdigest()[:20],
+        bootstrap=counts,
     )
     return Run(config, seed, workspace, split, pairs, conditions, info), prior
 
@@ -400,11 +417,13 @@ def train(
     on_step: Callable[[int, int, int, dict], None] | None = None,
     on_epoch: Callable[[dict], None] | None = None,
     split: dict[str, list[str]] | None = None,
+    member: int | None = None,
 ) -> dict:
     """Train a model on a prepared workspace into ``model_dir``; returns the last log row.
 
     ``epochs`` and ``seed`` override the config's; ``split`` the config's participant
-    split (see :func:`prepare_run`). ``on_step(epoch, step, steps, terms)`` and
+    split and ``member`` an ensemble member's bootstrap (see :func:`prepare_run`).
+    ``on_step(epoch, step, steps, terms)`` and
     ``on_epoch(row)`` report progress (rank 0 only).
     """
     config = config or TrainConfig.from_toml()
@@ -420,7 +439,7 @@ def train(
     threads = settings.threads or (max(1, (os.cpu_count() or 1) // world) if world > 1 else 0)
     if threads:
         torch.set_num_threads(threads)
-    run, prior = prepare_run(work, config, seed, split)
+    run, prior = prepare_run(work, config, seed, split, member)
     network = _initial_network(run.info, seed)
     optimiser = torch.optim.Adam(network.parameters(), lr=settings.learning_rate)
     stopping, history = EarlyStopping(settings.patience), []

@@ -50,7 +50,7 @@ from predictor.compare import FLOOR, JACOBIAN, NETWORK, NETWORKS, POPULATION
 from predictor.config import CohortSettings
 from predictor.errors import DataError
 from predictor.files import write_json, write_tsv
-from predictor.modelstore import read_model_json
+from predictor.modelstore import member_folders, read_model_json
 from predictor.regions import TOTAL_BRAIN, RegionSet
 from predictor.rng import seeded_rng
 
@@ -208,8 +208,11 @@ def declared_direction(folder: Path, region: str) -> float:
     """+1 where ``region`` grows with disease, -1 where it shrinks: its declared change in
     the regions the evaluation's models were trained with (fold 1's network), or in the
     shipped regions for a compare report. A region declared not to change is refused."""
-    models = sorted(folder.glob("fold-*/network/model.json"))
-    regions = read_model_json(models[0].parent).region_set if models else RegionSet.from_toml()
+    networks = sorted(path for path in folder.glob("fold-*/network") if path.is_dir())
+    if networks:  # a plain model folder, or an ensemble's first member
+        regions = read_model_json(member_folders(networks[0])[0]).region_set
+    else:
+        regions = RegionSet.from_toml()
     if region not in regions.names:
         raise DataError(f"region '{region}' is not one of {', '.join(regions.names)}")
     direction = regions.get(region).direction

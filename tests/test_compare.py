@@ -146,7 +146,7 @@ def test_population_model_must_share_the_split(tiny_model, population_model, tmp
     from predictor.compare import _population
     from predictor.forecast import as_model
 
-    with pytest.raises(DataError, match="another participant split"):
+    with pytest.raises(DataError, match="other test participants"):
         _population(moved, as_model(tiny_model))
     with pytest.raises(DataError, match="not a population-field model"):
         _population(tiny_model, as_model(tiny_model))

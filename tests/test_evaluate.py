@@ -19,6 +19,7 @@ from scipy import stats
 
 from predictor.compare import JACOBIAN, POPULATION, CompareSettings, paired_tests
 from predictor.config import CONFIG_DIR
+from predictor.ensemble import quantile
 from predictor.errors import DataError
 from predictor.evaluate import (
     TuneSettings,
@@ -33,6 +34,7 @@ from predictor.evaluate import (
     validation_score,
 )
 from predictor.evaluation_report import write_evaluation
+from predictor.regression import LEVEL
 from predictor.training import TrainConfig
 
 SETTINGS = CompareSettings("hippocampus_left", 0.95, 500, "registration")
@@ -149,10 +151,12 @@ def one_epoch_config(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def evaluated(tiny_workspace, one_epoch_config, tmp_path_factory):
-    """2-fold cross-validation of the 20 tiny participants, report written."""
+    """2-fold cross-validation of the 20 tiny participants, each fold's network an ensemble
+    of 2 members, report written."""
     out = tmp_path_factory.mktemp("evaluation") / "cv"
     config = TrainConfig.from_toml(one_epoch_config)
-    evaluation = evaluate(tiny_workspace, out, 2, config, jobs=2, settings=SETTINGS, measure=False)
+    evaluation = evaluate(tiny_workspace, out, 2, config, jobs=2, settings=SETTINGS,
+                          measure=False, members=2)  # fmt: skip
     write_evaluation(evaluation, out)
     return out, evaluation
 
@@ -163,7 +167,7 @@ def test_every_participant_is_forecast_once_by_models_that_never_saw_it(evaluate
     seen = {}
     for fold in (1, 2):
         members = {p for p, k in folds.items() if k == fold}
-        for name in ("network", "population"):
+        for name in ("network/member-1", "network/member-2", "population"):
             split = json.loads((out / f"fold-{fold}" / name / "model.json").read_text())["split"]
             assert sorted(split["test"]) == sorted(members)
             assert not members & (set(split["train"]) | set(split["validation"]))
@@ -202,19 +206,21 @@ def test_comparators_and_checks_are_all_there(evaluated):
     assert np.isfinite(skill.loc[("ventricles", JACOBIAN), "r2_gain_over_population"])
 
 
-def test_a_leaked_or_unfinished_fold_is_a_clear_error(evaluated, tiny_workspace, tmp_path):
+def test_a_leaked_or_unfinished_fold_is_a_clear_error(
+    evaluated, tiny_workspace, one_epoch_config, tmp_path
+):
     out = evaluated[0]
     copy = shutil.copytree(out, tmp_path / "cv")
     folds = read_folds(copy)["assignment"]
     held_out = sorted(p for p, k in folds.items() if k == 1)[0]
-    model_json = copy / "fold-1" / "network" / "model.json"
+    model_json = copy / "fold-1" / "network" / "member-2" / "model.json"
     info = json.loads(model_json.read_text())
     info["split"]["train"].append(held_out)
     model_json.write_text(json.dumps(info))
     with pytest.raises(DataError, match=f"leaked fold: .* participant\\(s\\) {held_out}"):
         collect(tiny_workspace, copy, SETTINGS, seed=0)
     (copy / "fold-2" / "forecasts.tsv").unlink()
-    shutil.copy(out / "fold-1" / "network" / "model.json", model_json)
+    shutil.copy(out / "fold-1" / "network" / "member-2" / "model.json", model_json)
     with pytest.raises(DataError, match="fold 2 is not finished"):
         collect(tiny_workspace, copy, SETTINGS, seed=0)
     with pytest.raises(DataError, match="holds 2 folds with seed 0"):
@@ -222,6 +228,9 @@ def test_a_leaked_or_unfinished_fold_is_a_clear_error(evaluated, tiny_workspace,
     # a fold made with other settings is never mixed in: the default config differs
     with pytest.raises(DataError, match="fold-1: was run with other settings"):
         evaluate(tiny_workspace, copy, folds=2, settings=SETTINGS, measure=False)
+    with pytest.raises(DataError, match="fold-1: was run with other settings"):
+        evaluate(tiny_workspace, copy, 2, TrainConfig.from_toml(one_epoch_config),
+                 settings=SETTINGS, measure=False)  # one member now, two before: refused
     with pytest.raises(DataError, match="--tune needs monitor"):
         monitored = TrainConfig.from_toml()
         monitored = replace(monitored, training=replace(monitored.training, monitor="val_total"))
@@ -237,7 +246,7 @@ def test_kill_during_a_fold_then_rerun_gives_identical_tables(
     (copy / "fold-2" / "forecasts.tsv").unlink()
     shutil.rmtree(copy / "fold-2" / "population")
     command = [str(Path(sys.executable).parent / "predictor"), "evaluate",
-               str(tiny_workspace), str(copy), "--folds", "2", "--fold", "2",
+               str(tiny_workspace), str(copy), "--folds", "2", "--fold", "2", "--members", "2",
                "--config", str(one_epoch_config), "--no-scan-volumes"]  # fmt: skip
     process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     checkpoint = copy / "fold-2" / "population" / "checkpoint.pt"
@@ -248,8 +257,8 @@ def test_kill_during_a_fold_then_rerun_gives_identical_tables(
     assert process.wait() == -signal.SIGKILL  # killed while forecasting fold 2
     assert not (copy / "fold-2" / "forecasts.tsv").exists()
     config = TrainConfig.from_toml(one_epoch_config)
-    again = evaluate(tiny_workspace, copy, 2, config, settings=SETTINGS, measure=False)
-    for name in ("errors", "tests", "skill", "coverage"):
+    again = evaluate(tiny_workspace, copy, 2, config, settings=SETTINGS, measure=False, members=2)
+    for name in ("errors", "tests", "skill", "coverage", "conformal"):
         pd.testing.assert_frame_equal(
             getattr(again, name).reset_index(drop=True),
             getattr(evaluation, name).reset_index(drop=True),
@@ -278,6 +287,32 @@ def test_tuning_chooses_on_inner_validation_only(tiny_workspace, one_epoch_confi
     assert (fold / "forecasts.tsv").is_file()
     with pytest.raises(ValueError, match="tune_parameter must be one of"):
         TuneSettings("epochs", (1.0, 2.0))
+
+
+def test_network_intervals_are_calibrated_on_the_other_fold_only(evaluated):
+    # normalised split-conformal (Lei et al. 2018): fold k's quantile comes from the other
+    # fold's held-out scores, one pair per participant; the scores are those of the
+    # network's own forecasts against the observed follow-ups of errors.tsv
+    out, evaluation = evaluated
+    conformal = evaluation.conformal
+    assert set(conformal["fold"]) == {1, 2} and (out / "conformal.tsv").is_file()
+    errors = evaluation.errors[evaluation.errors["method"] == JACOBIAN]
+    both = conformal.merge(errors, on=["participant_id", "years", "region"], validate="1:1")
+    np.testing.assert_allclose(both["observed_ml_x"], both["observed_ml_y"])
+    np.testing.assert_allclose(both["forecast_ml_x"], both["forecast_ml_y"])
+    np.testing.assert_allclose(
+        conformal["score"], (conformal["observed_ml"] - conformal["forecast_ml"]).abs()
+        / conformal["scale_ml"],
+    )  # fmt: skip
+    for (fold, region), rows in conformal.groupby(["fold", "region"]):
+        others = conformal[(conformal["fold"] != fold) & (conformal["region"] == region)]
+        expected, participants = quantile(others, LEVEL, seed=0, key=fold)
+        assert participants == others["participant_id"].nunique()
+        np.testing.assert_array_equal(rows["quantile"], expected)
+    shown = evaluation.coverage[evaluation.coverage["method"] == JACOBIAN]
+    assert {"all", "horizon", "diagnosis"} <= set(shown["grouping"])
+    assert evaluation.data["members"] == 2
+    assert "2 member(s) per fold): conformal" in (out / "evaluation.html").read_text()
 
 
 def test_phantom_errors_against_the_true_change(evaluated):

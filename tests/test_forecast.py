@@ -16,7 +16,7 @@ from typer.testing import CliRunner
 
 from predictor.cli import app, expand_lists
 from predictor.errors import DataError
-from predictor.forecast import as_model, forecast
+from predictor.forecast import as_ensemble, as_model, forecast
 from predictor.forecast_io import (
     PROVENANCE,
     VOLUMES,
@@ -311,9 +311,9 @@ def test_prior_flag_holds_a_mean_against_the_prior_interval_for_a_mean():
         (mean + Z95 * (wide + narrow) / 2, True),
         (mean + Z95 * narrow / 2, False),
     ):
-        network = {3.0: baseline | {region: value}}
-        table, notes = volume_table(model, baseline, network, first["age"], first["sex"],
-                                    first["diagnosis"])  # fmt: skip
+        network = {3.0: [baseline | {region: value}]}  # one member's volumes
+        table, notes = volume_table(as_ensemble(model), baseline, network, first["age"],
+                                    first["sex"], first["diagnosis"])  # fmt: skip
         row = table[(table["region"] == region)].iloc[0]
         assert bool(row["outside_prior_95"]) is flagged
         assert any("interval for the true volume" in note for note in notes) is flagged

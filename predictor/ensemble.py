@@ -1,0 +1,216 @@
+"""Ensembles of the network, and calibrated intervals for their regional volumes.
+
+``predictor train --members K`` trains K members into one MODEL folder (the layout
+is :mod:`predictor.modelstore`'s): member k takes seed S + k - 1 and a bootstrap of
+the training participants (drawn with replacement within each diagnosis,
+:func:`predictor.pairs.bootstrap_counts`); every member shares the split, the
+validation participants that stop it early and the regional prior. A forecast runs every member; a
+region's forecast volume is the member mean and its spread the member SD.
+
+Intervals are normalised split-conformal (Lei, G'Sell, Rinaldo, Tibshirani and
+Wasserman 2018, JASA 113:1094, section 5.2, locally weighted conformal). A held-out
+pair's score is ``|observed - forecast| / s`` with the scale
+
+    s = sqrt(member SD^2 + sigma^2)   (mL)
+
+where sigma^2 is the residual variance of the model's mixed-effects prior for the
+region (the noise of one observed volume, which the members' spread cannot know).
+The interval is ``forecast +- q s`` with q the ceil((n + 1) level)-th smallest of n
+scores. Scores count once per participant: one pair per participant is drawn at
+random (seeded), the subsampling method of Dunn, Wasserman and Ramdas (2022, JASA
+118:1254), so the n scores are exchangeable with a new participant's. They come
+from ``predictor evaluate --members K`` (every score from a fold ensemble that never
+saw the participant); ``predictor calibrate`` stores the quantiles in the MODEL
+folder, and ``evaluate`` itself scores each fold with quantiles from the other folds.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from predictor.errors import DataError
+from predictor.files import write_json
+from predictor.modelstore import (
+    CALIBRATION,
+    ENSEMBLE_JSON,
+    MODEL_JSON,
+    TrainedModel,
+    member_folder,
+    member_folders,
+    write_ensemble_json,
+)
+from predictor.regression import LEVEL, conformal_quantile
+from predictor.rng import seeded_rng
+
+#: the evaluation's table of conformal scores (``Evaluation.conformal`` as a TSV)
+SCORES = "conformal.tsv"
+METHOD = (
+    "normalised split-conformal (Lei et al. 2018, JASA), scale sqrt(member SD^2 + prior "
+    "residual variance), one pair per participant (Dunn et al. 2022, JASA)"
+)
+
+
+# --- members --------------------------------------------------------------------------------
+def train_members(
+    work, folder, config, members: int, seed: int | None = None, split=None,
+    resume: bool = False, force: bool = False, only: int | None = None,
+    epochs: int | None = None, **progress,
+) -> dict:  # fmt: skip
+    """Train ``members`` members into ``folder`` (all, or member ``only``); returns the last
+    member's last log row. One member trains a plain model folder, as ``train`` does.
+
+    ``split`` defaults to the config's seeded split with ``seed``; every member shares
+    its validation and test participants. ``epochs`` overrides the config's;
+    ``progress``: ``on_step`` and ``on_epoch`` of :func:`predictor.training.train`.
+    """
+    from predictor.pairs import split_participants
+    from predictor.training import train
+    from predictor.workspace import read_workspace
+
+    seed = int(seed if seed is not None else config.training.seed)
+    folder = Path(folder)
+    if members == 1 and (folder / ENSEMBLE_JSON).is_file():
+        raise DataError(f"{folder}: holds an ensemble; pass its --members or use another MODEL")
+    if members > 1 and (folder / MODEL_JSON).is_file():
+        raise DataError(f"{folder}: holds a single model; use another MODEL folder for members")
+    if members == 1:
+        return train(work, folder, config, epochs, resume, seed, force, split=split, **progress)
+    if only is not None and not 1 <= only <= members:
+        raise DataError(f"--member must be within 1..{members}, got {only}")
+    if (folder / ENSEMBLE_JSON).is_file() and len(member_folders(folder)) != members:
+        raise DataError(
+            f"{folder}: holds an ensemble of {len(member_folders(folder))} members, not "
+            f"{members}; use another MODEL folder"
+        )
+    if split is None:
+        training = config.training
+        volumes = read_workspace(work).volumes
+        split = split_participants(
+            volumes, training.split, training.test_min_follow_up_years, seed
+        )
+    folder.mkdir(parents=True, exist_ok=True)
+    write_ensemble_json(folder, members)
+    last = {}
+    for k in [only] if only is not None else range(1, members + 1):
+        last = train(
+            work, member_folder(folder, k), config, epochs, resume, seed + k - 1, force,
+            split=split, member=k, **progress,
+        )  # fmt: skip
+    return last
+
+
+# --- conformal intervals --------------------------------------------------------------------
+def interval_scale(member_sd_ml, residual_var_ml2) -> np.ndarray:
+    """The score's scale s (mL): sqrt(member SD^2 + prior residual variance)."""
+    return np.sqrt(np.asarray(member_sd_ml, float) ** 2 + np.asarray(residual_var_ml2, float))
+
+
+def residual_var(model: TrainedModel, region: str) -> float:
+    """The prior's residual variance of ``region`` (mL^2), NaN where it has no fit."""
+    fits = getattr(model.prior, "fits_", {})
+    return float(fits[region].residual_var) if region in fits else float("nan")
+
+
+def one_per_participant(participants, seed: int, *key: int) -> np.ndarray:
+    """Row indices: one row of each participant, drawn at random (seeded by ``key``)."""
+    participants = np.asarray(participants, dtype=object)
+    rng = seeded_rng(seed, 47, *key)
+    chosen = [rng.choice(np.flatnonzero(participants == p)) for p in np.unique(participants)]
+    return np.sort(np.asarray(chosen, dtype=int))
+
+
+def quantile(scores: pd.DataFrame, level: float, seed: int, key: int = 0) -> tuple[float, int]:
+    """(q, participants): the conformal quantile of one region's scores, one pair each.
+
+    ``scores`` has ``participant_id`` and ``score`` columns (finite scores only count).
+    """
+    finite = scores[np.isfinite(scores["score"].to_numpy(float))]
+    if finite.empty:
+        return float("nan"), 0
+    rows = one_per_participant(finite["participant_id"].to_numpy(), seed, key)
+    return conformal_quantile(finite["score"].to_numpy(float)[rows], level), len(rows)
+
+
+def score_table(forecasts: pd.DataFrame) -> pd.DataFrame:
+    """Scores of held-out pairs: ``forecasts`` (participant_id, fold, region, years,
+    forecast_ml, observed_ml, scale_ml) gains ``score`` = |observed - forecast| / scale."""
+    error = (forecasts["observed_ml"] - forecasts["forecast_ml"]).abs()
+    return forecasts.assign(score=error / forecasts["scale_ml"])
+
+
+def cross_fitted(scores: pd.DataFrame, level: float, seed: int) -> pd.DataFrame:
+    """Each fold's intervals from the other folds' scores (so no participant calibrates its
+    own interval): ``scores`` gains ``quantile``, ``lower_ml`` and ``upper_ml``."""
+    out = scores.assign(quantile=np.nan)
+    for (fold, region), rows in scores.groupby(["fold", "region"]):
+        others = scores[(scores["fold"] != fold) & (scores["region"] == region)]
+        out.loc[rows.index, "quantile"] = quantile(others, level, seed, int(fold))[0]
+    half = out["quantile"] * out["scale_ml"]
+    return out.assign(lower_ml=out["forecast_ml"] - half, upper_ml=out["forecast_ml"] + half)
+
+
+def calibrate(
+    evaluation: str | os.PathLike[str], model: str | os.PathLike[str],
+    level: float = LEVEL, seed: int = 0,
+) -> dict:  # fmt: skip
+    """Write ``MODEL/calibration.json``: each region's conformal quantile at ``level`` from
+    the held-out scores of an ``evaluate --members K`` folder. Returns what it wrote."""
+    evaluation, model = Path(evaluation), Path(model)
+    if not 0 < level < 1:
+        raise DataError(f"--level must be within (0, 1), got {level}")
+    path = evaluation / SCORES
+    if not path.is_file():
+        raise DataError(
+            f"{evaluation}: has no {SCORES}; run `predictor evaluate --members 2` (or more) "
+            "to score held-out forecasts of an ensemble"
+        )
+    scores = pd.read_csv(path, sep="\t")
+    if scores.empty:
+        raise DataError(f"{path}: holds no scores (its folds had single-member networks)")
+    data = json.loads((evaluation / "evaluation.json").read_text())
+    members = len(member_folders(model))
+    if members < 2:
+        raise DataError(
+            f"{model}: a single-member model has no spread to scale an interval; train it "
+            "with --members 2 or more"
+        )
+    quantiles, counts = {}, {}
+    for region, rows in scores.groupby("region", sort=False):
+        quantiles[region], counts[region] = quantile(rows, level, seed)
+    payload = {
+        "level": level,
+        "quantiles": quantiles,
+        "participants": counts,
+        "method": METHOD,
+        "evaluation": str(evaluation.resolve()),
+        "evaluation_members": data.get("members"),
+        "members": members,
+        "seed": seed,
+    }
+    if data.get("members") != members:
+        payload["note"] = (
+            f"the scores come from fold ensembles of {data.get('members')} members and this "
+            f"model has {members}: the spread, and so the intervals, are scaled differently"
+        )
+    write_json(model / CALIBRATION, payload)
+    return payload
+
+
+def uncalibrated_note(members: int, calibration: dict | None) -> str | None:
+    """Why a forecast's volumes carry no interval (None when they do)."""
+    if members < 2:
+        return (
+            "no interval for the network's volumes: a single-member model has no spread "
+            "(train with --members 2 or more, then predictor calibrate)"
+        )
+    if calibration is None:
+        return (
+            "no interval for the network's volumes: the model is not calibrated (run "
+            "predictor calibrate with an evaluate --members folder)"
+        )
+    return None

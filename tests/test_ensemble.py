@@ -1,0 +1,201 @@
+"""Ensembles and their conformal intervals (predictor.ensemble, ensemble forecasts)."""
+
+from __future__ import annotations
+
+import json
+from dataclasses import replace
+
+import numpy as np
+import pandas as pd
+import pytest
+import torch
+from typer.testing import CliRunner
+
+from predictor.cli import app
+from predictor.config import CONFIG_DIR
+from predictor.ensemble import (
+    calibrate,
+    cross_fitted,
+    interval_scale,
+    one_per_participant,
+    quantile,
+    residual_var,
+    train_members,
+)
+from predictor.errors import DataError
+from predictor.forecast import as_ensemble, as_model, forecast
+from predictor.forecast_io import write_forecast
+from predictor.modelstore import Ensemble, TrainedModel, load_ensemble
+from predictor.pairs import bootstrap_counts
+from predictor.training import TrainConfig, prepare_run
+
+
+def _scores(groups: dict[str, list[float]], fold: int = 1, region: str = "r") -> pd.DataFrame:
+    rows = [{"participant_id": p, "fold": fold, "region": region, "score": s,
+             "forecast_ml": 10.0, "scale_ml": 1.0}
+            for p, scores in groups.items() for s in scores]  # fmt: skip
+    return pd.DataFrame(rows)
+
+
+def test_conformal_quantile_counts_each_participant_once_by_hand():
+    # Split-conformal quantile (Lei et al. 2018, JASA, section 2.2): the
+    # ceil((n + 1)(1 - alpha))-th smallest of n calibration scores. Participant A has five
+    # pairs, all scored 1; B-E one each (2..5). Counted once each, n = 5 scores {1..5}: at
+    # level 0.5 the ceil(6 * 0.5) = 3rd smallest is 3 (counting A's five pairs, n = 9 and
+    # the 5th smallest would be 1). At level 0.9, ceil(6 * 0.9) = 6 > 5: no finite interval.
+    scores = _scores({"A": [1, 1, 1, 1, 1], "B": [2], "C": [3], "D": [4], "E": [5]})
+    assert quantile(scores, 0.5, seed=0) == (3.0, 5)
+    assert quantile(scores, 0.9, seed=0) == (np.inf, 5)
+    chosen = one_per_participant(scores["participant_id"], seed=0)
+    assert sorted(scores["participant_id"].iloc[chosen]) == ["A", "B", "C", "D", "E"]
+    again = one_per_participant(scores["participant_id"], seed=0)
+    np.testing.assert_array_equal(chosen, again)  # seeded
+
+
+def test_each_fold_is_calibrated_on_the_other_folds_only():
+    first = _scores({f"a{i}": [float(i)] for i in range(1, 10)}, fold=1)  # scores 1..9
+    second = _scores({f"b{i}": [10.0 * i] for i in range(1, 10)}, fold=2)  # 10..90
+    table = cross_fitted(pd.concat([first, second], ignore_index=True), 0.8, seed=0)
+    # n = 9: the ceil(10 * 0.8) = 8th smallest of the other fold's scores
+    assert set(table.loc[table["fold"] == 1, "quantile"]) == {80.0}
+    assert set(table.loc[table["fold"] == 2, "quantile"]) == {8.0}
+    np.testing.assert_allclose(table["upper_ml"] - table["forecast_ml"], table["quantile"])
+
+
+def test_scale_adds_the_member_spread_to_the_observation_noise():
+    np.testing.assert_allclose(interval_scale([3.0, 0.0], [16.0, 4.0]), [5.0, 2.0])
+
+
+def test_member_bootstraps_are_seeded_and_stratified_by_diagnosis():
+    participants = [f"p{i:02d}" for i in range(30)]
+    diagnosis = {p: ("CN", "MCI", "AD")[i % 3] for i, p in enumerate(participants)}
+    one, two = (bootstrap_counts(participants, diagnosis, 5, k) for k in (1, 2))
+    assert one == bootstrap_counts(participants, diagnosis, 5, 1) and one != two
+    for counts in (one, two):
+        assert set(counts) == set(participants) and min(counts.values()) == 0  # P(none) ~ 1e-4
+        for label in ("CN", "MCI", "AD"):  # each diagnosis keeps its size
+            assert sum(n for p, n in counts.items() if diagnosis[p] == label) == 10
+
+
+def test_a_participant_drawn_twice_trains_on_its_pairs_twice(tiny_workspace):
+    config = TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml")
+    run, _ = prepare_run(tiny_workspace, config, seed=0)
+    member, _ = prepare_run(tiny_workspace, config, seed=0, member=1)
+    assert member.split == run.split  # the split, and so the prior, are shared
+    before = run.pairs["train"]["participant_id"].value_counts()
+    after = member.pairs["train"]["participant_id"].value_counts()
+    counts = member.info.bootstrap
+    assert sum(counts.values()) == len(run.split["train"]) and max(counts.values()) >= 2
+    for participant, pairs in before.items():
+        assert after.get(participant, 0) == counts[participant] * pairs, participant
+    assert member.info.fingerprint != run.info.fingerprint
+
+
+def _perturbed(model: TrainedModel, size: float, seed: int) -> TrainedModel:
+    """A copy of ``model`` whose every weight has Gaussian noise of SD ``size`` added."""
+    network = type(model.network)(model.network.settings, model.info.condition_size)
+    network.load_state_dict(model.network.state_dict())
+    generator = torch.Generator().manual_seed(seed)
+    with torch.no_grad():
+        for parameter in network.parameters():
+            parameter.add_(size * torch.randn(parameter.shape, generator=generator))
+    network.eval()
+    return replace(model, network=network)
+
+
+@pytest.fixture(scope="module")
+def ensemble_forecasts(tiny_model, tiny_workspace):
+    """One scan forecast by [model, model], [model, slightly perturbed], [model, more
+    perturbed], calibrated with q = 2 in every region, and by the model alone."""
+    row = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t").iloc[0]
+    model = as_model(tiny_model)
+    regions = model.info.region_set.names
+    calibration = {"level": 0.9, "quantiles": dict.fromkeys(regions, 2.0),
+                   "method": "test", "participants": dict.fromkeys(regions, 10)}  # fmt: skip
+    results = {}
+    for name, size in (("same", 0.0), ("small", 0.002), ("large", 0.02)):
+        other = _perturbed(model, size, seed=1)
+        ensemble = Ensemble(tiny_model, (model, other), calibration)
+        results[name] = forecast(ensemble, row.image, row.age, row.sex, row.diagnosis, [0, 1, 3])
+    results["single"] = forecast(model, row.image, row.age, row.sex, row.diagnosis, [0, 1, 3])
+    return results
+
+
+def test_ensemble_volume_is_the_member_mean_and_spread_grows_with_perturbation(
+    ensemble_forecasts,
+):
+    same, small, large = (ensemble_forecasts[k].volumes for k in ("same", "small", "large"))
+    single = ensemble_forecasts["single"].volumes
+    np.testing.assert_allclose(same["network_ml"], single["network_ml"], rtol=1e-6)
+    assert same["network_sd_ml"].max() < 1e-6  # identical members agree
+    later = small["years"] > 0
+    spread_small = small.loc[later, "network_sd_ml"].sum()
+    spread_large = large.loc[later, "network_sd_ml"].sum()
+    assert 0 < spread_small < spread_large
+    # the voxel-wise map: zero for identical members, larger for the larger perturbation
+    last = [ensemble_forecasts[k].horizons[-1].log_jacobian_sd for k in ("same", "large")]
+    assert np.abs(last[0]).max() < 1e-5 and last[1].max() > 1e-3
+    assert ensemble_forecasts["single"].horizons[-1].log_jacobian_sd is None
+
+
+def test_intervals_widen_with_the_horizon_and_only_calibrated_ensembles_have_them(
+    ensemble_forecasts, tiny_model
+):
+    table = ensemble_forecasts["large"].volumes
+    model = as_model(tiny_model)
+    for region, rows in table.groupby("region"):
+        rows = rows.set_index("years")
+        assert np.isnan(rows.loc[0.0, "network_lower_ml"])  # the baseline itself: no interval
+        width = (rows["network_upper_ml"] - rows["network_lower_ml"]).loc[[1.0, 3.0]]
+        assert width.loc[3.0] > width.loc[1.0] > 0, region
+        expected = 2 * 2.0 * interval_scale(rows.loc[3.0, "network_sd_ml"],
+                                            residual_var(model, region))  # fmt: skip
+        assert width.loc[3.0] == pytest.approx(expected, nan_ok=True)
+    single = ensemble_forecasts["single"]
+    assert single.volumes["network_lower_ml"].isna().all()
+    assert any("single-member model has no spread" in note for note in single.warnings)
+
+
+@pytest.mark.slow
+def test_train_members_then_calibrate_then_forecast(tiny_workspace, tmp_path):
+    config = TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml")
+    folder = tmp_path / "ensemble"
+    train_members(tiny_workspace, folder, config, 2, seed=0, epochs=1)
+    ensemble = load_ensemble(folder)
+    assert len(ensemble.members) == 2 and ensemble.calibration is None
+    first, second = (m.info for m in ensemble.members)
+    assert first.split == second.split and first.seed + 1 == second.seed
+    assert first.bootstrap != second.bootstrap
+    with pytest.raises(DataError, match="holds an ensemble"):
+        train_members(tiny_workspace, folder, config, 1, seed=0, epochs=1)
+    # held-out scores of a (made-up) evaluation folder: every region scored 1.0
+    regions = ensemble.lead.info.region_set.names
+    scores = pd.concat([_scores({f"p{i}": [1.0] for i in range(20)}, region=r) for r in regions])
+    evaluation = tmp_path / "evaluation"
+    evaluation.mkdir()
+    scores.to_csv(evaluation / "conformal.tsv", sep="\t", index=False)
+    (evaluation / "evaluation.json").write_text(json.dumps({"members": 2}))
+    result = CliRunner().invoke(app, ["calibrate", str(folder), "--from", str(evaluation)])
+    assert result.exit_code == 0, result.output
+    stored = json.loads((folder / "calibration.json").read_text())
+    assert stored["quantiles"] == dict.fromkeys(regions, 1.0) and stored["members"] == 2
+    row = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t").iloc[0]
+    calibrated = as_ensemble(folder)
+    assert calibrated.calibration is not None
+    out = forecast(calibrated, row.image, row.age, row.sex, row.diagnosis, [2.0])
+    provenance = write_forecast(out, calibrated, tmp_path / "forecast", "scan", "abc")
+    assert "scan_desc-forecast24mo_logjacobiansd.nii.gz" in provenance["outputs"]
+    assert provenance["model"]["members"] == 2
+    assert provenance["model"]["calibration"]["level"] == 0.9
+    assert out.volumes["network_lower_ml"].notna().all()
+
+
+def test_calibrate_refuses_what_it_cannot_use(stand_in_model, tmp_path):
+    with pytest.raises(DataError, match="has no conformal.tsv"):
+        calibrate(tmp_path, stand_in_model)
+    _scores({"a": [1.0]}).to_csv(tmp_path / "conformal.tsv", sep="\t", index=False)
+    (tmp_path / "evaluation.json").write_text(json.dumps({"members": 2}))
+    with pytest.raises(DataError, match="single-member model has no spread"):
+        calibrate(tmp_path, stand_in_model)
+    with pytest.raises(DataError, match="--level must be within"):
+        calibrate(tmp_path, stand_in_model, level=1.5)
