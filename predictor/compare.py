@@ -35,7 +35,7 @@ from scipy import ndimage, stats
 
 from predictor.config import load_settings
 from predictor.errors import DataError, PredictorError
-from predictor.forecast import as_ensemble, as_model, check_grid, forecast, prepare_for
+from predictor.forecast import as_ensemble, check_grid, forecast, prepare_for
 from predictor.longitudinal import Visit, noise_floor, observed_by_registration, pair_change
 from predictor.nifti import load_scan
 from predictor.pairs import SETS, visit_pairs
@@ -176,7 +176,7 @@ def network_pairs(
     jacobian, scale = table["network_ml"], table["network_scale_ml"]
     population = None
     if population_dir is not None:
-        field = forecast(as_model(population_dir), scan, first.age, first.sex, first.diagnosis,
+        field = forecast(as_ensemble(population_dir), scan, first.age, first.sex, first.diagnosis,
                          horizons, prepared=prepared, interpolation="linear")  # fmt: skip
         population = field.volumes.set_index(["region", "years"])["network_ml"]
     base_t1, base_mask, base_tissue = _grid_arrays(layout.scan(first.base_key))
@@ -321,12 +321,11 @@ def _phantom_ratio(work: Path, pairs: pd.DataFrame, names, table: str) -> np.nda
 
 def _population(folder, model) -> str:
     """The population-field model folder, checked against the model it is compared with."""
-    population = as_model(folder)
+    population = as_ensemble(folder).lead  # members share the split and the input
     if population.info.config["training"]["image_input"] != "template":
         raise DataError(f"{folder}: not a population-field model (image_input is not template)")
-    # an ensemble's members train on bootstraps; the test participants are what must agree
-    if sorted(population.info.split["test"]) != sorted(model.info.split["test"]):
-        raise DataError(f"{folder}: has other test participants than the model")
+    if population.info.split != model.info.split:  # an ensemble's members share the split
+        raise DataError(f"{folder}: trained on another participant split than the model")
     return str(Path(folder).resolve())
 
 

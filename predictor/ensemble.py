@@ -17,11 +17,15 @@ where sigma^2 is the residual variance of the model's mixed-effects prior for th
 region (the noise of one observed volume, which the members' spread cannot know).
 The interval is ``forecast +- q s`` with q the ceil((n + 1) level)-th smallest of n
 scores. Scores count once per participant: one pair per participant is drawn at
-random (seeded), the subsampling method of Dunn, Wasserman and Ramdas (2022, JASA
-118:1254), so the n scores are exchangeable with a new participant's. They come
-from ``predictor evaluate --members K`` (every score from a fold ensemble that never
-saw the participant); ``predictor calibrate`` stores the quantiles in the MODEL
-folder, and ``evaluate`` itself scores each fold with quantiles from the other folds.
+random (seeded), the subsampling method of Dunn, Wasserman and Ramdas (JASA 2023),
+so that, for exchangeable participants, a new participant's random pair is
+covered at the level (marginally: over the cohort's mix of horizons). The scores
+come from ``predictor evaluate --members K`` (every score from a fold ensemble that
+never saw the participant); ``evaluate`` scores each fold with quantiles from the
+other folds, and ``predictor calibrate`` stores the quantiles in the MODEL folder.
+Neither is exact split-conformal (the other folds' models trained on the fold
+being scored; the calibrated model is not the fold ensembles): a cross-validation
+construction like CV+ (Barber et al. 2021), checked by the measured coverage.
 """
 
 from __future__ import annotations
@@ -37,11 +41,14 @@ from predictor.errors import DataError
 from predictor.files import write_json
 from predictor.modelstore import (
     CALIBRATION,
+    CHECKPOINT,
     ENSEMBLE_JSON,
     MODEL_JSON,
+    PRIOR,
     TrainedModel,
     member_folder,
     member_folders,
+    read_model_json,
     write_ensemble_json,
 )
 from predictor.regression import LEVEL, conformal_quantile
@@ -51,7 +58,7 @@ from predictor.rng import seeded_rng
 SCORES = "conformal.tsv"
 METHOD = (
     "normalised split-conformal (Lei et al. 2018, JASA), scale sqrt(member SD^2 + prior "
-    "residual variance), one pair per participant (Dunn et al. 2022, JASA)"
+    "residual variance), one pair per participant (Dunn et al. 2023, JASA)"
 )
 
 
@@ -76,8 +83,10 @@ def train_members(
     folder = Path(folder)
     if members == 1 and (folder / ENSEMBLE_JSON).is_file():
         raise DataError(f"{folder}: holds an ensemble; pass its --members or use another MODEL")
-    if members > 1 and (folder / MODEL_JSON).is_file():
+    if members > 1 and any((folder / name).exists() for name in (MODEL_JSON, CHECKPOINT, PRIOR)):
         raise DataError(f"{folder}: holds a single model; use another MODEL folder for members")
+    if members == 1 and only is not None:
+        raise DataError("--member needs --members 2 or more")
     if members == 1:
         return train(work, folder, config, epochs, resume, seed, force, split=split, **progress)
     if only is not None and not 1 <= only <= members:
@@ -127,13 +136,14 @@ def one_per_participant(participants, seed: int, *key: int) -> np.ndarray:
 def quantile(scores: pd.DataFrame, level: float, seed: int, key: int = 0) -> tuple[float, int]:
     """(q, participants): the conformal quantile of one region's scores, one pair each.
 
-    ``scores`` has ``participant_id`` and ``score`` columns (finite scores only count).
+    ``scores`` has ``participant_id`` and ``score`` columns; a missing (NaN) score does
+    not count, an infinite one does (it is a pair no finite interval covers).
     """
-    finite = scores[np.isfinite(scores["score"].to_numpy(float))]
-    if finite.empty:
+    known = scores[~np.isnan(scores["score"].to_numpy(float))]
+    if known.empty:
         return float("nan"), 0
-    rows = one_per_participant(finite["participant_id"].to_numpy(), seed, key)
-    return conformal_quantile(finite["score"].to_numpy(float)[rows], level), len(rows)
+    rows = one_per_participant(known["participant_id"].to_numpy(), seed, key)
+    return conformal_quantile(known["score"].to_numpy(float)[rows], level), len(rows)
 
 
 def score_table(forecasts: pd.DataFrame) -> pd.DataFrame:
@@ -169,15 +179,24 @@ def calibrate(
             f"{evaluation}: has no {SCORES}; run `predictor evaluate --members 2` (or more) "
             "to score held-out forecasts of an ensemble"
         )
-    scores = pd.read_csv(path, sep="\t")
+    try:
+        scores = pd.read_csv(path, sep="\t")
+    except pd.errors.EmptyDataError:
+        scores = pd.DataFrame()
     if scores.empty:
         raise DataError(f"{path}: holds no scores (its folds had single-member networks)")
     data = json.loads((evaluation / "evaluation.json").read_text())
-    members = len(member_folders(model))
-    if members < 2:
+    folders = member_folders(model)
+    if len(folders) < 2:
         raise DataError(
             f"{model}: a single-member model has no spread to scale an interval; train it "
             "with --members 2 or more"
+        )
+    if data.get("members") != len(folders):
+        raise DataError(
+            f"{evaluation}: its scores come from fold ensembles of {data.get('members')} "
+            f"members and this model has {len(folders)}: the spread of another member count "
+            "scales intervals differently; evaluate with the model's --members"
         )
     quantiles, counts = {}, {}
     for region, rows in scores.groupby("region", sort=False):
@@ -188,14 +207,16 @@ def calibrate(
         "participants": counts,
         "method": METHOD,
         "evaluation": str(evaluation.resolve()),
-        "evaluation_members": data.get("members"),
-        "members": members,
+        "observed_change": data.get("observed_change"),
+        "members": len(folders),
+        "member_sha256": [read_model_json(path).weights_sha256 for path in folders],
         "seed": seed,
     }
-    if data.get("members") != members:
+    endless = sorted(region for region, q in quantiles.items() if np.isinf(q))
+    if endless:
         payload["note"] = (
-            f"the scores come from fold ensembles of {data.get('members')} members and this "
-            f"model has {members}: the spread, and so the intervals, are scaled differently"
+            f"too few participants for a finite {level:g} interval in {', '.join(endless)} "
+            f"(needs at least {int(np.ceil(level / (1 - level)))} participants)"
         )
     write_json(model / CALIBRATION, payload)
     return payload

@@ -18,8 +18,9 @@ differences, cluster bootstrap, Holm), the subject-specific skill of every
 method (calibration slope and R^2 of individual annualised change) and the
 coverage of every interval a method gives.
 
-With ``--members K`` each fold's network is an ensemble of K members
-(:mod:`predictor.ensemble`); the held-out conformal scores of its Jacobian volumes
+With ``--members K`` each fold's network, and its population field, is an ensemble
+of K members (:mod:`predictor.ensemble`); the held-out conformal scores of the
+network's Jacobian volumes
 go to ``conformal.tsv`` (what ``predictor calibrate`` reads), and each fold's
 participants get intervals calibrated on the other folds' participants, whose
 coverage is reported beside the regressions'.
@@ -218,8 +219,8 @@ def run_fold(
 ):  # fmt: skip
     """Train fold ``fold``'s two models (resuming) and forecast its participants' pairs.
 
-    ``members``: the network is an ensemble of this many members (the population field
-    stays one model).
+    ``members``: the network and the population field are ensembles of this many members
+    (the comparator gets what the network gets).
     ``measure``: also measure the network's forecast scans like real ones (slowest step),
     by ``observed_change`` (the observed change's measurement, :func:`network_pairs`).
     ``tune``: choose a loss weight per model on the fold's inner validation participants
@@ -239,8 +240,7 @@ def run_fold(
     chosen = {}
     for name, image_input in MODELS.items():
         settings = replace(config, training=replace(config.training, image_input=image_input))
-        count = members if name == "network" else 1
-        chosen[name] = train_model(work, folder, name, settings, seed, split, tune, count)
+        chosen[name] = train_model(work, folder, name, settings, seed, split, tune, members)
     if tune is not None:
         write_json(folder / TUNING, chosen)
     pairs = baseline_pairs(volumes, split["test"], workspace.regions)
@@ -635,7 +635,7 @@ def coverage_table(pairs: pd.DataFrame, bounds: dict[str, np.ndarray], names) ->
     rows = []
     for method, interval in bounds.items():
         inside = (interval[..., 0] <= observed) & (observed <= interval[..., 1])
-        known = np.isfinite(interval).all(axis=-1)
+        known = ~np.isnan(interval).any(axis=-1)  # an infinite interval covers
         for j, region in enumerate(names):
             for kind, labels in groups:
                 for label in sorted(set(labels)):

@@ -49,7 +49,6 @@ from predictor.modelstore import (
     Ensemble,
     TrainedModel,
     load_ensemble,
-    load_model,
     member_folders,
     read_calibration,
     read_model_json,
@@ -106,24 +105,6 @@ class ForecastResult:
     volumes: pd.DataFrame  # one row per region and horizon (see volume_table)
     warnings: list[str]
     condition: dict  # age (years), sex, diagnosis as used
-
-
-#: models loaded in this process, keyed by folder and the checksum of their weights, so
-#: that retraining into the same folder gives the new weights (two kept at most)
-_MODELS: dict[tuple[str, str], TrainedModel] = {}
-
-
-def as_model(model: TrainedModel | str | os.PathLike[str]) -> TrainedModel:
-    """A loaded model, or the model folder at ``model`` (cached per process by checksum)."""
-    if isinstance(model, TrainedModel):
-        return model
-    folder = Path(model).resolve()
-    key = (str(folder), read_model_json(folder).weights_sha256)
-    if key not in _MODELS:
-        while len(_MODELS) >= 2:
-            _MODELS.pop(next(iter(_MODELS)))
-        _MODELS[key] = load_model(folder)
-    return _MODELS[key]
 
 
 #: ensembles loaded in this process, keyed by folder, member checksums and calibration

@@ -157,13 +157,14 @@ def _provenance(result, model: Ensemble, input_checksum, identifiers, outputs) -
         "cautions": CAUTION,
         "model": {
             "folder": model.folder.name,
-            "weights_sha256": model.checksum,
+            "weights_sha256": model.checksum,  # an ensemble's: of its members and calibration
             "template": Path(lead.info.template).name,
             "members": len(model.members),
             "epochs_run": [m.info.epochs_run for m in model.members],
             "best_epoch": [m.info.best_epoch for m in model.members],
             "calibration": None if calibration is None else {
-                key: calibration[key] for key in ("level", "method", "participants")
+                key: calibration.get(key)
+                for key in ("level", "method", "participants", "observed_change")
             },
         },
         "input": {"file": result.scan.name, "sha256": input_checksum},

@@ -54,7 +54,7 @@ PRIOR = "prior.json"
 ENSEMBLE_JSON = "ensemble.json"
 CALIBRATION = "calibration.json"
 #: what every member of an ensemble must share (one preparation serves them all)
-SHARED = ("grid", "template", "prepare_settings", "regions", "cohort")
+SHARED = ("grid", "template", "prepare_settings", "regions", "cohort", "split")
 #: version of the model.json schema (ModelInfo); bumped when a field changes meaning
 SCHEMA = 2
 PACKAGES = ("predictor", "torch", "numpy", "scipy", "SimpleITK", "nibabel", "statsmodels")
@@ -145,7 +145,10 @@ class ModelInfo:
         return cls(**raw)
 
     def to_json(self) -> dict:
-        return asdict(self)
+        raw = asdict(self)
+        if not raw["bootstrap"]:  # a single model's file stays what it always was
+            del raw["bootstrap"]
+        return raw
 
     @cached_property
     def region_set(self) -> RegionSet:
@@ -315,6 +318,9 @@ def read_calibration(folder: str | os.PathLike[str]) -> dict | None:
         raw = json.loads(path.read_text())
         raw["quantiles"] = {str(r): float(q) for r, q in raw["quantiles"].items()}
         raw["level"] = float(raw["level"])
+        raw["member_sha256"] = [str(c) for c in raw["member_sha256"]]
+        for key in ("method", "participants"):
+            raw[key]  # noqa: B018 (required)
     except (ValueError, KeyError, TypeError, AttributeError) as error:
         raise ModelError(f"{path}: not a calibration ({error})") from error
     return raw
@@ -335,4 +341,10 @@ def load_ensemble(folder: str | os.PathLike[str]) -> Ensemble:
                 f"{member.folder}: differs from {members[0].folder} in {', '.join(differ)}; "
                 "every member of an ensemble must share them"
             )
-    return Ensemble(Path(folder), members, read_calibration(folder))
+    calibration = read_calibration(folder)
+    if calibration is not None and calibration["member_sha256"] != [m.checksum for m in members]:
+        raise ModelError(
+            f"{Path(folder) / CALIBRATION}: was made for other member weights; run predictor "
+            "calibrate again"
+        )
+    return Ensemble(Path(folder), members, calibration)

@@ -144,12 +144,12 @@ def test_population_model_must_share_the_split(tiny_model, population_model, tmp
     info["split"]["test"], info["split"]["train"] = info["split"]["train"], info["split"]["test"]
     (moved / "model.json").write_text(json.dumps(info))
     from predictor.compare import _population
-    from predictor.forecast import as_model
+    from predictor.forecast import as_ensemble
 
-    with pytest.raises(DataError, match="other test participants"):
-        _population(moved, as_model(tiny_model))
+    with pytest.raises(DataError, match="another participant split"):
+        _population(moved, as_ensemble(tiny_model).lead)
     with pytest.raises(DataError, match="not a population-field model"):
-        _population(tiny_model, as_model(tiny_model))
+        _population(tiny_model, as_ensemble(tiny_model).lead)
 
 
 def test_a_leaked_split_fails_loudly(tiny_model, tiny_workspace, tmp_path):

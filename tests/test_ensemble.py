@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import shutil
 from dataclasses import replace
 
 import numpy as np
@@ -22,8 +23,8 @@ from predictor.ensemble import (
     residual_var,
     train_members,
 )
-from predictor.errors import DataError
-from predictor.forecast import as_ensemble, as_model, forecast
+from predictor.errors import DataError, ModelError
+from predictor.forecast import as_ensemble, forecast
 from predictor.forecast_io import write_forecast
 from predictor.modelstore import Ensemble, TrainedModel, load_ensemble
 from predictor.pairs import bootstrap_counts
@@ -50,6 +51,34 @@ def test_conformal_quantile_counts_each_participant_once_by_hand():
     assert sorted(scores["participant_id"].iloc[chosen]) == ["A", "B", "C", "D", "E"]
     again = one_per_participant(scores["participant_id"], seed=0)
     np.testing.assert_array_equal(chosen, again)  # seeded
+
+
+def test_one_pair_per_participant_gives_the_nominal_coverage_by_simulation():
+    # Exchangeable participants with 1-4 correlated pairs each (a participant effect plus
+    # pair noise). Split-conformal with one pair per participant (Dunn, Wasserman and
+    # Ramdas, JASA 2023) covers a new participant's random pair with probability within
+    # [level, level + 1 / (n + 1)] (Lei et al. 2018, Theorem 2.2), here [0.8, 0.85] for
+    # n = 19; 4000 repetitions give a Monte Carlo SD of about 0.006.
+    rng = np.random.default_rng(11)
+    hits = []
+    for repetition in range(4000):
+        sizes = rng.integers(1, 5, size=20)
+        effects = rng.normal(size=20) * 2.0
+        rows = [(f"p{i}", abs(effects[i] + rng.normal())) for i in range(20)
+                for _ in range(sizes[i])]  # fmt: skip
+        table = pd.DataFrame(rows, columns=["participant_id", "score"])
+        calibration = table[table["participant_id"] != "p19"]
+        q, n = quantile(calibration, 0.8, seed=repetition)
+        new = table[table["participant_id"] == "p19"]["score"].to_numpy()
+        hits.append(rng.choice(new) <= q)
+    assert n == 19
+    assert 0.8 - 0.02 <= np.mean(hits) <= 0.85 + 0.02
+
+
+def test_an_infinite_score_counts_and_a_missing_one_does_not():
+    scores = _scores({"A": [np.inf], "B": [1.0], "C": [2.0], "D": [np.nan]})
+    assert quantile(scores, 0.5, seed=0) == (2.0, 3)  # ceil(4 * 0.5) = 2nd of {1, 2, inf}
+    assert quantile(scores, 0.7, seed=0) == (np.inf, 3)
 
 
 def test_each_fold_is_calibrated_on_the_other_folds_only():
@@ -108,7 +137,7 @@ def ensemble_forecasts(tiny_model, tiny_workspace):
     """One scan forecast by [model, model], [model, slightly perturbed], [model, more
     perturbed], calibrated with q = 2 in every region, and by the model alone."""
     row = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t").iloc[0]
-    model = as_model(tiny_model)
+    model = as_ensemble(tiny_model).lead
     regions = model.info.region_set.names
     calibration = {"level": 0.9, "quantiles": dict.fromkeys(regions, 2.0),
                    "method": "test", "participants": dict.fromkeys(regions, 10)}  # fmt: skip
@@ -142,7 +171,7 @@ def test_intervals_widen_with_the_horizon_and_only_calibrated_ensembles_have_the
     ensemble_forecasts, tiny_model
 ):
     table = ensemble_forecasts["large"].volumes
-    model = as_model(tiny_model)
+    model = as_ensemble(tiny_model).lead
     for region, rows in table.groupby("region"):
         rows = rows.set_index("years")
         assert np.isnan(rows.loc[0.0, "network_lower_ml"])  # the baseline itself: no interval
@@ -168,17 +197,27 @@ def test_train_members_then_calibrate_then_forecast(tiny_workspace, tmp_path):
     assert first.bootstrap != second.bootstrap
     with pytest.raises(DataError, match="holds an ensemble"):
         train_members(tiny_workspace, folder, config, 1, seed=0, epochs=1)
-    # held-out scores of a (made-up) evaluation folder: every region scored 1.0
+    # held-out scores of a (made-up) evaluation folder: participants scored 1..20 in every
+    # region; at 0.9 the ceil(21 * 0.9) = 19th smallest
     regions = ensemble.lead.info.region_set.names
-    scores = pd.concat([_scores({f"p{i}": [1.0] for i in range(20)}, region=r) for r in regions])
+    scores = pd.concat(
+        [_scores({f"p{i}": [float(i)] for i in range(1, 21)}, region=r) for r in regions]
+    )
     evaluation = tmp_path / "evaluation"
     evaluation.mkdir()
     scores.to_csv(evaluation / "conformal.tsv", sep="\t", index=False)
-    (evaluation / "evaluation.json").write_text(json.dumps({"members": 2}))
+    (evaluation / "evaluation.json").write_text(
+        json.dumps({"members": 3, "observed_change": "segmentation"})
+    )
+    with pytest.raises(DataError, match="fold ensembles of 3 members and this model has 2"):
+        calibrate(evaluation, folder)
+    (evaluation / "evaluation.json").write_text(
+        json.dumps({"members": 2, "observed_change": "segmentation"})
+    )
     result = CliRunner().invoke(app, ["calibrate", str(folder), "--from", str(evaluation)])
     assert result.exit_code == 0, result.output
     stored = json.loads((folder / "calibration.json").read_text())
-    assert stored["quantiles"] == dict.fromkeys(regions, 1.0) and stored["members"] == 2
+    assert stored["quantiles"] == dict.fromkeys(regions, 19.0) and stored["members"] == 2
     row = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t").iloc[0]
     calibrated = as_ensemble(folder)
     assert calibrated.calibration is not None
@@ -188,10 +227,21 @@ def test_train_members_then_calibrate_then_forecast(tiny_workspace, tmp_path):
     assert provenance["model"]["members"] == 2
     assert provenance["model"]["calibration"]["level"] == 0.9
     assert out.volumes["network_lower_ml"].notna().all()
+    # new weights in a member (here member 1's) make the calibration stale: refused until
+    # calibrated again
+    for name in ("weights.pt", "model.json"):
+        shutil.copy(folder / "member-1" / name, folder / "member-2" / name)
+    with pytest.raises(ModelError, match="calibration.json: was made for other member weights"):
+        load_ensemble(folder)
+    with pytest.raises(DataError, match="--member needs --members"):
+        train_members(tiny_workspace, tmp_path / "one", config, 1, seed=0, only=1)
 
 
 def test_calibrate_refuses_what_it_cannot_use(stand_in_model, tmp_path):
     with pytest.raises(DataError, match="has no conformal.tsv"):
+        calibrate(tmp_path, stand_in_model)
+    (tmp_path / "conformal.tsv").write_text("\n")  # as a single-member evaluation writes it
+    with pytest.raises(DataError, match="holds no scores"):
         calibrate(tmp_path, stand_in_model)
     _scores({"a": [1.0]}).to_csv(tmp_path / "conformal.tsv", sep="\t", index=False)
     (tmp_path / "evaluation.json").write_text(json.dumps({"members": 2}))

@@ -167,7 +167,8 @@ def test_every_participant_is_forecast_once_by_models_that_never_saw_it(evaluate
     seen = {}
     for fold in (1, 2):
         members = {p for p, k in folds.items() if k == fold}
-        for name in ("network/member-1", "network/member-2", "population"):
+        for name in ("network/member-1", "network/member-2", "population/member-1",
+                     "population/member-2"):  # fmt: skip
             split = json.loads((out / f"fold-{fold}" / name / "model.json").read_text())["split"]
             assert sorted(split["test"]) == sorted(members)
             assert not members & (set(split["train"]) | set(split["validation"]))
@@ -249,7 +250,7 @@ def test_kill_during_a_fold_then_rerun_gives_identical_tables(
                str(tiny_workspace), str(copy), "--folds", "2", "--fold", "2", "--members", "2",
                "--config", str(one_epoch_config), "--no-scan-volumes"]  # fmt: skip
     process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    checkpoint = copy / "fold-2" / "population" / "checkpoint.pt"
+    checkpoint = copy / "fold-2" / "population" / "member-1" / "checkpoint.pt"
     deadline = time.monotonic() + 300
     while not checkpoint.exists() and process.poll() is None and time.monotonic() < deadline:
         time.sleep(0.05)

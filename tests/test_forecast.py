@@ -16,7 +16,7 @@ from typer.testing import CliRunner
 
 from predictor.cli import app, expand_lists
 from predictor.errors import DataError
-from predictor.forecast import as_ensemble, as_model, forecast
+from predictor.forecast import as_ensemble, forecast
 from predictor.forecast_io import (
     PROVENANCE,
     VOLUMES,
@@ -68,7 +68,7 @@ def test_horizon_zero_is_the_baseline_and_volumes_are_monotone(tiny_forecast):
 
 
 def test_log_jacobian_file_integrates_to_the_reported_change(tiny_forecast, tiny_model, tmp_path):
-    model = as_model(tiny_model)
+    model = as_ensemble(tiny_model).lead
     write_forecast(tiny_forecast, model, tmp_path, "scan", "")
     prepared, scan = tiny_forecast.prepared, tiny_forecast.scan
     table = tiny_forecast.volumes.set_index(["region", "years"])
@@ -86,7 +86,7 @@ def test_log_jacobian_file_integrates_to_the_reported_change(tiny_forecast, tiny
 def test_outputs_match_the_input_grid_and_carry_the_caution(
     tiny_forecast, tiny_model, baseline_row, tmp_path
 ):
-    model = as_model(tiny_model)
+    model = as_ensemble(tiny_model).lead
     provenance = write_forecast(tiny_forecast, model, tmp_path, "scan", "abc")
     source = nib.load(baseline_row.image)
     for name in provenance["outputs"]:
@@ -166,7 +166,7 @@ def test_anatomical_nii_outputs_keep_shape_affine_and_orientation(
 def test_held_out_forecasts_beat_no_change(tiny_model, tiny_workspace):
     # Ground truth of the phantom generator (derivatives/phantom-truth), held-out participants
     # (validation and test sets of the model's split), horizons of 2 years or more.
-    model = as_model(tiny_model)
+    model = as_ensemble(tiny_model).lead
     cohort = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t")
     truth_path = tiny_workspace.parent / "bids" / "derivatives" / "phantom-truth"
     truth = pd.read_csv(truth_path / "true_volumes.tsv", sep="\t")

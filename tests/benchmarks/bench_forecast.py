@@ -79,14 +79,15 @@ def ensemble_prepared_1mm() -> dict:
         scan = load_scan(image)
         prepared = prepare_for(model, scan)
         figures = {"horizons": 2}
-        for count in (1, 5, 1):  # the single member again, last, to see the noise
+        for run, count in enumerate((1, 5, 1)):  # the single member again, to see the noise
             ensemble = Ensemble(Path(folder), tuple(members[:count]), None)
             started = time.perf_counter()
             result = forecast(ensemble, scan, 70.0, "F", "MCI", [1, 3], prepared=prepared)
             computed = time.perf_counter() - started
-            write_forecast(result, ensemble, Path(folder) / f"out{count}", "mni", "")
-            figures[f"s_compute_{count}"] = round(computed, 2)
-            figures[f"s_with_outputs_{count}"] = round(time.perf_counter() - started, 2)
+            write_forecast(result, ensemble, Path(folder) / f"out{run}", "mni", "")
+            again = "_again" if run == 2 else ""
+            figures[f"s_compute_{count}{again}"] = round(computed, 2)
+            figures[f"s_with_outputs_{count}{again}"] = round(time.perf_counter() - started, 2)
         figures["ratio_compute_5_to_1"] = round(figures["s_compute_5"] / figures["s_compute_1"], 2)
         figures["ratio_with_outputs_5_to_1"] = round(
             figures["s_with_outputs_5"] / figures["s_with_outputs_1"], 2
