@@ -468,8 +468,9 @@ def evaluate(
     ] = False,
     members: Annotated[
         int,
-        typer.Option(min=1, help="Ensemble members per fold's network (K trainings per fold); "
-                     "2 or more gives conformal intervals and conformal.tsv."),
+        typer.Option(min=1, help="Ensemble members of each fold's network and population "
+                     "field (2K trainings per fold); 2 or more gives conformal intervals and "
+                     "conformal.tsv."),
     ] = 1,
 ) -> None:
     """Cross-validate the network against the population field and the regressions.
