@@ -75,8 +75,7 @@ def train_members(
     its validation and test participants. ``epochs`` overrides the config's;
     ``progress``: ``on_step`` and ``on_epoch`` of :func:`predictor.training.train`.
     """
-    from predictor.pairs import split_participants
-    from predictor.training import train
+    from predictor.training import default_split, train
     from predictor.workspace import read_workspace
 
     seed = int(seed if seed is not None else config.training.seed)
@@ -96,12 +95,8 @@ def train_members(
             f"{folder}: holds an ensemble of {len(member_folders(folder))} members, not "
             f"{members}; use another MODEL folder"
         )
-    if split is None:
-        training = config.training
-        volumes = read_workspace(work).volumes
-        split = split_participants(
-            volumes, training.split, training.test_min_follow_up_years, seed
-        )
+    if split is None:  # one split for every member (their seeds differ)
+        split = default_split(read_workspace(work).volumes, config, seed)
     folder.mkdir(parents=True, exist_ok=True)
     write_ensemble_json(folder, members)
     last = {}

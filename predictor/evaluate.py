@@ -674,8 +674,8 @@ def evaluate(
     Without ``measure`` the network's forecast scans are not measured (only its own
     Jacobian-integral volumes are scored), which saves most of the forecasting time.
     ``tune`` (``configs/evaluate.toml``) chooses a loss weight per fold on inner validation.
-    ``members``: each fold's network is an ensemble of this many members (see the module
-    docstring).
+    ``members``: each fold's network and population field are ensembles of this many
+    members (see the module docstring).
     """
     out = Path(out)
     config = config or TrainConfig.from_toml()

@@ -332,10 +332,10 @@ def load_ensemble(folder: str | os.PathLike[str]) -> Ensemble:
     lead = members[0].info
     for member in members[1:]:
         differ = [key for key in SHARED if getattr(member.info, key) != getattr(lead, key)]
-        for part, key in (("network", None), ("training", "image_input")):
-            mine, theirs = member.info.config[part], lead.config[part]
-            if (mine if key is None else mine[key]) != (theirs if key is None else theirs[key]):
-                differ.append(part if key is None else key)
+        if member.info.config["network"] != lead.config["network"]:
+            differ.append("network")
+        if member.info.config["training"]["image_input"] != lead.config["training"]["image_input"]:
+            differ.append("image_input")
         if differ:
             raise ModelError(
                 f"{member.folder}: differs from {members[0].folder} in {', '.join(differ)}; "

@@ -227,6 +227,12 @@ class Run:
         return ScanStore(self.workspace.root)
 
 
+def default_split(volumes, config: TrainConfig, seed: int) -> dict[str, list[str]]:
+    """The config's seeded train / validation / test split of the workspace's participants."""
+    settings = config.training
+    return split_participants(volumes, settings.split, settings.test_min_follow_up_years, seed)
+
+
 def prepare_run(
     work, config: TrainConfig, seed: int, split: dict[str, list[str]] | None = None,
     member: int | None = None,
@@ -241,9 +247,8 @@ def prepare_run(
     """
     workspace = read_workspace(work)
     volumes, regions, coding = workspace.volumes, workspace.regions, workspace.cohort
-    settings = config.training
     if split is None:
-        split = split_participants(volumes, settings.split, settings.test_min_follow_up_years, seed)
+        split = default_split(volumes, config, seed)
     else:
         split = {name: sorted(split.get(name, [])) for name in SETS}
     prior, prior_warnings = fit_prior(volumes, split["train"], regions, coding)
