@@ -112,7 +112,6 @@ class LongitudinalSettings:
     demons_iterations: tuple[int, ...]
     demons_field_sd_voxels: float
     histogram_levels: int
-    boundary_width_voxels: int
 
     def __post_init__(self):
         if len(self.rigid_shrink_factors) != len(self.rigid_smoothing_mm):

@@ -37,6 +37,24 @@ _KEYS = ("description", "tissue", "sum", "change", "mirror", "reference", "prior
 
 
 @dataclass(frozen=True)
+class Boundary:
+    """How the boundary shift integral measures a region's change (predictor.longitudinal).
+
+    ``outside``/``inside``: the tissues on either side of the region's edge; the
+    intensity window runs between their pure intensities, less ``trim`` of its
+    width at each end (noise on a pure tissue then stays out of the window, so a
+    voxel that turns fully from one tissue to the other counts as one voxel).
+    ``band_voxels``: how far either side of the two visits' edges the integral
+    reaches; a wider band also takes in the change of neighbouring structures.
+    """
+
+    outside: str
+    inside: str
+    band_voxels: int = 2
+    trim: float = 0.0
+
+
+@dataclass(frozen=True)
 class Region:
     """One region and how it behaves."""
 
@@ -48,7 +66,7 @@ class Region:
     tissue: str | None = None  # deep region: this tissue inside a template mask
     weights: dict[str, float] = field(default_factory=dict)  # sum region: base -> weight
     mirror: str | None = None  # left-right partner
-    boundary: tuple[str, str] | None = None  # (outside, inside) tissues of its edge (BSI window)
+    boundary: Boundary | None = None  # its edge, for the boundary shift integral
 
     @property
     def direction(self) -> int:
@@ -235,13 +253,7 @@ def _region(name: str, spec, source: str) -> Region:
             raise ConfigError(f"{where} '{key}': must be true or false, got {spec[key]!r}")
     boundary = spec.get("boundary")
     if boundary is not None:
-        if not isinstance(boundary, dict) or set(boundary) != {"outside", "inside"}:
-            raise ConfigError(
-                f"{where} 'boundary': must be {{ outside = TISSUE, inside = TISSUE }}"
-            )
-        if any(value not in TISSUES for value in boundary.values()):
-            raise ConfigError(f"{where} 'boundary': tissues must be {', '.join(TISSUES)}")
-        boundary = (boundary["outside"], boundary["inside"])
+        boundary = _boundary(boundary, where)
     weights = spec.get("sum", {})
     if not isinstance(weights, dict) or any(
         isinstance(w, bool) or not isinstance(w, int | float) for w in weights.values()
@@ -258,3 +270,22 @@ def _region(name: str, spec, source: str) -> Region:
         mirror=spec.get("mirror"),
         boundary=boundary,
     )
+
+
+def _boundary(spec, where: str) -> Boundary:
+    """A region's ``boundary`` table, checked (one-line ConfigError naming ``where``)."""
+    keys = {"outside", "inside", "band_voxels", "trim"}
+    if not isinstance(spec, dict) or not {"outside", "inside"} <= set(spec) <= keys:
+        raise ConfigError(
+            f"{where} 'boundary': must be {{ outside = TISSUE, inside = TISSUE"
+            "[, band_voxels = N, trim = F] }"
+        )
+    if spec["outside"] not in TISSUES or spec["inside"] not in TISSUES:
+        raise ConfigError(f"{where} 'boundary': tissues must be {', '.join(TISSUES)}")
+    band = spec.get("band_voxels", Boundary.band_voxels)
+    if isinstance(band, bool) or not isinstance(band, int) or band < 1:
+        raise ConfigError(f"{where} 'boundary': band_voxels must be an integer >= 1, got {band!r}")
+    trim = spec.get("trim", Boundary.trim)
+    if isinstance(trim, bool) or not isinstance(trim, int | float) or not 0 <= trim < 0.5:
+        raise ConfigError(f"{where} 'boundary': trim must be a number in [0, 0.5), got {trim!r}")
+    return Boundary(spec["outside"], spec["inside"], band, float(trim))

@@ -56,6 +56,10 @@ BAD_CONFIGS = {
                       r"\[regions.wm\] 'change': must be one of"),
     "regions-type": (RegionSet.from_toml, "[regions.wm]\nprior = 'yes'\n",
                      r"\[regions.wm\] 'prior': must be true or false"),
+    "regions-boundary": (RegionSet.from_toml,
+                         "[regions.brain]\nboundary = { outside = 'CSF', inside = 'GM', "
+                         "trim = 0.6 }\n",
+                         r"\[regions.brain\] 'boundary': trim must be a number in \[0, 0.5\)"),
     "compare-unknown": (lambda path: CompareSettings.from_toml(path), "primary = 'wm'\n",
                         r"'primary': unknown key \(did you mean 'primary_region'"),
     "compare-value": (lambda path: CompareSettings.from_toml(path), "level = 1.5\n",
