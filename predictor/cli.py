@@ -520,14 +520,18 @@ def calibrate(
     Normalised split-conformal (Lei et al. 2018): each held-out pair's score is
     |observed - forecast| / sqrt(member SD^2 + prior residual variance) (mL / mL),
     one pair per participant; the interval is the forecast +- the scores'
-    conformal quantile times that scale. Writes MODEL/calibration.json; forecasts
-    then carry network_lower_ml and network_upper_ml.
+    conformal quantile times that scale, the quantile taken apart in each horizon
+    band (<1.5, 1.5-2.5, 2.5-3.5, >=3.5 years). Writes MODEL/calibration.json;
+    forecasts then carry network_lower_ml and network_upper_ml.
     """
+    from predictor.ensemble import band_label
     from predictor.ensemble import calibrate as run_calibration
 
     payload = run_calibration(source, model, level, seed)
-    for region, q in payload["quantiles"].items():
-        typer.echo(f"{region}: q = {q:.3g} ({payload['participants'][region]} participants)")
+    for region, qs in payload["quantiles"].items():
+        each = zip(qs, payload["participants"][region], strict=True)
+        bands = "; ".join(f"{band_label(b)} q = {q:.3g} (n {n})" for b, (q, n) in enumerate(each))
+        typer.echo(f"{region}: {bands}")
     if "note" in payload:
         typer.echo(f"note: {payload['note']}")
     typer.echo(f"calibration at {level:g} in {model / 'calibration.json'}")

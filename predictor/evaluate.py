@@ -490,7 +490,8 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
             "tuning": tuning,
             "members": run["members"],
             "network_interval": (
-                "conformal, each fold calibrated on the other folds' participants"
+                "conformal, each fold calibrated on the other folds' participants, a quantile "
+                "per horizon band (<1.5, 1.5-2.5, 2.5-3.5, >=3.5 years)"
                 if not conformal.empty
                 else "none: single-member networks have no spread (evaluate --members 2 or more)"
             ),

@@ -42,7 +42,14 @@ from scipy import ndimage
 
 from predictor.atypical import anatomy_note
 from predictor.config import load_settings
-from predictor.ensemble import interval_scale, residual_var, uncalibrated_note
+from predictor.ensemble import (
+    band_label,
+    band_of,
+    calibrated_quantile,
+    interval_scale,
+    residual_var,
+    uncalibrated_note,
+)
 from predictor.errors import DataError, ModelError
 from predictor.fields import identity_grid, jacobian_determinant, region_volume_ratio, sample_at
 from predictor.modelstore import (
@@ -394,7 +401,8 @@ def volume_table(
     baseline_ml, network_ml (member mean), network_sd_ml (member SD; NaN for one
     member), network_scale_ml (the conformal score's scale,
     :func:`~predictor.ensemble.interval_scale`), network_lower_ml and network_upper_ml
-    (the calibrated conformal interval; NaN without calibration),
+    (the calibrated conformal interval, its quantile from the horizon's band; NaN without
+    calibration),
     network_change_ml, network_percent_per_year, prior_mean_ml, prior_sd_ml,
     prior_lower_ml, prior_upper_ml (SD and 90% interval for an observed follow-up),
     prior_true_sd_ml (SD of the participant's true volume, without the residual noise
@@ -417,7 +425,7 @@ def volume_table(
         )["sd_ml"]
     except DataError as error:
         prior, notes = None, [f"no prior forecast: {error}"]
-    rows = []
+    rows, endless = [], set()
     for region in model.info.region_set.names:
         for t in horizons:
             base = baseline_ml[region]
@@ -425,9 +433,10 @@ def volume_table(
             net = float(each.mean())
             spread = float(each.std(ddof=1)) if len(each) > 1 else np.nan
             scale = float(interval_scale(spread, residual_var(model, region)))
-            half = np.nan
-            if calibration is not None and t > 0:
-                half = calibration["quantiles"].get(region, np.nan) * scale
+            q = calibrated_quantile(calibration, region, t)
+            if calibration is not None and t > 0 and not q < np.inf:
+                endless.add(t)
+            half = q * scale
             row = {
                 "region": region,
                 "years": t,
@@ -460,4 +469,10 @@ def volume_table(
                         f"{mean - Z95 * true_sd:.2f}-{mean + Z95 * true_sd:.2f} mL"
                     )
             rows.append(row)
+    for t in sorted(endless):
+        edges = calibration["bands_years"]
+        notes.append(
+            f"no finite interval for some regions at {t:g} years: too few calibration "
+            f"participants in the {band_label(int(band_of(t, edges)), edges)} band"
+        )
     return pd.DataFrame(rows), notes

@@ -316,7 +316,15 @@ def read_calibration(folder: str | os.PathLike[str]) -> dict | None:
         return None
     try:
         raw = json.loads(path.read_text())
-        raw["quantiles"] = {str(r): float(q) for r, q in raw["quantiles"].items()}
+        if "bands_years" not in raw:
+            raise ModelError(
+                f"{path}: one quantile for every horizon (an older version); run predictor "
+                "calibrate again"
+            )
+        raw["bands_years"] = [float(edge) for edge in raw["bands_years"]]
+        raw["quantiles"] = {str(r): [float(q) for q in qs] for r, qs in raw["quantiles"].items()}
+        if any(len(qs) != len(raw["bands_years"]) + 1 for qs in raw["quantiles"].values()):
+            raise ValueError("a quantile list does not match the bands")
         raw["level"] = float(raw["level"])
         raw["member_sha256"] = [str(c) for c in raw["member_sha256"]]
         for key in ("method", "participants"):

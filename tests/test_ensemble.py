@@ -15,6 +15,7 @@ from typer.testing import CliRunner
 from predictor.cli import app
 from predictor.config import CONFIG_DIR
 from predictor.ensemble import (
+    band_of,
     calibrate,
     cross_fitted,
     interval_scale,
@@ -31,9 +32,11 @@ from predictor.pairs import bootstrap_counts
 from predictor.training import TrainConfig, prepare_run
 
 
-def _scores(groups: dict[str, list[float]], fold: int = 1, region: str = "r") -> pd.DataFrame:
+def _scores(
+    groups: dict[str, list[float]], fold: int = 1, region: str = "r", years: float = 2.0
+) -> pd.DataFrame:
     rows = [{"participant_id": p, "fold": fold, "region": region, "score": s,
-             "forecast_ml": 10.0, "scale_ml": 1.0}
+             "forecast_ml": 10.0, "scale_ml": 1.0, "years": years}
             for p, scores in groups.items() for s in scores]  # fmt: skip
     return pd.DataFrame(rows)
 
@@ -91,6 +94,21 @@ def test_each_fold_is_calibrated_on_the_other_folds_only():
     np.testing.assert_allclose(table["upper_ml"] - table["forecast_ml"], table["quantile"])
 
 
+def test_each_horizon_band_is_calibrated_on_its_own_scores():
+    # Mondrian conformal (Vovk et al. 2005, chapter 4): the quantile of a 1-year pair comes
+    # from the other fold's 1-year scores only, a 4-year pair's from its 4-year scores. The
+    # same participants, with 10x larger errors at 4 years.
+    parts = [
+        _scores({f"{f}{i}": [float(i) * factor] for i in range(1, 10)}, fold=k, years=years)
+        for k, f in ((1, "a"), (2, "b"))
+        for years, factor in ((1.0, 1.0), (4.0, 10.0))
+    ]
+    table = cross_fitted(pd.concat(parts, ignore_index=True), 0.8, seed=0)
+    assert list(band_of([0.5, 1.5, 2.0, 3.49, 3.5, 9.0])) == [0, 1, 1, 2, 3, 3]
+    assert set(table.loc[table["years"] == 1.0, "quantile"]) == {8.0}
+    assert set(table.loc[table["years"] == 4.0, "quantile"]) == {80.0}
+
+
 def test_scale_adds_the_member_spread_to_the_observation_noise():
     np.testing.assert_allclose(interval_scale([3.0, 0.0], [16.0, 4.0]), [5.0, 2.0])
 
@@ -135,12 +153,14 @@ def _perturbed(model: TrainedModel, size: float, seed: int) -> TrainedModel:
 @pytest.fixture(scope="module")
 def ensemble_forecasts(tiny_model, tiny_workspace):
     """One scan forecast by [model, model], [model, slightly perturbed], [model, more
-    perturbed], calibrated with q = 2 in every region, and by the model alone."""
+    perturbed], calibrated with q = 1, 2, 3, 4 in the four horizon bands of every region,
+    and by the model alone."""
     row = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t").iloc[0]
     model = as_ensemble(tiny_model).lead
     regions = model.info.region_set.names
-    calibration = {"level": 0.9, "quantiles": dict.fromkeys(regions, 2.0),
-                   "method": "test", "participants": dict.fromkeys(regions, 10)}  # fmt: skip
+    calibration = {"level": 0.9, "bands_years": [1.5, 2.5, 3.5],
+                   "quantiles": dict.fromkeys(regions, [1.0, 2.0, 3.0, 4.0]),
+                   "method": "test", "participants": dict.fromkeys(regions, [10] * 4)}  # fmt: skip
     results = {}
     for name, size in (("same", 0.0), ("small", 0.002), ("large", 0.02)):
         other = _perturbed(model, size, seed=1)
@@ -177,9 +197,10 @@ def test_intervals_widen_with_the_horizon_and_only_calibrated_ensembles_have_the
         assert np.isnan(rows.loc[0.0, "network_lower_ml"])  # the baseline itself: no interval
         width = (rows["network_upper_ml"] - rows["network_lower_ml"]).loc[[1.0, 3.0]]
         assert width.loc[3.0] > width.loc[1.0] > 0, region
-        expected = 2 * 2.0 * interval_scale(rows.loc[3.0, "network_sd_ml"],
-                                            residual_var(model, region))  # fmt: skip
-        assert width.loc[3.0] == pytest.approx(expected, nan_ok=True)
+        for years, q in ((1.0, 1.0), (3.0, 3.0)):  # bands <1.5 and 2.5-3.5
+            expected = 2 * q * interval_scale(rows.loc[years, "network_sd_ml"],
+                                              residual_var(model, region))  # fmt: skip
+            assert width.loc[years] == pytest.approx(expected, nan_ok=True), (region, years)
     single = ensemble_forecasts["single"]
     assert single.volumes["network_lower_ml"].isna().all()
     assert any("single-member model has no spread" in note for note in single.warnings)
@@ -197,11 +218,13 @@ def test_train_members_then_calibrate_then_forecast(tiny_workspace, tmp_path):
     assert first.bootstrap != second.bootstrap
     with pytest.raises(DataError, match="holds an ensemble"):
         train_members(tiny_workspace, folder, config, 1, seed=0, epochs=1)
-    # held-out scores of a (made-up) evaluation folder: participants scored 1..20 in every
-    # region; at 0.9 the ceil(21 * 0.9) = 19th smallest
+    # held-out scores of a (made-up) evaluation folder: participants scored 1..20 at 2 years
+    # and 10..200 at 4 years in every region; at 0.9 the ceil(21 * 0.9) = 19th smallest of
+    # each band. No pair below 1.5 or within 2.5-3.5 years: those bands get no interval.
     regions = ensemble.lead.info.region_set.names
     scores = pd.concat(
-        [_scores({f"p{i}": [float(i)] for i in range(1, 21)}, region=r) for r in regions]
+        [_scores({f"p{i}": [float(i) * factor] for i in range(1, 21)}, region=r, years=years)
+         for r in regions for years, factor in ((2.0, 1.0), (4.0, 10.0))]  # fmt: skip
     )
     evaluation = tmp_path / "evaluation"
     evaluation.mkdir()
@@ -217,21 +240,37 @@ def test_train_members_then_calibrate_then_forecast(tiny_workspace, tmp_path):
     result = CliRunner().invoke(app, ["calibrate", str(folder), "--from", str(evaluation)])
     assert result.exit_code == 0, result.output
     stored = json.loads((folder / "calibration.json").read_text())
-    assert stored["quantiles"] == dict.fromkeys(regions, 19.0) and stored["members"] == 2
+    assert stored["members"] == 2 and stored["bands_years"] == [1.5, 2.5, 3.5]
+    for region in regions:
+        assert stored["participants"][region] == [0, 20, 0, 20]
+        assert stored["quantiles"][region][1::2] == [19.0, 190.0]
+    assert "too few participants for a finite 0.9 interval at <1.5 y, 2.5-3.5 y" in result.output
     row = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t").iloc[0]
     calibrated = as_ensemble(folder)
     assert calibrated.calibration is not None
-    out = forecast(calibrated, row.image, row.age, row.sex, row.diagnosis, [2.0])
+    out = forecast(calibrated, row.image, row.age, row.sex, row.diagnosis, [2.0, 4.0, 3.0])
+    table = out.volumes.set_index(["region", "years"])
+    half = (table["network_upper_ml"] - table["network_lower_ml"]) / 2
+    np.testing.assert_allclose(half.xs(4.0, level="years") / table["network_scale_ml"].xs(
+        4.0, level="years"), 190.0)  # fmt: skip
+    np.testing.assert_allclose(half.xs(2.0, level="years") / table["network_scale_ml"].xs(
+        2.0, level="years"), 19.0)  # fmt: skip
+    assert table.xs(3.0, level="years")["network_lower_ml"].isna().all()
+    assert any("no finite interval for some regions at 3 years" in w for w in out.warnings)
     provenance = write_forecast(out, calibrated, tmp_path / "forecast", "scan", "abc")
     assert "scan_desc-forecast24mo_logjacobiansd.nii.gz" in provenance["outputs"]
     assert provenance["model"]["members"] == 2
     assert provenance["model"]["calibration"]["level"] == 0.9
-    assert out.volumes["network_lower_ml"].notna().all()
     # new weights in a member (here member 1's) make the calibration stale: refused until
     # calibrated again
     for name in ("weights.pt", "model.json"):
         shutil.copy(folder / "member-1" / name, folder / "member-2" / name)
     with pytest.raises(ModelError, match="calibration.json: was made for other member weights"):
+        load_ensemble(folder)
+    # a calibration of an older version (one quantile for every horizon) is refused
+    stored.pop("bands_years")
+    (folder / "calibration.json").write_text(json.dumps(stored))
+    with pytest.raises(ModelError, match="one quantile for every horizon"):
         load_ensemble(folder)
     with pytest.raises(DataError, match="--member needs --members"):
         train_members(tiny_workspace, tmp_path / "one", config, 1, seed=0, only=1)

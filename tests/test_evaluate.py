@@ -19,7 +19,7 @@ from scipy import stats
 
 from predictor.compare import JACOBIAN, POPULATION, CompareSettings, paired_tests
 from predictor.config import CONFIG_DIR
-from predictor.ensemble import quantile
+from predictor.ensemble import band_of, quantile
 from predictor.errors import DataError
 from predictor.evaluate import (
     TuneSettings,
@@ -305,9 +305,12 @@ def test_network_intervals_are_calibrated_on_the_other_fold_only(evaluated):
         conformal["score"], (conformal["observed_ml"] - conformal["forecast_ml"]).abs()
         / conformal["scale_ml"],
     )  # fmt: skip
-    for (fold, region), rows in conformal.groupby(["fold", "region"]):
-        others = conformal[(conformal["fold"] != fold) & (conformal["region"] == region)]
-        expected, participants = quantile(others, LEVEL, seed=0, key=fold)
+    bands = band_of(conformal["years"])  # a quantile per horizon band (Mondrian)
+    for (fold, region, band), rows in conformal.groupby(["fold", "region", bands]):
+        others = conformal[
+            (conformal["fold"] != fold) & (conformal["region"] == region) & (bands == band)
+        ]
+        expected, participants = quantile(others, LEVEL, 0, fold, band)
         assert participants == others["participant_id"].nunique()
         np.testing.assert_array_equal(rows["quantile"], expected)
     shown = evaluation.coverage[evaluation.coverage["method"] == JACOBIAN]
