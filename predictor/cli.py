@@ -530,7 +530,10 @@ def calibrate(
     payload = run_calibration(source, model, level, seed)
     for region, qs in payload["quantiles"].items():
         each = zip(qs, payload["participants"][region], strict=True)
-        bands = "; ".join(f"{band_label(b)} q = {q:.3g} (n {n})" for b, (q, n) in enumerate(each))
+        bands = "; ".join(
+            f"{band_label(b)} q = {'none' if q is None else f'{q:.3g}'} (n {n})"
+            for b, (q, n) in enumerate(each)
+        )
         typer.echo(f"{region}: {bands}")
     if "note" in payload:
         typer.echo(f"note: {payload['note']}")

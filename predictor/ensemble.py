@@ -57,7 +57,7 @@ from predictor.modelstore import (
     read_model_json,
     write_ensemble_json,
 )
-from predictor.regression import LEVEL, conformal_quantile
+from predictor.regression import LEVEL, conformal_quantile, fewest_scores
 from predictor.rng import seeded_rng
 
 #: the evaluation's table of conformal scores (``Evaluation.conformal`` as a TSV)
@@ -143,6 +143,11 @@ def band_of(years, edges=BANDS_YEARS) -> np.ndarray:
     return np.searchsorted(np.asarray(edges, float), np.asarray(years, float), side="right")
 
 
+def band_labels(edges=BANDS_YEARS) -> list[str]:
+    """Every band in words, in order."""
+    return [band_label(band, edges) for band in range(len(edges) + 1)]
+
+
 def band_label(band: int, edges=BANDS_YEARS) -> str:
     """A band in words, e.g. '1.5-2.5 y'."""
     if band == 0:
@@ -221,9 +226,9 @@ def calibrate(
             "scales intervals differently; evaluate with the model's --members"
         )
     quantiles, counts = {}, {}
-    bands = band_of(scores["years"])
     for region, rows in scores.groupby("region", sort=False):
-        each = [quantile(rows[bands[rows.index] == band], level, seed, band)
+        bands = band_of(rows["years"])
+        each = [quantile(rows[bands == band], level, seed, band)
                 for band in range(len(BANDS_YEARS) + 1)]  # fmt: skip
         quantiles[region], counts[region] = [q for q, _ in each], [n for _, n in each]
     payload = {
@@ -243,8 +248,12 @@ def calibrate(
         bands = ", ".join(band_label(b) for b in endless)
         payload["note"] = (
             f"too few participants for a finite {level:g} interval at {bands} "
-            f"(a band needs at least {int(np.ceil(level / (1 - level)))} participants)"
+            f"(a band needs at least {fewest_scores(level)} participants)"
         )
+    # JSON has no NaN or infinity: a band without a finite quantile is stored as null
+    payload["quantiles"] = {
+        region: [q if q < np.inf else None for q in qs] for region, qs in quantiles.items()
+    }
     write_json(model / CALIBRATION, payload)
     return payload
 

@@ -56,7 +56,13 @@ from predictor.compare import (
     summarise,
 )
 from predictor.config import load_settings
-from predictor.ensemble import cross_fitted, score_table, train_members
+from predictor.ensemble import (
+    band_labels,
+    band_of,
+    cross_fitted,
+    score_table,
+    train_members,
+)
 from predictor.errors import DataError
 from predictor.files import write_json, write_tsv
 from predictor.longitudinal import noise_floor, observed_by_registration
@@ -491,7 +497,7 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
             "members": run["members"],
             "network_interval": (
                 "conformal, each fold calibrated on the other folds' participants, a quantile "
-                "per horizon band (<1.5, 1.5-2.5, 2.5-3.5, >=3.5 years)"
+                f"per horizon band ({', '.join(band_labels())})"
                 if not conformal.empty
                 else "none: single-member networks have no spread (evaluate --members 2 or more)"
             ),
@@ -628,11 +634,13 @@ def with_skill(headline: pd.DataFrame, skill: pd.DataFrame) -> pd.DataFrame:
 
 def coverage_table(pairs: pd.DataFrame, bounds: dict[str, np.ndarray], names) -> pd.DataFrame:
     """Share of pairs whose observed follow-up volume lies inside each method's interval,
-    overall, by horizon (whole years) and by diagnosis; the nominal level beside it."""
+    overall, by horizon (whole years), by the network's calibration band
+    (:data:`predictor.ensemble.BANDS_YEARS`) and by diagnosis; the nominal level beside it."""
     observed = pairs[[f"{r}_follow" for r in names]].to_numpy()
     horizon = horizon_bins(pairs["years"]).to_numpy()
+    band = np.asarray(band_labels(), dtype=object)[band_of(pairs["years"])]
     groups = [("all", np.full(len(pairs), "all"))]
-    groups += [("horizon", horizon), ("diagnosis", pairs["diagnosis"].to_numpy())]
+    groups += [("horizon", horizon), ("band", band), ("diagnosis", pairs["diagnosis"].to_numpy())]
     rows = []
     for method, interval in bounds.items():
         inside = (interval[..., 0] <= observed) & (observed <= interval[..., 1])

@@ -434,7 +434,7 @@ def volume_table(
             spread = float(each.std(ddof=1)) if len(each) > 1 else np.nan
             scale = float(interval_scale(spread, residual_var(model, region)))
             q = calibrated_quantile(calibration, region, t)
-            if calibration is not None and t > 0 and not q < np.inf:
+            if t > 0 and region in (calibration or {}).get("quantiles", {}) and not q < np.inf:
                 endless.add(t)
             half = q * scale
             row = {

@@ -164,7 +164,7 @@ def _provenance(result, model: Ensemble, input_checksum, identifiers, outputs) -
             "best_epoch": [m.info.best_epoch for m in model.members],
             "calibration": None if calibration is None else {
                 key: calibration.get(key)
-                for key in ("level", "method", "participants", "observed_change")
+                for key in ("level", "method", "bands_years", "participants", "observed_change")
             },
         },
         "input": {"file": result.scan.name, "sha256": input_checksum},

@@ -316,13 +316,19 @@ def read_calibration(folder: str | os.PathLike[str]) -> dict | None:
         return None
     try:
         raw = json.loads(path.read_text())
-        if "bands_years" not in raw:
-            raise ModelError(
-                f"{path}: one quantile for every horizon (an older version); run predictor "
-                "calibrate again"
-            )
+    except ValueError as error:
+        raise ModelError(f"{path}: not a calibration ({error})") from error
+    if isinstance(raw, dict) and "bands_years" not in raw:
+        raise ModelError(
+            f"{path}: one quantile for every horizon (an older version); run predictor "
+            "calibrate again"
+        )
+    try:
         raw["bands_years"] = [float(edge) for edge in raw["bands_years"]]
-        raw["quantiles"] = {str(r): [float(q) for q in qs] for r, qs in raw["quantiles"].items()}
+        raw["quantiles"] = {  # null: no finite quantile in that band
+            str(r): [float("nan") if q is None else float(q) for q in qs]
+            for r, qs in raw["quantiles"].items()
+        }
         if any(len(qs) != len(raw["bands_years"]) + 1 for qs in raw["quantiles"].values()):
             raise ValueError("a quantile list does not match the bands")
         raw["level"] = float(raw["level"])

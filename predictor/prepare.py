@@ -146,7 +146,17 @@ class PrepareSettings:
 
     @classmethod
     def from_dict(cls, stored: dict) -> PrepareSettings:
-        """Settings recorded by a run (e.g. in model.json), completed with today's defaults."""
+        """Settings recorded by a run (e.g. in model.json), completed with today's defaults.
+
+        ``[longitudinal] boundary_width_voxels`` of earlier versions is dropped: the band
+        is now each region's ``boundary`` setting, whose default (2 voxels, no trim) is
+        what that setting was.
+        """
+        stored = dict(stored)
+        if "boundary_width_voxels" in stored.get("longitudinal", {}):
+            longitudinal = dict(stored["longitudinal"])
+            longitudinal.pop("boundary_width_voxels")
+            stored["longitudinal"] = longitudinal
         return load_settings(cls, "prepare.toml", overrides=stored)
 
     def fingerprint(self) -> str:

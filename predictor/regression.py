@@ -170,10 +170,22 @@ def split_participants(participants: np.ndarray, share: float, seed: int):
 def conformal_quantile(scores: np.ndarray, level: float = LEVEL) -> float:
     """Split-conformal quantile: the ceil((n + 1) level)-th smallest score."""
     scores = np.sort(np.asarray(scores, dtype=float))
-    rank = int(np.ceil((len(scores) + 1) * level))
+    rank = _conformal_rank(len(scores), level)
     if rank > len(scores):
         return float("inf")
     return float(scores[rank - 1])
+
+
+def _conformal_rank(n: int, level: float) -> int:
+    return int(np.ceil((n + 1) * level))
+
+
+def fewest_scores(level: float = LEVEL) -> int:
+    """The fewest scores whose :func:`conformal_quantile` is finite at ``level``."""
+    n = 1
+    while _conformal_rank(n, level) > n:
+        n += 1
+    return n
 
 
 def horizon_scale(years) -> np.ndarray:

@@ -56,6 +56,10 @@ BAD_CONFIGS = {
                       r"\[regions.wm\] 'change': must be one of"),
     "regions-type": (RegionSet.from_toml, "[regions.wm]\nprior = 'yes'\n",
                      r"\[regions.wm\] 'prior': must be true or false"),
+    "regions-band": (RegionSet.from_toml,
+                     "[regions.brain]\nboundary = { outside = 'CSF', inside = 'GM', "
+                     "band_voxels = 0 }\n",
+                     r"\[regions.brain\] 'boundary': band_voxels must be an integer >= 1"),
     "regions-boundary": (RegionSet.from_toml,
                          "[regions.brain]\nboundary = { outside = 'CSF', inside = 'GM', "
                          "trim = 0.6 }\n",
@@ -90,6 +94,16 @@ def test_cli_reports_a_bad_config_in_one_line_with_exit_2(tmp_path):
     )
     assert result.exit_code == 2
     assert "Traceback" not in result.output and len(result.output.strip().splitlines()) == 1
+
+
+def test_prepare_settings_of_an_earlier_model_still_read():
+    # model.json of earlier versions records [longitudinal] boundary_width_voxels (now each
+    # region's boundary band, whose default of 2 voxels it was): it is dropped, not refused
+    from dataclasses import asdict
+
+    stored = asdict(PrepareSettings.from_toml())
+    stored["longitudinal"]["boundary_width_voxels"] = 2
+    assert PrepareSettings.from_dict(stored) == PrepareSettings.from_toml()
 
 
 def test_shipped_configs_read_and_hold_each_default_once():

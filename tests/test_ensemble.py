@@ -243,8 +243,10 @@ def test_train_members_then_calibrate_then_forecast(tiny_workspace, tmp_path):
     assert stored["members"] == 2 and stored["bands_years"] == [1.5, 2.5, 3.5]
     for region in regions:
         assert stored["participants"][region] == [0, 20, 0, 20]
-        assert stored["quantiles"][region][1::2] == [19.0, 190.0]
+        assert stored["quantiles"][region] == [None, 19.0, None, 190.0]  # null: no quantile
     assert "too few participants for a finite 0.9 interval at <1.5 y, 2.5-3.5 y" in result.output
+    assert "(a band needs at least 9 participants)" in result.output  # ceil(10 * 0.9) = 9
+    assert "<1.5 y q = none (n 0); 1.5-2.5 y q = 19 (n 20)" in result.output
     row = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t").iloc[0]
     calibrated = as_ensemble(folder)
     assert calibrated.calibration is not None

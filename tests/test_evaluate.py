@@ -137,6 +137,9 @@ def test_coverage_counts_pairs_inside_their_interval():
     assert table.loc[("all", "all"), "coverage"] == pytest.approx(2 / 3)
     assert table.loc[("diagnosis", "AD"), "coverage"] == 1.0
     assert table.loc[("horizon", "2 y"), "coverage"] == 0.0
+    # the network's calibration bands: 1.0, 1.2 (0.9 has no interval) below 1.5 years
+    assert table.loc[("band", "<1.5 y"), ["pairs", "coverage"]].tolist() == [2, 1.0]
+    assert table.loc[("band", "1.5-2.5 y"), "coverage"] == 0.0
 
 
 # --- a real cross-validation of the tiny workspace -------------------------------------------
@@ -314,7 +317,7 @@ def test_network_intervals_are_calibrated_on_the_other_fold_only(evaluated):
         assert participants == others["participant_id"].nunique()
         np.testing.assert_array_equal(rows["quantile"], expected)
     shown = evaluation.coverage[evaluation.coverage["method"] == JACOBIAN]
-    assert {"all", "horizon", "diagnosis"} <= set(shown["grouping"])
+    assert {"all", "horizon", "band", "diagnosis"} <= set(shown["grouping"])
     assert evaluation.data["members"] == 2
     assert "2 member(s) per fold): conformal" in (out / "evaluation.html").read_text()
 

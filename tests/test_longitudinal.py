@@ -114,6 +114,10 @@ def test_boundary_shift_of_a_noisy_translated_edge_with_and_without_trim(rng):
     short = 2 * sd / np.sqrt(2 * np.pi) / (inside - outside)
     assert untrimmed == pytest.approx(expected * (1 - short), rel=0.03)
     assert abs(untrimmed) < abs(trimmed)
+    # a window given the other way round (the ventricles': the outside tissue, WM, brighter
+    # than the inside, CSF) gets the sign right: the dark side, now the region, grows
+    bright_inside = boundary_shift(fixed, moved, *[~r for r in regions], [inside, outside], 4, 0.2)
+    assert bright_inside == pytest.approx(-expected, rel=0.03)
 
 
 def test_jacobian_filter_on_axis_aligned_fields_is_numpys_determinant(rng):
