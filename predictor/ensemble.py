@@ -242,6 +242,7 @@ def calibrate(
         "members": len(folders),
         "member_sha256": [read_model_json(path).weights_sha256 for path in folders],
         "seed": seed,
+        "coverage_by_diagnosis": measured_coverage(evaluation, level, data.get("level")),
     }
     endless = sorted({b for qs in quantiles.values() for b, q in enumerate(qs) if not q < np.inf})
     if endless:
@@ -256,6 +257,42 @@ def calibrate(
     }
     write_json(model / CALIBRATION, payload)
     return payload
+
+
+def measured_coverage(evaluation: Path, level: float, evaluated_level) -> dict:
+    """Diagnosis -> region -> the coverage the evaluation measured for the network's
+    cross-fitted intervals (``coverage.tsv``); empty where it has none or measured
+    another level. Coverage is marginal over diagnoses: this says where it misses."""
+    from predictor.compare import JACOBIAN
+
+    path = evaluation / "coverage.tsv"
+    if evaluated_level != level or not path.is_file():
+        return {}
+    table = pd.read_csv(path, sep="\t", dtype={"group": str})
+    rows = table[(table["method"] == JACOBIAN) & (table["grouping"] == "diagnosis")]
+    return {
+        diagnosis: dict(zip(group["region"], group["coverage"].astype(float), strict=True))
+        for diagnosis, group in rows.groupby("group")
+    }
+
+
+def coverage_note(calibration: dict | None, diagnosis: str, margin: float = 0.05) -> str | None:
+    """A warning where held-out participants of ``diagnosis`` were covered more than
+    ``margin`` away from the level in the evaluation the calibration came from (85-95%
+    for 90%, the tolerance of common practice); None otherwise."""
+    if calibration is None:
+        return None
+    measured = calibration.get("coverage_by_diagnosis", {}).get(diagnosis, {})
+    level = calibration["level"]
+    off = {region: c for region, c in measured.items() if abs(c - level) > margin}
+    if not off:
+        return None
+    shown = ", ".join(f"{region} {100 * c:.0f}%" for region, c in off.items())
+    return (
+        f"the network's {100 * level:g}% intervals covered held-out {diagnosis} participants' "
+        f"follow-ups at {shown} in the evaluation they were calibrated on: for {diagnosis} "
+        "read them as too narrow where below, too wide where above"
+    )
 
 
 def calibrated_quantile(calibration: dict | None, region: str, years: float) -> float:

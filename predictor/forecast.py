@@ -46,6 +46,7 @@ from predictor.ensemble import (
     band_label,
     band_of,
     calibrated_quantile,
+    coverage_note,
     interval_scale,
     residual_var,
     uncalibrated_note,
@@ -469,6 +470,8 @@ def volume_table(
                         f"{mean - Z95 * true_sd:.2f}-{mean + Z95 * true_sd:.2f} mL"
                     )
             rows.append(row)
+    off = coverage_note(calibration, diagnosis)
+    notes += [off] if off else []
     for t in sorted(endless):
         edges = calibration["bands_years"]
         notes.append(

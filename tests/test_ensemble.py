@@ -17,6 +17,7 @@ from predictor.config import CONFIG_DIR
 from predictor.ensemble import (
     band_of,
     calibrate,
+    coverage_note,
     cross_fitted,
     interval_scale,
     one_per_participant,
@@ -107,6 +108,21 @@ def test_each_horizon_band_is_calibrated_on_its_own_scores():
     assert list(band_of([0.5, 1.5, 2.0, 3.49, 3.5, 9.0])) == [0, 1, 1, 2, 3, 3]
     assert set(table.loc[table["years"] == 1.0, "quantile"]) == {8.0}
     assert set(table.loc[table["years"] == 4.0, "quantile"]) == {80.0}
+
+
+def test_a_diagnosis_covered_off_the_level_is_named():
+    # 85-95% for a 90% interval is within tolerance; AD at 70% and CN at 100% are not
+    calibration = {"level": 0.9, "coverage_by_diagnosis": {
+        "MCI": {"brain": 0.86, "ventricles": 0.94},
+        "AD": {"brain": 0.70, "ventricles": 0.88},
+        "CN": {"brain": 1.0, "ventricles": 0.97},
+    }}  # fmt: skip
+    assert coverage_note(calibration, "MCI") is None
+    assert coverage_note(calibration, "other") is None  # a diagnosis it did not measure
+    assert coverage_note(None, "AD") is None
+    ad = coverage_note(calibration, "AD")
+    assert "held-out AD participants' follow-ups at brain 70%" in ad and "ventricles" not in ad
+    assert "brain 100%, ventricles 97%" in coverage_note(calibration, "CN")
 
 
 def test_scale_adds_the_member_spread_to_the_observation_noise():
@@ -235,8 +251,16 @@ def test_train_members_then_calibrate_then_forecast(tiny_workspace, tmp_path):
     with pytest.raises(DataError, match="fold ensembles of 3 members and this model has 2"):
         calibrate(evaluation, folder)
     (evaluation / "evaluation.json").write_text(
-        json.dumps({"members": 2, "observed_change": "segmentation"})
+        json.dumps({"members": 2, "observed_change": "segmentation", "level": 0.9})
     )
+    # the evaluation's measured coverage of the network's intervals: the forecast
+    # participant's diagnosis at 70% in every region (a warning), the others at 90%
+    row = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t").iloc[0]
+    pd.DataFrame(
+        [{"method": "network-jacobian", "region": r, "grouping": "diagnosis", "group": dx,
+          "coverage": 0.7 if dx == row.diagnosis else 0.9}
+         for r in regions for dx in ("CN", "MCI", "AD", row.diagnosis)]
+    ).drop_duplicates().to_csv(evaluation / "coverage.tsv", sep="\t", index=False)  # fmt: skip
     result = CliRunner().invoke(app, ["calibrate", str(folder), "--from", str(evaluation)])
     assert result.exit_code == 0, result.output
     stored = json.loads((folder / "calibration.json").read_text())
@@ -247,7 +271,7 @@ def test_train_members_then_calibrate_then_forecast(tiny_workspace, tmp_path):
     assert "too few participants for a finite 0.9 interval at <1.5 y, 2.5-3.5 y" in result.output
     assert "(a band needs at least 9 participants)" in result.output  # ceil(10 * 0.9) = 9
     assert "<1.5 y q = none (n 0); 1.5-2.5 y q = 19 (n 20)" in result.output
-    row = pd.read_csv(tiny_workspace / "cohort.tsv", sep="\t").iloc[0]
+    assert stored["coverage_by_diagnosis"][row.diagnosis]["brain"] == 0.7
     calibrated = as_ensemble(folder)
     assert calibrated.calibration is not None
     out = forecast(calibrated, row.image, row.age, row.sex, row.diagnosis, [2.0, 4.0, 3.0])
@@ -259,6 +283,7 @@ def test_train_members_then_calibrate_then_forecast(tiny_workspace, tmp_path):
         2.0, level="years"), 19.0)  # fmt: skip
     assert table.xs(3.0, level="years")["network_lower_ml"].isna().all()
     assert any("no finite interval for some regions at 3 years" in w for w in out.warnings)
+    assert any(f"held-out {row.diagnosis} participants' follow-ups at" in w for w in out.warnings)
     provenance = write_forecast(out, calibrated, tmp_path / "forecast", "scan", "abc")
     assert "scan_desc-forecast24mo_logjacobiansd.nii.gz" in provenance["outputs"]
     assert provenance["model"]["members"] == 2
