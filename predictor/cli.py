@@ -117,6 +117,14 @@ RegionsOption = Annotated[
         "volumes in mL)."
     ),
 ]
+SettingsOption = Annotated[
+    Path | None,
+    typer.Option(
+        "--settings",
+        help="Comparison TOML laid over configs/compare.toml: primary endpoint, CI level, "
+        "observed change, conformal horizon bands (years).",
+    ),
+]
 CohortConfigOption = Annotated[
     Path | None,
     typer.Option(help="Cohort coding TOML (diagnosis labels, sex codes, ages in years) laid "
@@ -415,6 +423,7 @@ def compare(
         ),
     ] = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print the verdicts as JSON.")] = False,
+    settings: SettingsOption = None,
 ) -> None:
     """Compare the network with the regression forecasters on held-out participants.
 
@@ -425,12 +434,16 @@ def compare(
     """
     import json
 
+    from predictor.compare import CompareSettings
     from predictor.compare import compare as run_comparison
     from predictor.report import write_report
 
+    judged = CompareSettings.from_toml(settings)
     progress, advance = progress_bar("test participants", None)
     with progress:
-        comparison = run_comparison(model, work, jobs, seed, advance, population=population)
+        comparison = run_comparison(
+            model, work, jobs, seed, advance, settings=judged, population=population
+        )
     page = write_report(comparison, out)
     if as_json:
         typer.echo(json.dumps(comparison.tests.to_dict("records"), indent=2))
@@ -472,6 +485,7 @@ def evaluate(
                      "field (2K trainings per fold); 2 or more gives conformal intervals and "
                      "conformal.tsv."),
     ] = 1,
+    settings: SettingsOption = None,
 ) -> None:
     """Cross-validate the network against the population field and the regressions.
 
@@ -481,18 +495,21 @@ def evaluate(
     stopping, fits every regression on the same folds, and forecasts its own
     participants' pairs. Rerunning continues a killed run. Errors are in % of
     total brain volume; statistics are per participant (cluster bootstrap CIs,
-    sign tests, Holm); the primary endpoint is named in configs/compare.toml.
+    sign tests, Holm); the primary endpoint is named in configs/compare.toml
+    (or --settings).
     """
+    from predictor.compare import CompareSettings
     from predictor.evaluate import TuneSettings
     from predictor.evaluate import evaluate as run_evaluation
     from predictor.evaluation_report import write_evaluation
     from predictor.training import TrainConfig
 
+    judged = CompareSettings.from_toml(settings)
     progress, advance = progress_bar("held-out participants", None)
     with progress:
         evaluation = run_evaluation(
             work, out, folds, TrainConfig.from_toml(config), fold, jobs, seed,
-            measure=scan_volumes, progress=advance,
+            settings=judged, measure=scan_volumes, progress=advance,
             tune=TuneSettings.from_toml() if tune else None, members=members,
         )  # fmt: skip
     if evaluation is None:
@@ -521,7 +538,8 @@ def calibrate(
     |observed - forecast| / sqrt(member SD^2 + prior residual variance) (mL / mL),
     one pair per participant; the interval is the forecast +- the scores'
     conformal quantile times that scale, the quantile taken apart in each horizon
-    band (<1.5, 1.5-2.5, 2.5-3.5, >=3.5 years). Writes MODEL/calibration.json;
+    band (the evaluation's: interval_bands_years of its comparison settings; by
+    default <1.5, 1.5-2.5, 2.5-3.5, >=3.5 years). Writes MODEL/calibration.json;
     forecasts then carry network_lower_ml and network_upper_ml.
     """
     from predictor.ensemble import band_label
@@ -531,7 +549,8 @@ def calibrate(
     for region, qs in payload["quantiles"].items():
         each = zip(qs, payload["participants"][region], strict=True)
         bands = "; ".join(
-            f"{band_label(b)} q = {'none' if q is None else f'{q:.3g}'} (n {n})"
+            f"{band_label(b, payload['bands_years'])} q = {'none' if q is None else f'{q:.3g}'} "
+            f"(n {n})"
             for b, (q, n) in enumerate(each)
         )
         typer.echo(f"{region}: {bands}")

@@ -501,8 +501,17 @@ class CompareSettings:
     level: float
     bootstrap: int
     observed_change: str  # "registration" (changes.tsv) or "segmentation" (volumes.tsv)
+    interval_bands_years: tuple[float, ...]  # upper edges of the conformal horizon bands
 
     def __post_init__(self):
+        edges = np.asarray(self.interval_bands_years, dtype=float)
+        if not len(edges) or not np.isfinite(edges).all() or (edges <= 0).any() or (
+            np.diff(edges) <= 0
+        ).any():
+            raise ValueError(
+                "'interval_bands_years' must be positive and increasing, got "
+                f"{list(self.interval_bands_years)}"
+            )
         if self.observed_change not in ("registration", "segmentation"):
             raise ValueError(
                 f"'observed_change' must be 'registration' or 'segmentation', "

@@ -20,8 +20,9 @@ scores. Scores count once per participant: one pair per participant is drawn at
 random (seeded), the subsampling method of Dunn, Wasserman and Ramdas (JASA 2023),
 so that, for exchangeable participants, a new participant's random pair is
 covered at the level. The quantile is taken apart in each horizon band
-(:data:`BANDS_YEARS`; Mondrian conformal prediction, Vovk, Gammerman and Shafer
-2005, "Algorithmic Learning in a Random World", chapter 4): the scale above hardly
+(``interval_bands_years`` of ``configs/compare.toml``; Mondrian conformal prediction,
+Vovk, Gammerman and Shafer 2005, "Algorithmic Learning in a Random World", chapter 4):
+the scale above hardly
 grows with the horizon while the error does, so one quantile for every horizon
 over-covers short horizons and under-covers long ones (measured on the demo's
 evaluation: 100% at 1 year, 52-61% at 5). A participant counts once per band. The
@@ -67,8 +68,6 @@ METHOD = (
     "residual variance), one pair per participant (Dunn et al. 2023, JASA), a quantile "
     "per horizon band (Mondrian, Vovk et al. 2005)"
 )
-#: upper edges (years) of the horizon bands calibrated apart: <1.5, 1.5-2.5, 2.5-3.5, >=3.5
-BANDS_YEARS = (1.5, 2.5, 3.5)
 
 
 # --- members --------------------------------------------------------------------------------
@@ -137,18 +136,18 @@ def one_per_participant(participants, seed: int, *key: int) -> np.ndarray:
     return np.sort(np.asarray(chosen, dtype=int))
 
 
-def band_of(years, edges=BANDS_YEARS) -> np.ndarray:
+def band_of(years, edges) -> np.ndarray:
     """Horizon band index of each horizon (years): 0 below the first edge, len(edges) at or
     above the last."""
     return np.searchsorted(np.asarray(edges, float), np.asarray(years, float), side="right")
 
 
-def band_labels(edges=BANDS_YEARS) -> list[str]:
+def band_labels(edges) -> list[str]:
     """Every band in words, in order."""
     return [band_label(band, edges) for band in range(len(edges) + 1)]
 
 
-def band_label(band: int, edges=BANDS_YEARS) -> str:
+def band_label(band: int, edges) -> str:
     """A band in words, e.g. '1.5-2.5 y'."""
     if band == 0:
         return f"<{edges[0]:g} y"
@@ -177,11 +176,11 @@ def score_table(forecasts: pd.DataFrame) -> pd.DataFrame:
     return forecasts.assign(score=error / forecasts["scale_ml"])
 
 
-def cross_fitted(scores: pd.DataFrame, level: float, seed: int) -> pd.DataFrame:
-    """Each fold's intervals from the other folds' scores in the same horizon band (so no
-    participant calibrates its own interval): ``scores`` gains ``quantile``, ``lower_ml``
-    and ``upper_ml``."""
-    bands = band_of(scores["years"])
+def cross_fitted(scores: pd.DataFrame, level: float, seed: int, edges) -> pd.DataFrame:
+    """Each fold's intervals from the other folds' scores in the same horizon band (upper
+    ``edges``, years; so no participant calibrates its own interval): ``scores`` gains
+    ``quantile``, ``lower_ml`` and ``upper_ml``."""
+    bands = band_of(scores["years"], edges)
     out = scores.assign(quantile=np.nan)
     for (fold, region, band), rows in scores.groupby(["fold", "region", bands]):
         others = scores[(scores["fold"] != fold) & (scores["region"] == region) & (bands == band)]
@@ -213,6 +212,12 @@ def calibrate(
     if scores.empty:
         raise DataError(f"{path}: holds no scores (its folds had single-member networks)")
     data = json.loads((evaluation / "evaluation.json").read_text())
+    if "bands_years" not in data:
+        raise DataError(
+            f"{evaluation}: evaluated without horizon bands (an older version); run "
+            "predictor evaluate on it again (finished folds are reused)"
+        )
+    edges = [float(edge) for edge in data["bands_years"]]
     folders = member_folders(model)
     if len(folders) < 2:
         raise DataError(
@@ -227,13 +232,13 @@ def calibrate(
         )
     quantiles, counts = {}, {}
     for region, rows in scores.groupby("region", sort=False):
-        bands = band_of(rows["years"])
+        bands = band_of(rows["years"], edges)
         each = [quantile(rows[bands == band], level, seed, band)
-                for band in range(len(BANDS_YEARS) + 1)]  # fmt: skip
+                for band in range(len(edges) + 1)]  # fmt: skip
         quantiles[region], counts[region] = [q for q, _ in each], [n for _, n in each]
     payload = {
         "level": level,
-        "bands_years": list(BANDS_YEARS),
+        "bands_years": edges,
         "quantiles": quantiles,
         "participants": counts,
         "method": METHOD,
@@ -246,7 +251,7 @@ def calibrate(
     }
     endless = sorted({b for qs in quantiles.values() for b, q in enumerate(qs) if not q < np.inf})
     if endless:
-        bands = ", ".join(band_label(b) for b in endless)
+        bands = ", ".join(band_label(b, edges) for b in endless)
         payload["note"] = (
             f"too few participants for a finite {level:g} interval at {bands} "
             f"(a band needs at least {fewest_scores(level)} participants)"

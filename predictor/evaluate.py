@@ -432,7 +432,8 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
                 [wide[c].reindex(index=keys, columns=names).to_numpy()
                  for c in ("lower_ml", "upper_ml")], -1,
             )  # fmt: skip
-    conformal = conformal_scores(forecasts, pairs, names, seed)
+    edges = settings.interval_bands_years
+    conformal = conformal_scores(forecasts, pairs, names, seed, edges)
     if not conformal.empty:
         wide = conformal.pivot(index=["base_key", "follow_key"], columns="region")
         bounds[JACOBIAN] = np.stack(
@@ -474,7 +475,7 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
         tests=tests,
         headlines=with_skill(headlines(tests), skill),
         skill=skill,
-        coverage=coverage_table(pairs, bounds, names),
+        coverage=coverage_table(pairs, bounds, names, edges),
         conformal=conformal,
         by_horizon=grouped(errors.assign(horizon=horizon_bins(errors["years"])), "horizon"),
         by_diagnosis=grouped(errors, "diagnosis"),
@@ -495,9 +496,10 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
             "not_fitted": not_fitted,
             "tuning": tuning,
             "members": run["members"],
+            "bands_years": list(edges),
             "network_interval": (
                 "conformal, each fold calibrated on the other folds' participants, a quantile "
-                f"per horizon band ({', '.join(band_labels())})"
+                f"per horizon band ({', '.join(band_labels(edges))})"
                 if not conformal.empty
                 else "none: single-member networks have no spread (evaluate --members 2 or more)"
             ),
@@ -524,7 +526,7 @@ def run_summary(out: Path, workspace) -> dict:
     }
 
 
-def conformal_scores(forecasts: pd.DataFrame, pairs: pd.DataFrame, names, seed: int):
+def conformal_scores(forecasts: pd.DataFrame, pairs: pd.DataFrame, names, seed: int, edges):
     """The network's held-out conformal scores (its Jacobian volumes against the observed
     follow-ups) with each fold's cross-fitted interval (:func:`predictor.ensemble.cross_fitted`);
     empty where the folds' networks had one member (no scale)."""
@@ -541,7 +543,7 @@ def conformal_scores(forecasts: pd.DataFrame, pairs: pd.DataFrame, names, seed: 
     table = rows.merge(observed, on=["base_key", "follow_key", "region"], validate="one_to_one")
     columns = ["participant_id", "fold", "diagnosis", "base_key", "follow_key", "years",
                "region", "forecast_ml", "observed_ml", "scale_ml"]  # fmt: skip
-    return cross_fitted(score_table(table[columns]), LEVEL, seed).reset_index(drop=True)
+    return cross_fitted(score_table(table[columns]), LEVEL, seed, edges).reset_index(drop=True)
 
 
 # --- subject-specific skill and coverage ---------------------------------------------------
@@ -632,13 +634,15 @@ def with_skill(headline: pd.DataFrame, skill: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
-def coverage_table(pairs: pd.DataFrame, bounds: dict[str, np.ndarray], names) -> pd.DataFrame:
+def coverage_table(
+    pairs: pd.DataFrame, bounds: dict[str, np.ndarray], names, edges
+) -> pd.DataFrame:
     """Share of pairs whose observed follow-up volume lies inside each method's interval,
-    overall, by horizon (whole years), by the network's calibration band
-    (:data:`predictor.ensemble.BANDS_YEARS`) and by diagnosis; the nominal level beside it."""
+    overall, by horizon (whole years), by the network's calibration band (upper
+    ``edges``, years) and by diagnosis; the nominal level beside it."""
     observed = pairs[[f"{r}_follow" for r in names]].to_numpy()
     horizon = horizon_bins(pairs["years"]).to_numpy()
-    band = np.asarray(band_labels(), dtype=object)[band_of(pairs["years"])]
+    band = np.asarray(band_labels(edges), dtype=object)[band_of(pairs["years"], edges)]
     groups = [("all", np.full(len(pairs), "all"))]
     groups += [("horizon", horizon), ("band", band), ("diagnosis", pairs["diagnosis"].to_numpy())]
     rows = []

@@ -208,6 +208,7 @@ def test_participant_level_tests_count_each_participant_once():
         level=0.95,
         bootstrap=2000,
         observed_change="registration",
+        interval_bands_years=(1.5,),
     )
     tests = paired_tests(errors, ["hippocampus_left", "ventricles"], [], settings, seed=0)
     row = tests[(tests["network"] == "network") & (tests["region"] == "hippocampus_left")].iloc[0]
@@ -233,7 +234,8 @@ def test_participant_level_tests_count_each_participant_once():
     assert secondary["holm_p"].iloc[0] == pytest.approx(expected)
     with pytest.raises(DataError, match="primary region 'wm' is not a target region"):
         paired_tests(errors, ["hippocampus_left", "ventricles"], [],
-                     CompareSettings("wm", 0.95, 2000, "registration"), seed=0)  # fmt: skip
+                     CompareSettings("wm", 0.95, 2000, "registration", (1.5,)),
+                     seed=0)  # fmt: skip
 
 
 def test_cluster_bootstrap_ci_against_a_hand_case(rng):

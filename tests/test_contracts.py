@@ -68,6 +68,9 @@ BAD_CONFIGS = {
                         r"'primary': unknown key \(did you mean 'primary_region'"),
     "compare-value": (lambda path: CompareSettings.from_toml(path), "level = 1.5\n",
                       r"'level' must be within"),
+    "compare-bands": (lambda path: CompareSettings.from_toml(path),
+                      "interval_bands_years = [2.0, 1.0]\n",
+                      r"'interval_bands_years' must be positive and increasing"),
     "demo-unknown": (lambda path: DemoSettings.from_toml(True, path), "[quick]\nepoch = 2\n",
                      r"\[quick\] 'epoch': unknown key \(did you mean 'epochs'"),
     "demo-type": (lambda path: DemoSettings.from_toml(True, path), "[quick]\nseed = 1.5\n",
@@ -94,6 +97,18 @@ def test_cli_reports_a_bad_config_in_one_line_with_exit_2(tmp_path):
     )
     assert result.exit_code == 2
     assert "Traceback" not in result.output and len(result.output.strip().splitlines()) == 1
+
+
+def test_evaluate_and_compare_read_their_settings_file(tmp_path):
+    path = tmp_path / "compare.toml"
+    path.write_text("interval_bands_years = [3.0, 2.0]\n")
+    for command in (["evaluate", str(tmp_path / "w"), str(tmp_path / "cv")],
+                    ["compare", str(tmp_path / "m"), str(tmp_path / "w"), str(tmp_path / "r")]):
+        result = CliRunner().invoke(app, [*command, "--settings", str(path)])
+        assert result.exit_code == 2, result.output
+        assert "interval_bands_years" in result.output and str(path) in result.output
+        assert len(result.output.strip().splitlines()) == 1
+    assert not (tmp_path / "cv").exists() and not (tmp_path / "r").exists()
 
 
 def test_prepare_settings_of_an_earlier_model_still_read():

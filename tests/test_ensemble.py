@@ -88,7 +88,7 @@ def test_an_infinite_score_counts_and_a_missing_one_does_not():
 def test_each_fold_is_calibrated_on_the_other_folds_only():
     first = _scores({f"a{i}": [float(i)] for i in range(1, 10)}, fold=1)  # scores 1..9
     second = _scores({f"b{i}": [10.0 * i] for i in range(1, 10)}, fold=2)  # 10..90
-    table = cross_fitted(pd.concat([first, second], ignore_index=True), 0.8, seed=0)
+    table = cross_fitted(pd.concat([first, second], ignore_index=True), 0.8, 0, (1.5, 2.5, 3.5))
     # n = 9: the ceil(10 * 0.8) = 8th smallest of the other fold's scores
     assert set(table.loc[table["fold"] == 1, "quantile"]) == {80.0}
     assert set(table.loc[table["fold"] == 2, "quantile"]) == {8.0}
@@ -104,8 +104,8 @@ def test_each_horizon_band_is_calibrated_on_its_own_scores():
         for k, f in ((1, "a"), (2, "b"))
         for years, factor in ((1.0, 1.0), (4.0, 10.0))
     ]
-    table = cross_fitted(pd.concat(parts, ignore_index=True), 0.8, seed=0)
-    assert list(band_of([0.5, 1.5, 2.0, 3.49, 3.5, 9.0])) == [0, 1, 1, 2, 3, 3]
+    table = cross_fitted(pd.concat(parts, ignore_index=True), 0.8, 0, (1.5, 2.5, 3.5))
+    assert list(band_of([0.5, 1.5, 2.0, 3.49, 3.5, 9.0], (1.5, 2.5, 3.5))) == [0, 1, 1, 2, 3, 3]
     assert set(table.loc[table["years"] == 1.0, "quantile"]) == {8.0}
     assert set(table.loc[table["years"] == 4.0, "quantile"]) == {80.0}
 
@@ -246,12 +246,15 @@ def test_train_members_then_calibrate_then_forecast(tiny_workspace, tmp_path):
     evaluation.mkdir()
     scores.to_csv(evaluation / "conformal.tsv", sep="\t", index=False)
     (evaluation / "evaluation.json").write_text(
-        json.dumps({"members": 3, "observed_change": "segmentation"})
+        json.dumps(
+            {"members": 3, "observed_change": "segmentation", "bands_years": [1.5, 2.5, 3.5]}
+        )
     )
     with pytest.raises(DataError, match="fold ensembles of 3 members and this model has 2"):
         calibrate(evaluation, folder)
     (evaluation / "evaluation.json").write_text(
-        json.dumps({"members": 2, "observed_change": "segmentation", "level": 0.9})
+        json.dumps({"members": 2, "observed_change": "segmentation", "level": 0.9,
+                    "bands_years": [1.5, 2.5, 3.5]})  # fmt: skip
     )
     # the evaluation's measured coverage of the network's intervals: the forecast
     # participant's diagnosis at 70% in every region (a warning), the others at 90%
@@ -311,6 +314,9 @@ def test_calibrate_refuses_what_it_cannot_use(stand_in_model, tmp_path):
         calibrate(tmp_path, stand_in_model)
     _scores({"a": [1.0]}).to_csv(tmp_path / "conformal.tsv", sep="\t", index=False)
     (tmp_path / "evaluation.json").write_text(json.dumps({"members": 2}))
+    with pytest.raises(DataError, match="evaluated without horizon bands"):
+        calibrate(tmp_path, stand_in_model)
+    (tmp_path / "evaluation.json").write_text(json.dumps({"members": 2, "bands_years": [2.0]}))
     with pytest.raises(DataError, match="single-member model has no spread"):
         calibrate(tmp_path, stand_in_model)
     with pytest.raises(DataError, match="--level must be within"):

@@ -37,7 +37,7 @@ from predictor.evaluation_report import write_evaluation
 from predictor.regression import LEVEL
 from predictor.training import TrainConfig
 
-SETTINGS = CompareSettings("hippocampus_left", 0.95, 500, "registration")
+SETTINGS = CompareSettings("hippocampus_left", 0.95, 500, "registration", (1.5, 2.5, 3.5))
 
 
 def _volumes(counts: dict[str, int], visits: int = 3) -> pd.DataFrame:
@@ -132,7 +132,7 @@ def test_coverage_counts_pairs_inside_their_interval():
         "years": [1.0, 2.1, 1.2, 0.9], "wm_follow": [10.0, 9.0, 8.0, 7.0],
     })  # fmt: skip
     bounds = {"ridge": np.array([[[9.5, 10.5]], [[9.5, 10.5]], [[7.0, 8.0]], [[np.nan, 8]]])}
-    table = coverage_table(pairs, bounds, ["wm"]).set_index(["grouping", "group"])
+    table = coverage_table(pairs, bounds, ["wm"], (1.5, 2.5, 3.5)).set_index(["grouping", "group"])
     assert table.loc[("all", "all"), "pairs"] == 3  # the NaN interval is not counted
     assert table.loc[("all", "all"), "coverage"] == pytest.approx(2 / 3)
     assert table.loc[("diagnosis", "AD"), "coverage"] == 1.0
@@ -308,7 +308,9 @@ def test_network_intervals_are_calibrated_on_the_other_fold_only(evaluated):
         conformal["score"], (conformal["observed_ml"] - conformal["forecast_ml"]).abs()
         / conformal["scale_ml"],
     )  # fmt: skip
-    bands = band_of(conformal["years"])  # a quantile per horizon band (Mondrian)
+    edges = evaluation.data["bands_years"]  # a quantile per horizon band (Mondrian)
+    assert edges == list(CompareSettings.from_toml().interval_bands_years)
+    bands = band_of(conformal["years"], edges)
     for (fold, region, band), rows in conformal.groupby(["fold", "region", bands]):
         others = conformal[
             (conformal["fold"] != fold) & (conformal["region"] == region) & (bands == band)
