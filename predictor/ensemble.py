@@ -22,11 +22,11 @@ so that, for exchangeable participants, a new participant's random pair is
 covered at the level. The quantile is taken apart in each horizon band
 (``interval_bands_years`` of ``configs/compare.toml``; Mondrian conformal prediction,
 Vovk, Gammerman and Shafer 2005, "Algorithmic Learning in a Random World", chapter 4):
-the scale above hardly
-grows with the horizon while the error does, so one quantile for every horizon
-over-covers short horizons and under-covers long ones (measured on the demo's
-evaluation: 100% at 1 year, 52-61% at 5). A participant counts once per band. The
-coverage is still marginal over diagnoses (measured there: AD under-covered). The scores
+the scale above hardly grows with the horizon while the error does, so one quantile
+for every horizon over-covers short horizons and under-covers long ones (measured on
+the demo's evaluation: 100% at 1 year, 52-61% at 5). A participant counts once per
+band. The coverage is still marginal over diagnoses (measured: AD under-covered;
+:func:`coverage_note` says so in a forecast). The scores
 come from ``predictor evaluate --members K`` (every score from a fold ensemble that
 never saw the participant); ``evaluate`` scores each fold with quantiles from the
 other folds, and ``predictor calibrate`` stores the quantiles in the MODEL folder.
