@@ -152,6 +152,14 @@ def prepare(
     ] = None,
     regions: RegionsOption = None,
     cohort_config: CohortConfigOption = None,
+    covariates: Annotated[
+        Path | None,
+        typer.Option(
+            help="TOML of [covariates.NAME] tables (kind numeric with unit and range, or "
+            "categorical with levels; missing = true/false) read from the cohort's columns, "
+            "laid over the cohort coding's."
+        ),
+    ] = None,
 ) -> None:
     """Preprocess, segment and measure every scan of a cohort into WORK.
 
@@ -168,7 +176,7 @@ def prepare(
     from predictor.prepare import PrepareSettings, parse_shard, prepare_cohort, scan_count
     from predictor.regions import RegionSet
 
-    coding = CohortSettings.from_toml(cohort_config)
+    coding = CohortSettings.from_toml(cohort_config, covariates)
     region_set = RegionSet.from_toml(regions)
     table = read_cohort(cohort, settings=coding, allow_outside=allow_outside)
     settings = PrepareSettings.from_toml(config, grid_mm=grid_mm)
@@ -234,7 +242,7 @@ def volumes(
             [{"image": scan.name} | measured.volumes | percent_of_brain(measured.volumes)]
         )
     if as_json:
-        typer.echo(json.dumps(table.to_dict("records"), indent=2))
+        typer.echo(json.dumps(json_records(table), indent=2))
     else:
         typer.echo(table.round(3).to_string(index=False))
 
@@ -336,6 +344,13 @@ def forecast(
     diagnosis: Annotated[
         str | None, typer.Option(help="Diagnosis label (configs/cohort.toml), e.g. CN, MCI, AD.")
     ] = None,
+    covariate: Annotated[
+        list[str] | None,
+        typer.Option(
+            help="NAME=VALUE of a covariate the model was trained with, at the scan (in its "
+            "declared unit or level; n/a where it may be missing). Repeat for each."
+        ),
+    ] = None,
     cohort: Annotated[
         Path | None, typer.Option(help="BIDS folder or cohort table: forecast every participant.")
     ] = None,
@@ -352,20 +367,24 @@ def forecast(
     resolution, its log-Jacobian map (log volume ratio, < 0 = shrinkage), the
     displacement field (RAS mm), an overview PNG, and a table of regional
     volumes (mL; change in mL and % per year) from the network and from the
-    mixed-effects prior with its 90% interval. A rerun skips complete scans.
+    mixed-effects prior with its 90% interval. A model trained with covariates needs
+    each as --covariate NAME=VALUE (or a column of the --cohort table). A rerun skips
+    complete scans.
     """
     import json
 
     import pandas as pd
 
     from predictor.forecast_io import VOLUMES, forecast_cohort, forecast_one, scan_stem
+    from predictor.modelstore import member_folders, read_model_json
 
+    # the codes and covariates the model (its first member) was trained with
+    coding = read_model_json(member_folders(model)[0]).coding
     if cohort is not None:
         from predictor.cohort import read_cohort
-        from predictor.modelstore import member_folders, read_model_json
 
-        # the codes the model (its first member) was trained with
-        coding = read_model_json(member_folders(model)[0]).coding
+        if covariate:
+            raise typer.BadParameter("with --cohort, covariates come from the cohort's columns")
         table = read_cohort(cohort, settings=coding, allow_outside=allow_outside)
         count = table["participant_id"].nunique() if session is None else None
         progress, advance = progress_bar("forecasting", count)
@@ -391,10 +410,15 @@ def forecast(
             "give SCAN with --age, --sex and --diagnosis, or --cohort"
             + (f" (missing {', '.join(missing)})" if scan is not None else "")
         )
-    provenance, skipped = forecast_one(model, scan, age, sex, diagnosis, years, out)
+    from predictor.covariates import parse_assignments
+
+    values = parse_assignments(covariate or [], coding.covariates)
+    provenance, skipped = forecast_one(
+        model, scan, age, sex, diagnosis, years, out, covariates=values
+    )
     table = pd.read_csv(out / f"{scan_stem(scan.name)}_{VOLUMES}", sep="\t")
     if as_json:
-        typer.echo(json.dumps(table.to_dict("records"), indent=2))
+        typer.echo(json.dumps(json_records(table), indent=2))
     else:
         shown = table[table["years"] > 0][
             ["region", "years", "baseline_ml", "network_ml", "network_percent_per_year",
@@ -573,6 +597,86 @@ def evaluation_text(evaluation) -> str:
     return "\n".join(lines)
 
 
+@app.command()
+@reports_errors
+def view(
+    folder: Annotated[Path, typer.Argument(help="A forecast output folder (searched through).")],
+    scan: Annotated[
+        Path, typer.Option(help="The baseline T1w NIfTI the forecast was made from.")
+    ],
+) -> None:
+    """Write the progression viewer of an earlier forecast: one HTML page that opens offline
+    (three movable planes, a slider over horizons in years, scan / difference /
+    log-Jacobian / uncertainty with colour bars, the regional trajectories) and a GIF of
+    the mid-planes for slides, beside the forecast's files. Forecasts write both already.
+    """
+    from predictor.forecast_io import view_forecast
+
+    page = view_forecast(folder, scan)
+    typer.echo(f"viewer: {page}")
+    typer.echo(CAUTION)
+
+
+study_app = typer.Typer(
+    help="A blinded reader study of forecast realism: build the page, score the answers.",
+    no_args_is_help=True,
+)
+app.add_typer(study_app, name="reader-study")
+
+
+@study_app.command("build")
+@reports_errors
+def study_build(
+    model: Annotated[Path, typer.Argument(help="A trained model folder; its test participants.")],
+    work: Annotated[Path, typer.Argument(help="The prepared workspace the model was trained on.")],
+    out: Annotated[Path, typer.Argument(help="A new folder for the study.")],
+    cases: Annotated[int, typer.Option(min=1, help="Number of cases (visit pairs).")] = 20,
+    seed: Annotated[int, typer.Option(help="Seed of the case draw and the A/B order.")] = 0,
+    match: Annotated[
+        str,
+        typer.Option(
+            help="Reduce known tells: 'none', 'denoise' (the same light smoothing of every "
+            "image) or 'noise' (fresh noise added to the forecast up to the real scan's level)."
+        ),
+    ] = "none",
+) -> None:
+    """Build a blinded two-alternative study: each case shows a held-out participant's baseline
+    and two follow-ups at the same interval (years), the real scan and the forecast, as A and
+    B in a balanced random order. OUT gets reader_study.html (send to readers; answers stay
+    in their browser and are exported as JSON), reader_key.json (keep apart; checksummed)
+    and reader_settings.json (the known tells and how they were matched).
+    """
+    from predictor.reader_study import KEY, PAGE, build_study
+
+    progress, advance = progress_bar("study cases", cases)
+    with progress:
+        settings = build_study(model, work, out, cases, seed, match, advance)
+    typer.echo(f"{settings['cases']} cases in {out / PAGE}; answer key in {out / KEY} "
+               "(do not send it to readers)")  # fmt: skip
+    typer.echo(CAUTION)
+
+
+@study_app.command("score")
+@reports_errors
+def study_score(
+    out: Annotated[Path, typer.Argument(help="The study folder (reader-study build).")],
+    answers: Annotated[list[Path], typer.Argument(help="Exported answers, one file per reader.")],
+) -> None:
+    """Score readers' answers: identification accuracy per reader and pooled (exact binomial
+    95% CI, test against chance 0.5), Fleiss' kappa between readers, artefact scores real
+    against forecast (Wilcoxon signed-rank), diagnosis agreement. Writes reader_scores.tsv,
+    .json and .html into OUT.
+    """
+    from predictor.reader_study import SCORES, score_study
+
+    summary = score_study(out, answers)
+    for row in summary["accuracy"]:
+        typer.echo(f"{row['rater']}: {row['correct']}/{row['cases']} forecasts identified "
+                   f"(95% CI {row['ci_low']:.2f}-{row['ci_high']:.2f}, p vs chance "
+                   f"{row['p_chance']:.3g})")  # fmt: skip
+    typer.echo(f"scores in {out / SCORES}.html")
+
+
 @app.command("trial-size")
 @reports_errors
 def trial_size(
@@ -706,6 +810,11 @@ def demo(
         typer.echo(f"{key:>10}: {folder}")
     typer.echo(f"report: {result['report']}")
     typer.echo("Synthetic phantoms: invented anatomy, not images of any person. " + CAUTION)
+
+
+def json_records(table) -> list[dict]:
+    """A table's rows for JSON, which has no NaN: a missing value is null."""
+    return table.astype(object).where(table.notna(), None).to_dict("records")
 
 
 def headline_text(comparison) -> str:

@@ -7,13 +7,17 @@ message names the file and line.
 
 BIDS layout read here::
 
-    participants.tsv                participant_id, sex[, diagnosis]
-    sub-<id>/sub-<id>_sessions.tsv  session_id, age[, diagnosis]
+    participants.tsv                participant_id, sex[, diagnosis][, covariates]
+    sub-<id>/sub-<id>_sessions.tsv  session_id, age[, diagnosis][, covariates]
     sub-<id>/ses-<id>/anat/*_T1w.nii[.gz]   one scan, or two runs (run-1, run-2):
                                             run-2 is a same-day rescan of run-1
 
 Table layout: columns participant_id, session_id, age, sex, diagnosis,
-image[, brain_mask][, rescan]; paths relative to the table's folder. A
+image[, brain_mask][, rescan], and one column per declared covariate
+(:mod:`predictor.covariates`; a BIDS covariate is read from the sessions file
+where it has the column, else from participants.tsv); the validated table
+gains a column per covariate after :data:`COLUMNS`, None where missing. Paths
+are relative to the table's folder. A
 rescan (same-day repeat scan of the image) measures the change measurement's
 noise floor; it is never a visit of its own.
 """
@@ -73,10 +77,11 @@ def read_cohort(
     """
     settings = settings or CohortSettings.from_toml()
     source = Path(source)
+    names = settings.covariate_names
     if source.is_dir():
-        rows, root = _bids_rows(source), source
+        rows, root = _bids_rows(source, names), source
     elif source.is_file():
-        rows, root = _table_rows(source), source.parent
+        rows, root = _table_rows(source, names), source.parent
     else:
         raise CohortError(f"{source}: no such cohort file or folder")
     return _validate(rows, settings, root, allow_outside)
@@ -136,14 +141,14 @@ def _require_columns(header: list[str], required: tuple[str, ...], path: Path) -
         raise CohortError(f"{path}: missing column(s) {', '.join(map(repr, missing))}")
 
 
-def _table_rows(path: Path) -> list[RawRow]:
-    header, body = read_delimited(path, REQUIRED_TABLE_COLUMNS)
+def _table_rows(path: Path, covariates: tuple[str, ...]) -> list[RawRow]:
+    header, body = read_delimited(path, REQUIRED_TABLE_COLUMNS + covariates)
     return [
         RawRow(dict(zip(header, row, strict=True)), path, line, path.parent) for line, row in body
     ]
 
 
-def _bids_rows(root: Path) -> list[RawRow]:
+def _bids_rows(root: Path, covariates: tuple[str, ...]) -> list[RawRow]:
     participants_file = root / "participants.tsv"
     if not participants_file.is_file():
         raise CohortError(f"{root}: not a BIDS folder (participants.tsv missing)")
@@ -172,10 +177,11 @@ def _bids_rows(root: Path) -> list[RawRow]:
         if not sessions_file.is_file():
             raise CohortError(f"{sessions_file}: sessions file missing for '{participant}'")
         session_header, session_body = read_delimited(sessions_file, ("session_id", "age"))
-        if "diagnosis" not in session_header and "diagnosis" not in record:
-            raise CohortError(
-                f"{sessions_file}: no 'diagnosis' column here nor in {participants_file.name}"
-            )
+        for column in ("diagnosis", *covariates):
+            if column not in session_header and column not in record:
+                raise CohortError(
+                    f"{sessions_file}: no '{column}' column here nor in {participants_file.name}"
+                )
         for line, session_row in session_body:
             fields = dict(zip(session_header, session_row, strict=True))
             session = fields["session_id"]
@@ -206,7 +212,7 @@ def _bids_rows(root: Path) -> list[RawRow]:
                 if images
                 else f"{participant}/{session}/anat/{participant}_{session}_T1w.nii.gz",
                 "rescan": str(images[1].relative_to(root)) if len(images) == 2 else "",
-            }
+            } | {name: fields[name] if name in fields else record[name] for name in covariates}
             rows.append(RawRow(fields, sessions_file, line, root))
     return rows
 
@@ -293,12 +299,14 @@ def _validate(
                 else None,
                 "_row": row,
             }
+            | {c.name: c.parse(fields[c.name], row.where()) for c in settings.covariates}
         )
     if not records:
         raise CohortError(f"{root}: the cohort has no scans")
     _check_participants(records)
     table = pd.DataFrame(records).sort_values(["participant_id", "age"], kind="stable")
-    return table.drop(columns="_row").reset_index(drop=True)[list(COLUMNS)]
+    columns = [*COLUMNS, *settings.covariate_names]
+    return table.drop(columns="_row").reset_index(drop=True)[columns]
 
 
 def _check_participants(records: list[dict]) -> None:

@@ -169,15 +169,19 @@ def network_pairs(
     else:
         prepared = prepare_for(model, scan)
     horizons = pairs["years"].tolist()
-    result = forecast(
-        ensemble, scan, first.age, first.sex, first.diagnosis, horizons, prepared=prepared
-    )
+    absent = [name for name in model.info.coding.covariate_names if name not in pairs.columns]
+    if absent:
+        raise DataError(f"{work}: prepared without covariate '{absent[0]}' the model needs")
+    covariates = {name: first[name] for name in model.info.coding.covariate_names}
+    result = forecast(ensemble, scan, first.age, first.sex, first.diagnosis, horizons,
+                      prepared=prepared, covariates=covariates)  # fmt: skip
     table = result.volumes.set_index(["region", "years"])
     jacobian, scale = table["network_ml"], table["network_scale_ml"]
     population = None
     if population_dir is not None:
         field = forecast(as_ensemble(population_dir), scan, first.age, first.sex, first.diagnosis,
-                         horizons, prepared=prepared, interpolation="linear")  # fmt: skip
+                         horizons, prepared=prepared, interpolation="linear",
+                         covariates=covariates)  # fmt: skip
         population = field.volumes.set_index(["region", "years"])["network_ml"]
     base_t1, base_mask, base_tissue = _grid_arrays(layout.scan(first.base_key))
     rows = []
@@ -240,9 +244,10 @@ def registered_change(model, baseline, forecast) -> dict[str, float]:
 
 
 # --- the comparison ------------------------------------------------------------------------
-def baseline_pairs(volumes: pd.DataFrame, participants, regions) -> pd.DataFrame:
-    """Pairs from each participant's first visit to every later visit."""
-    pairs = visit_pairs(volumes, participants, regions)
+def baseline_pairs(volumes: pd.DataFrame, participants, regions, covariates=()) -> pd.DataFrame:
+    """Pairs from each participant's first visit to every later visit, with the
+    ``covariates`` columns of the first visit."""
+    pairs = visit_pairs(volumes, participants, regions, tuple(covariates))
     first = volumes.groupby("participant_id")["key"].first()
     pairs = pairs[pairs["base_key"].to_numpy() == first.loc[pairs["participant_id"]].to_numpy()]
     sessions = volumes.set_index("key")["session_id"]
@@ -363,7 +368,9 @@ def compare(
     missing = sorted((set(split["test"]) | set(split["train"])) - known)
     if missing:
         raise DataError(f"{work}: the model's participants {', '.join(missing[:5])} are not here")
-    pairs = baseline_pairs(volumes, split["test"], workspace.regions)
+    pairs = baseline_pairs(
+        volumes, split["test"], workspace.regions, workspace.cohort.covariate_names
+    )
     if pairs.empty:
         raise DataError("the test participants have no follow-up visits to compare")
     if settings.observed_change == "registration":

@@ -16,7 +16,7 @@ import os
 import tomllib
 import types
 import typing
-from dataclasses import dataclass, fields, is_dataclass
+from dataclasses import dataclass, field, fields, is_dataclass
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -221,7 +221,8 @@ class AgeRange:
 
 @dataclass(frozen=True)
 class CohortSettings:
-    """Diagnosis labels (in severity order), sex codes and age range (``configs/cohort.toml``).
+    """Diagnosis labels (in severity order), sex codes, age range and declared extra
+    covariates (``configs/cohort.toml``; :mod:`predictor.covariates`).
 
     The first sex code is the reference of every model's sex indicator and the
     diagnosis order that of every one-hot code; a model saves these settings,
@@ -231,22 +232,53 @@ class CohortSettings:
     diagnosis: Coding
     sex: Coding
     age: AgeRange
+    # the [covariates] table has free names, so from_dict reads it (not settings_from_table)
+    covariates: tuple = field(init=False)
 
     @classmethod
-    def from_toml(cls, path: str | os.PathLike[str] | None = None) -> CohortSettings:
-        """Read ``configs/cohort.toml`` with the file at ``path`` (if any) laid over it."""
-        return load_settings(cls, "cohort.toml", path)
+    def from_toml(
+        cls,
+        path: str | os.PathLike[str] | None = None,
+        covariates: str | os.PathLike[str] | None = None,
+    ) -> CohortSettings:
+        """Read ``configs/cohort.toml`` with the file at ``path`` (if any) laid over it, and
+        the ``[covariates]`` of the file ``covariates`` (if any) over that."""
+        raw, source = read_config("cohort.toml", path)
+        if covariates is not None:
+            extra = read_toml(covariates)
+            if set(extra) != {"covariates"}:
+                raise ConfigError(f"{covariates}: must hold only [covariates.NAME] tables")
+            raw, source = merged(raw, extra), str(covariates)
+        return cls.from_dict(raw, source)
 
     @classmethod
     def from_dict(cls, raw: dict, source: str = "cohort settings") -> CohortSettings:
-        return settings_from_table(cls, raw, source)
+        from predictor.covariates import declarations
+
+        raw = dict(raw)
+        declared = raw.pop("covariates", {})
+        settings = settings_from_table(cls, raw, source)
+        if not isinstance(declared, dict):
+            raise ConfigError(f"{source} [covariates]: must be a table of [covariates.NAME]")
+        try:
+            object.__setattr__(settings, "covariates", declarations(declared, source))
+        except ValueError as error:
+            raise ConfigError(str(error)) from None
+        return settings
 
     def to_dict(self) -> dict:
-        return {
+        raw = {
             "diagnosis": {"codes": list(self.diagnosis.codes), "aliases": self.diagnosis.aliases},
             "sex": {"codes": list(self.sex.codes), "aliases": self.sex.aliases},
             "age": {"min_years": self.age.min_years, "max_years": self.age.max_years},
         }
+        if self.covariates:  # absent otherwise: a model without covariates keeps its checksum
+            raw["covariates"] = {c.name: c.to_dict() for c in self.covariates}
+        return raw
+
+    @property
+    def covariate_names(self) -> tuple[str, ...]:
+        return tuple(c.name for c in self.covariates)
 
     @property
     def diagnosis_labels(self) -> tuple[str, ...]:

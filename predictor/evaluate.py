@@ -249,7 +249,9 @@ def run_fold(
         chosen[name] = train_model(work, folder, name, settings, seed, split, tune, members)
     if tune is not None:
         write_json(folder / TUNING, chosen)
-    pairs = baseline_pairs(volumes, split["test"], workspace.regions)
+    pairs = baseline_pairs(
+        volumes, split["test"], workspace.regions, workspace.cohort.covariate_names
+    )
     rows = []
     if not pairs.empty:
         groups = [frame for _, frame in pairs.groupby("participant_id", sort=True)]
@@ -417,7 +419,9 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
     forecasts = check_folds(out, saved)
     workspace = read_workspace(work)
     volumes, names = workspace.volumes, workspace.regions.names
-    pairs = baseline_pairs(volumes, sorted(saved["assignment"]), workspace.regions)
+    pairs = baseline_pairs(
+        volumes, sorted(saved["assignment"]), workspace.regions, workspace.cohort.covariate_names
+    )
     if pairs.empty:
         raise DataError(f"{work}: no participant has a follow-up visit to forecast")
     if settings.observed_change == "registration":

@@ -112,7 +112,7 @@ class ForecastResult:
     horizons: list[HorizonForecast]
     volumes: pd.DataFrame  # one row per region and horizon (see volume_table)
     warnings: list[str]
-    condition: dict  # age (years), sex, diagnosis as used
+    condition: dict  # age (years), sex, diagnosis and covariates as used
 
 
 #: ensembles loaded in this process, keyed by folder, member checksums and calibration
@@ -141,12 +141,14 @@ def as_ensemble(model: Ensemble | TrainedModel | str | os.PathLike[str]) -> Ense
 
 
 def check_request(
-    model: TrainedModel, age: float, sex: str, diagnosis: str, years
-) -> tuple[str, str, list[float], list[str]]:
-    """Validate a request; returns (sex code, diagnosis label, horizons, warnings).
+    model: TrainedModel, age: float, sex: str, diagnosis: str, years, covariates=None
+) -> tuple[str, str, list[float], dict, list[str]]:
+    """Validate a request; returns (sex code, diagnosis label, horizons, covariates,
+    warnings).
 
-    Unknown codes and negative or non-finite horizons are errors; values the
-    model never saw in training are warnings.
+    Unknown codes, covariates and levels, a covariate the model needs that is not given
+    (None where it may be missing), and negative or non-finite horizons are errors;
+    values the model never saw in training are warnings.
     """
     settings = model.info.coding
     sex_code, label = settings.sex.match(str(sex)), settings.diagnosis.match(str(diagnosis))
@@ -173,7 +175,24 @@ def check_request(
         notes.append(f"diagnosis '{label}' was never seen in training")
     if sex_code not in seen["sexes"]:
         notes.append(f"sex '{sex_code}' was never seen in training")
-    return sex_code, label, horizons, notes
+    values = covariate_values(model, covariates)
+    notes += model.info.covariates.check(values)
+    return sex_code, label, horizons, values, notes
+
+
+def covariate_values(model: TrainedModel, covariates: dict | None) -> dict:
+    """Each covariate the model declares, parsed (None: missing); DataError for an unknown
+    or absent one, CohortError for a value its declaration refuses."""
+    given = dict(covariates or {})
+    declared = {c.name: c for c in model.info.coding.covariates}
+    unknown = sorted(set(given) - set(declared))
+    if unknown:
+        known = ", ".join(declared) or "none"
+        raise DataError(f"covariate '{unknown[0]}' is unknown to this model (it knows: {known})")
+    absent = [name for name in declared if name not in given]
+    if absent:
+        raise DataError(f"this model needs covariate '{absent[0]}' (n/a where it may be missing)")
+    return {name: c.parse(given[name], f"covariate {name}") for name, c in declared.items()}
 
 
 def prepare_for(model: TrainedModel, scan: Scan) -> PreparedScan:
@@ -316,11 +335,14 @@ def forecast(
     years,
     prepared: PreparedScan | None = None,
     interpolation: str | None = None,
+    covariates: dict | None = None,
 ) -> ForecastResult:
     """Forecast ``image`` at each horizon in ``years`` (see the module docstring).
 
     ``model``: a model folder (one member or an ensemble) or a loaded one. ``age`` is
     the baseline age in years; ``sex`` and ``diagnosis`` use the model's cohort codes;
+    ``covariates`` maps each covariate the model declares to its baseline value (None or
+    "n/a": missing, where it may be);
     ``interpolation`` ('cubic' or 'linear') defaults to ``configs/forecast.toml``.
     Returns arrays in the scan's RAS order and the volume table.
     """
@@ -333,7 +355,9 @@ def forecast(
     lead = ensemble.lead
     info, regions = lead.info, lead.info.region_set
     scan = image if isinstance(image, Scan) else load_scan(image)
-    sex_code, label, horizons, notes = check_request(lead, float(age), sex, diagnosis, years)
+    sex_code, label, horizons, values, notes = check_request(
+        lead, float(age), sex, diagnosis, years, covariates
+    )
     prepared = prepared if prepared is not None else prepare_for(lead, scan)
     check_grid(lead, prepared)
     unusual = anatomy_note(info.training_range.get("anatomy"), prepared.volumes)
@@ -343,7 +367,7 @@ def forecast(
     several = len(ensemble.members) > 1
     outputs, member_ml = [], {}
     with torch.no_grad():
-        velocities = torch.cat([member_velocity(m, inputs, age, sex_code, label)
+        velocities = torch.cat([member_velocity(m, inputs, age, sex_code, label, values)
                                 for m in ensemble.members])  # fmt: skip
         velocity = velocities.mean(0, keepdim=True)
         for t in horizons:
@@ -371,19 +395,23 @@ def forecast(
                                scan.voxel_volume_ml, regions, det)  # fmt: skip
                 for det in (sampled[:-1] if several else [native_det])
             ]
-    table, prior_notes = volume_table(ensemble, prepared.volumes, member_ml, age, sex_code, label)
+    request = {"age": float(age), "sex": sex_code, "diagnosis": label} | values
+    table, prior_notes = volume_table(ensemble, prepared.volumes, member_ml, request)
     missing = uncalibrated_note(len(ensemble.members), ensemble.calibration)
     notes += prior_notes + ([missing] if missing else [])
-    condition_used = {"age": float(age), "sex": sex_code, "diagnosis": label}
+    condition_used = request
     return ForecastResult(scan, prepared, outputs, table, notes, condition_used)
 
 
-def member_velocity(model: TrainedModel, inputs, age: float, sex: str, label: str):
+def member_velocity(
+    model: TrainedModel, inputs, age: float, sex: str, label: str, covariates: dict
+):
     """One member's velocity (1, 3, D, H, W) for a scan's network input and covariates
-    (each member standardises age with its own training statistics)."""
+    (each member standardises age and covariates with its own training statistics)."""
+    encoded = model.info.covariates.encode(pd.DataFrame([covariates], index=[0]))
     condition = encode_condition(
         [age], [sex], [label], model.info.coding, model.info.condition["age_mean"],
-        model.info.condition["age_sd"],
+        model.info.condition["age_sd"], encoded,
     )  # fmt: skip
     return model.network(inputs, condition)
 
@@ -392,13 +420,12 @@ def volume_table(
     ensemble: Ensemble,
     baseline_ml: dict[str, float],
     member_ml: dict[float, list[dict[str, float]]],
-    age: float,
-    sex: str,
-    diagnosis: str,
+    request: dict,
 ) -> tuple[pd.DataFrame, list[str]]:
     """Baseline, network and prior volumes per region and horizon, and prior warnings.
 
-    ``member_ml``: horizon -> each member's forecast volumes. Columns: region, years,
+    ``member_ml``: horizon -> each member's forecast volumes; ``request``: age (years),
+    sex, diagnosis and covariates of the baseline. Columns: region, years,
     baseline_ml, network_ml (member mean), network_sd_ml (member SD; NaN for one
     member), network_scale_ml (the conformal score's scale,
     :func:`~predictor.ensemble.interval_scale`), network_lower_ml and network_upper_ml
@@ -413,9 +440,8 @@ def volume_table(
     """
     model, calibration = ensemble.lead, ensemble.calibration
     horizons = sorted(member_ml)
-    request = pd.DataFrame(
-        [{"participant_id": "scan", "age": age, "sex": sex, "diagnosis": diagnosis} | baseline_ml]
-    )
+    diagnosis = request["diagnosis"]
+    request = pd.DataFrame([{"participant_id": "scan"} | request | baseline_ml])
     notes = []
     try:
         prior = model.prior.predict(request, horizons).set_index(["region", "years"])

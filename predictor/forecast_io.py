@@ -14,6 +14,8 @@ name without ``.nii[.gz]`` and ``_T1w``) and horizon label ``H``
         S_desc-forecast_volumes.tsv    regions x horizons: baseline, network (member mean,
                                        SD, calibrated interval), prior, change
         S_desc-forecast_trajectories.png
+        S_desc-forecast_viewer.html    progression viewer: one offline page (predictor.viewer)
+        S_desc-forecast_progression.gif  mid-planes over the horizons, for slides
         S_desc-forecast_provenance.json    written last: marks the forecast complete
     DIR/forecasts.tsv, DIR/failures.tsv    (cohort runs) every participant's volumes; failures
 
@@ -42,10 +44,11 @@ from predictor.files import (
     write_json,
     write_tsv,
 )
-from predictor.forecast import ForecastResult, as_ensemble, forecast
+from predictor.forecast import ForecastResult, as_ensemble, covariate_values, forecast
 from predictor.modelstore import Ensemble, TrainedModel, package_versions
 from predictor.nifti import save_like
 from predictor.parallel import run_all
+from predictor.viewer import Frame, write_viewer
 
 PROVENANCE = "desc-forecast_provenance.json"
 VOLUMES = "desc-forecast_volumes.tsv"
@@ -145,9 +148,51 @@ def write_forecast(
     )
     save_figure(figure, folder / f"{stem}_{TRAJECTORIES}")
     outputs += [f"{stem}_{VOLUMES}", f"{stem}_{TRAJECTORIES}"]
+    frames = [Frame(h.years, h.image, h.log_jacobian, h.log_jacobian_sd)
+              for h in result.horizons]  # fmt: skip
+    outputs += write_viewer(folder, stem, scan, frames, viewer_title(stem, result.condition))
     provenance = _provenance(result, model, input_checksum, identifiers, outputs)
     write_json(folder / f"{stem}_{PROVENANCE}", provenance)
     return provenance
+
+
+def viewer_title(stem: str, condition: dict) -> str:
+    return (f"{stem}: forecast progression (age {condition['age']:g} years, "
+            f"{condition['diagnosis']})")  # fmt: skip
+
+
+def view_forecast(folder: str | os.PathLike[str], scan_path: str | os.PathLike[str]) -> Path:
+    """Write the progression viewer (and GIF) of an earlier forecast in ``folder`` (searched
+    recursively) of the baseline ``scan_path``; returns the page's path. The scan must be
+    the forecast's input (its checksum is compared with the provenance's)."""
+    from predictor.nifti import load_scan
+
+    folder, checksum = Path(folder), sha256_file(scan_path)
+    found = []
+    for path in sorted(folder.rglob(f"*_{PROVENANCE}")):
+        try:
+            saved = json.loads(path.read_text())
+            if saved["input"]["sha256"] == checksum:
+                found.append((path, saved))
+        except (ValueError, KeyError, TypeError):
+            continue
+    if not found:
+        raise DataError(f"{folder}: no forecast of {Path(scan_path).name} (no provenance file "
+                        "records its checksum)")  # fmt: skip
+    path, saved = found[0]
+    stem = path.name.removesuffix(f"_{PROVENANCE}")
+    scan = load_scan(scan_path)
+    frames = []
+    for years in saved["horizons_years"]:
+        base = path.parent / f"{stem}_desc-{horizon_label(years)}"
+        arrays = [load_scan(f"{base}_{suffix}.nii.gz").data if
+                  Path(f"{base}_{suffix}.nii.gz").is_file() else None
+                  for suffix in ("T1w", "logjacobian", "logjacobiansd")]  # fmt: skip
+        if arrays[0] is None:
+            raise DataError(f"{base}_T1w.nii.gz: missing; the forecast is incomplete")
+        frames.append(Frame(float(years), *arrays))
+    names = write_viewer(path.parent, stem, scan, frames, viewer_title(stem, saved["participant"]))
+    return path.parent / names[0]
 
 
 def _provenance(result, model: Ensemble, input_checksum, identifiers, outputs) -> dict:
@@ -233,8 +278,10 @@ def forecast_one(
     years,
     out: str | os.PathLike[str],
     identifiers: dict | None = None,
+    covariates: dict | None = None,
 ) -> tuple[dict, bool]:
-    """Forecast one scan file into ``out``; returns (provenance, skipped because complete)."""
+    """Forecast one scan file into ``out``; returns (provenance, skipped because complete).
+    ``covariates``: the model's declared covariates at baseline (see :func:`forecast`)."""
     model = as_ensemble(model)
     horizons = check_horizons(years)
     out, image = Path(out), Path(image)
@@ -248,17 +295,19 @@ def forecast_one(
         raise ScanError(f"{image}: file not found")
     checksum = sha256_file(image)
     path = folder / f"{stem}_{PROVENANCE}"
-    condition = {"age": float(age), "diagnosis": diagnosis}
+    covariates = covariate_values(model.lead, covariates)
+    condition = {"age": float(age), "diagnosis": diagnosis} | covariates
     with exclusive(folder / f".{stem}.lock"):  # a concurrent run on this scan waits, then skips
         if is_complete(path, model.checksum, checksum, horizons, condition):
             return json.loads(path.read_text()), True
-        result = forecast(model, image, age, sex, diagnosis, horizons)
+        result = forecast(model, image, age, sex, diagnosis, horizons, covariates=covariates)
         write_description(out)
         return write_forecast(result, model, folder, stem, checksum, identifiers), False
 
 
 def _cohort_task(model_dir: str, row: dict, horizons, out: str, threads: int) -> dict:
-    """Worker: one participant's forecast; returns its status instead of raising."""
+    """Worker: one participant's forecast (its covariates from its row, when the model
+    declares any); returns its status instead of raising."""
     import torch
 
     if threads:
@@ -274,6 +323,7 @@ def _cohort_task(model_dir: str, row: dict, horizons, out: str, threads: int) ->
             horizons,
             out,
             identifiers,
+            {c.name: row[c.name] for c in as_ensemble(model_dir).lead.info.coding.covariates},
         )
     except PredictorError as error:
         return identifiers | {"failed": redact_folders(str(error), row["image"])}
@@ -305,7 +355,10 @@ def forecast_cohort(
     else:
         models = dict.fromkeys(cohort["participant_id"], str(model_dir))
     for folder in sorted(set(models.values())):
-        as_ensemble(folder)  # fail early on a bad model folder
+        needed = as_ensemble(folder).lead.info.coding.covariate_names  # fail early on a bad one
+        absent = [name for name in needed if name not in cohort.columns]
+        if absent:
+            raise DataError(f"the cohort has no column for covariate '{absent[0]}' the model needs")
     horizons = check_horizons(years)
     out = Path(out)
     if session is None:

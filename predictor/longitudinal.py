@@ -128,6 +128,12 @@ def rigid_alignment(fixed: Visit, moving: Visit, settings) -> np.ndarray:
     return affine_to_matrix(transform)
 
 
+def aligned_t1(fixed: Visit, moving: Visit, settings) -> np.ndarray:
+    """``moving``'s T1 rigidly registered to ``fixed`` and resampled (linear) onto its grid."""
+    matrix = rigid_alignment(fixed, moving, settings)
+    return from_sitk(_onto(moving.image(), fixed.image(), matrix))[0]
+
+
 def _dilated(mask: np.ndarray, iterations: int) -> np.ndarray:
     from scipy import ndimage
 

@@ -42,6 +42,7 @@ import numpy as np
 import torch
 
 from predictor.config import CohortSettings
+from predictor.covariates import Encoder
 from predictor.errors import ModelError, PredictorError
 from predictor.files import atomic_write, sha256_file, write_json
 from predictor.network import NetworkSettings, VelocityNet, condition_size
@@ -109,7 +110,7 @@ class ModelInfo:
     prepare_settings: dict  # PrepareSettings as asdict() writes it
     regions: dict  # the region set (RegionSet.raw)
     cohort: dict  # the sex and diagnosis coding (CohortSettings.to_dict())
-    condition: dict  # {"age_mean": years, "age_sd": years}
+    condition: dict  # {"age_mean": years, "age_sd": years[, "covariates": Encoder dict]}
     split: dict  # set -> participant ids
     training_range: dict  # ages, longest interval, diagnoses and sexes seen, pairs, anatomy
     prior: str  # file name of the regional prior
@@ -172,8 +173,14 @@ class ModelInfo:
 
     @property
     def condition_size(self) -> int:
-        """Width of the conditioning vector: age, sex indicators, diagnosis one-hot."""
-        return condition_size(self.coding)
+        """Width of the conditioning vector: age, sex indicators, diagnosis one-hot and
+        the encoded covariates."""
+        return condition_size(self.coding, self.covariates.width)
+
+    @property
+    def covariates(self) -> Encoder:
+        """The covariates' training statistics (empty for a model without covariates)."""
+        return Encoder.from_dict(self.condition.get("covariates"), "model.json")
 
 
 @dataclass(frozen=True, eq=False)

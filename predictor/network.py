@@ -1,4 +1,5 @@
-"""The conditional velocity-field network: baseline scan + age, sex, diagnosis -> velocity.
+"""The conditional velocity-field network: baseline scan + age, sex, diagnosis (+ declared
+covariates) -> velocity.
 
 A compact 3D U-Net. Every convolution block is modulated feature-wise by the
 conditioning vector (FiLM: Perez et al. 2018, AAAI): each channel is scaled
@@ -11,7 +12,7 @@ and makes the integration eight times cheaper. The output layer starts at
 zero, so an untrained network forecasts no change.
 
 Shapes: image ``(B, C, D, H, W)`` with ``C = 1`` (normalised T1) or ``4``
-(T1, GM, WM, CSF probabilities); condition ``(B, S + L)`` from
+(T1, GM, WM, CSF probabilities); condition ``(B, S + L + C)`` from
 :func:`encode_condition`; velocity ``(B, 3, d, h, w)`` on the coarse grid in
 coarse voxels per year; displacements ``(B, 3, D, H, W)`` in working-grid
 voxels (see :mod:`predictor.fields`).
@@ -52,15 +53,17 @@ class NetworkSettings:
         return 4 if self.tissue_channels else 1
 
 
-def condition_size(coding) -> int:
-    """Width of the conditioning vector for a cohort coding: 1 + (S - 1) + L."""
-    return len(coding.sex_codes) + len(coding.diagnosis_labels)
+def condition_size(coding, covariates: int = 0) -> int:
+    """Width of the conditioning vector: 1 + (S - 1) + L, plus ``covariates`` encoded
+    covariate columns (:attr:`predictor.covariates.Encoder.width`)."""
+    return len(coding.sex_codes) + len(coding.diagnosis_labels) + covariates
 
 
 def encode_condition(
-    age_years, sex, diagnosis, coding, age_mean: float, age_sd: float
+    age_years, sex, diagnosis, coding, age_mean: float, age_sd: float, covariates=None
 ) -> torch.Tensor:
-    """Conditioning vectors (B, S + L): standardised age, sex indicators, diagnosis one-hot.
+    """Conditioning vectors (B, S + L + C): standardised age, sex indicators, diagnosis
+    one-hot, then ``covariates`` (B, C), the encoded covariates (None: C = 0).
 
     ``sex`` and ``diagnosis`` are codes of ``coding`` (a
     :class:`~predictor.config.CohortSettings`); each sex code after the first
@@ -71,7 +74,9 @@ def encode_condition(
     labels = list(coding.diagnosis_labels)
     index = [labels.index(label) for label in diagnosis]
     one_hot = np.eye(len(labels), dtype=np.float32)[np.asarray(index, dtype=int)]
-    return torch.from_numpy(np.column_stack([age, indicators, one_hot]).astype(np.float32))
+    extra = np.zeros((len(age), 0)) if covariates is None else np.asarray(covariates)
+    columns = np.column_stack([age, indicators, one_hot, extra])
+    return torch.from_numpy(columns.astype(np.float32))
 
 
 class ConditionedBlock(nn.Module):

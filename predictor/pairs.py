@@ -95,12 +95,15 @@ def stratified_draw(candidates, diagnosis, size, rng) -> list[str]:
     return sorted(chosen)
 
 
-def visit_pairs(volumes: pd.DataFrame, participants, regions: RegionSet) -> pd.DataFrame:
+def visit_pairs(
+    volumes: pd.DataFrame, participants, regions: RegionSet, covariates: tuple[str, ...] = ()
+) -> pd.DataFrame:
     """Every (earlier -> later) visit pair of the given participants.
 
     Columns: participant_id, sex, diagnosis, age (baseline of the pair,
-    years), years (interval), base_key, follow_key, and for every region:
-    ``<region>`` (baseline mL) and ``<region>_follow`` (follow-up mL).
+    years), years (interval), base_key, follow_key, the ``covariates`` at the pair's
+    earlier visit, and for every region: ``<region>`` (baseline mL) and
+    ``<region>_follow`` (follow-up mL).
     """
     rows = []
     chosen = volumes[volumes["participant_id"].isin(set(participants))]
@@ -118,7 +121,7 @@ def visit_pairs(volumes: pd.DataFrame, participants, regions: RegionSet) -> pd.D
                     "years": float(follow["age"] - base["age"]),
                     "base_key": base["key"],
                     "follow_key": follow["key"],
-                }
+                } | {name: base[name] for name in covariates}
                 for region in regions.names:
                     row[region] = float(base[region])
                     row[f"{region}_follow"] = float(follow[region])

@@ -515,6 +515,10 @@ def prepare_cohort(
     settings = settings or PrepareSettings.from_toml()
     regions = regions or RegionSet.from_toml()
     coding = coding or CohortSettings.from_toml()
+    clash = sorted(set(coding.covariate_names) & {*regions.names, *(f"{r}_pct_tbv" for r in
+                                                                     regions.names)})  # fmt: skip
+    if clash:
+        raise ConfigError(f"covariate '{clash[0]}' has the name of a region; rename it")
     layout = Layout(Path(work))
     template_spec = str(template) if str(template) == "mni152" else str(Path(template).resolve())
     loaded = cached_template(template_spec, regions)
@@ -570,7 +574,7 @@ def prepare_cohort(
         for i, r in sorted(results.items())
         if "failed" in r
     ]
-    write_tsv(layout.volumes, volume_table(layout, regions))
+    write_tsv(layout.volumes, volume_table(layout, regions, coding.covariate_names))
     if settings.longitudinal.enabled and parts == 1:
         from predictor.longitudinal import measure_changes, measure_rescans
 
@@ -598,4 +602,8 @@ def workspace_volumes(work: str | os.PathLike[str]) -> pd.DataFrame:
     if not layout.prepare_json.is_file():
         raise ConfigError(f"{work}: not a prepared workspace (prepare.json missing)")
     recorded = json.loads(layout.prepare_json.read_text())
-    return volume_table(layout, RegionSet.from_dict(recorded["regions"], str(layout.prepare_json)))
+    source = str(layout.prepare_json)
+    covariates = ()  # a workspace prepared before covariates records no cohort settings
+    if "cohort" in recorded:
+        covariates = CohortSettings.from_dict(recorded["cohort"], source).covariate_names
+    return volume_table(layout, RegionSet.from_dict(recorded["regions"], source), covariates)

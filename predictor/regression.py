@@ -3,7 +3,8 @@
 Every forecaster follows scikit-learn's conventions: the constructor stores
 settings, :meth:`fit` validates a wide volume table (one row per scan:
 participant_id, age in years, sex, diagnosis and one column per region in
-mL) and learns attributes ending in ``_``, and :meth:`predict` takes one
+mL, and a column per covariate the ``coding`` declares) and learns attributes
+ending in ``_``, and :meth:`predict` takes one
 baseline row per participant and horizons in years and returns a long table
 
     participant_id, region, years, mean_ml, sd_ml, lower_ml, upper_ml
@@ -27,6 +28,7 @@ import pandas as pd
 from scipy import stats
 
 from predictor.config import CohortSettings
+from predictor.covariates import Encoder
 from predictor.errors import DataError
 
 LEVEL = 0.90
@@ -60,6 +62,7 @@ class Pairs:
     sex: np.ndarray  # (P, S - 1) indicators of the sex codes after the reference
     diagnosis: np.ndarray  # labels
     context: np.ndarray  # (P, M) every region's baseline volume / intracranial volume
+    covariates: np.ndarray  # (P, C) baseline covariates, encoded (predictor.covariates)
 
 
 def baseline_context(frame: pd.DataFrame, regions: Sequence[str], icv: str | None) -> np.ndarray:
@@ -96,10 +99,16 @@ def baseline_rows(table: pd.DataFrame) -> pd.DataFrame:
 
 
 def make_pairs(
-    table: pd.DataFrame, region: str, coding: CohortSettings, regions=(), icv: str | None = None
+    table: pd.DataFrame,
+    region: str,
+    coding: CohortSettings,
+    regions=(),
+    icv: str | None = None,
+    encoder: Encoder | None = None,
 ) -> Pairs:
     """All (first visit -> later visit) pairs of a checked table for one region; their
-    context holds the baseline of every one of ``regions`` (see :func:`baseline_context`)."""
+    context holds the baseline of every one of ``regions`` (see :func:`baseline_context`),
+    their covariates the baseline's, encoded by ``encoder`` (None: no covariates)."""
     first = baseline_rows(table).set_index("participant_id")
     later = table[table["years"] > 0]
     base = first.loc[later["participant_id"]]
@@ -112,7 +121,23 @@ def make_pairs(
         sex=coding.sex_indicators(base["sex"].to_numpy()),
         diagnosis=base["diagnosis"].to_numpy(),
         context=baseline_context(base, regions, icv),
+        covariates=_encoded(encoder, base),
     )
+
+
+def at_baseline(frame: pd.DataFrame, names) -> pd.DataFrame:
+    """``frame`` (sorted by age within participant) with each of the covariates ``names``
+    replaced by the participant's first row's value: models read covariates at baseline."""
+    if not names:
+        return frame
+    first = frame.groupby("participant_id", sort=False)[list(names)].transform(
+        lambda column: column.iloc[0]
+    )
+    return frame.assign(**{name: first[name] for name in names})
+
+
+def _encoded(encoder: Encoder | None, frame: pd.DataFrame) -> np.ndarray:
+    return np.zeros((len(frame), 0)) if encoder is None else encoder.encode(frame)
 
 
 def check_request(
@@ -257,9 +282,12 @@ class ConformalForecaster:
         self.coding_ = self.coding or CohortSettings.from_toml()
         self.regions_ = list(regions)
         self.labels_ = ordered_labels(table["diagnosis"], self.coding_)
+        self.covariates_ = Encoder.fit(self.coding_.covariates, baseline_rows(table))
         self.models_, self.quantiles_ = {}, {}
         for region in self.regions_:
-            pairs = make_pairs(table, region, self.coding_, self.regions_, self.icv_column)
+            pairs = make_pairs(
+                table, region, self.coding_, self.regions_, self.icv_column, self.covariates_
+            )
             if len(np.unique(pairs.participant)) < 4:
                 raise DataError(
                     f"region '{region}': fewer than 4 participants with a follow-up visit"
@@ -292,6 +320,7 @@ class ConformalForecaster:
                 sex=self.coding_.sex_indicators(grid["sex"].to_numpy()),
                 diagnosis=grid["diagnosis"].to_numpy(),
                 context=baseline_context(grid, self.regions_, self.icv_column),
+                covariates=self.covariates_.encode(grid),
             )
             mean = np.where(
                 request.years == 0,
@@ -357,14 +386,17 @@ class PopulationRateForecaster(ConformalForecaster):
 
 class _FeatureForecaster(ConformalForecaster):
     """Learns the relative change from the baseline volumes of every region (divided by the
-    intracranial volume when ``icv_column`` is given), age, sex, diagnosis and horizon."""
+    intracranial volume when ``icv_column`` is given), age, sex, diagnosis, the encoded
+    covariates and horizon."""
 
     def _estimator(self):
         raise NotImplementedError
 
     def _features(self, pairs: Pairs) -> np.ndarray:
         groups = np.stack([(pairs.diagnosis == label).astype(float) for label in self.labels_], 1)
-        static = np.column_stack([pairs.baseline_ml, pairs.context, pairs.age, pairs.sex, groups])
+        static = np.column_stack(
+            [pairs.baseline_ml, pairs.context, pairs.age, pairs.sex, groups, pairs.covariates]
+        )
         return np.column_stack([static, static * pairs.years[:, None], pairs.years])
 
     def _fit_point(self, pairs):
@@ -492,8 +524,8 @@ def _usable(result, k: int) -> bool:
 class MixedEffectsForecaster:
     """Linear mixed effects (statsmodels MixedLM), one model per region.
 
-    volume ~ baseline age * years + years * diagnosis + sex (+ intracranial
-    volume), with a random intercept and a random slope in years per
+    volume ~ baseline age * years + years * diagnosis + years * covariates + sex
+    (+ intracranial volume), with a random intercept and a random slope in years per
     participant, fitted by REML with Powell's method (the "age-by-time"
     design; see :data:`DESIGNS` for the smaller ones). A new participant's
     random effects are predicted from its baseline volume (BLUP), so its
@@ -527,25 +559,42 @@ class MixedEffectsForecaster:
         self.fallback = fallback
 
     def _design(self, frame: pd.DataFrame, years: np.ndarray) -> np.ndarray:
-        """Fixed-effects design (N, K) of :attr:`design_`: 1, age, sex, dx dummies, years,
-        years * dx, years * age [, icv] for "age-by-time"; without years * age for
-        "diagnosis-by-time"; 1, years [, icv] for "rate"."""
-        columns = [np.ones(len(frame))]
+        """Fixed-effects design (N, K) of :attr:`design_`, columns named by
+        :meth:`_columns`."""
+        return np.column_stack([column for _, column in self._columns(frame, years)])
+
+    def _columns(self, frame: pd.DataFrame, years: np.ndarray) -> list[tuple[str, np.ndarray]]:
+        """Named design columns: 1, age, sex, dx dummies, covariates, years, years * dx,
+        years * covariates, years * age [, icv] for "age-by-time"; without years * age for
+        "diagnosis-by-time"; 1, years [, icv] for "rate". A covariate enters as its
+        encoded columns (:class:`~predictor.covariates.Encoder`)."""
         age = frame["baseline_age"].to_numpy(float) - self.age_ref_
-        dummies = np.stack(
-            [(frame["diagnosis"].to_numpy() == label).astype(float) for label in self.labels_[1:]],
-            1,
-        ).reshape(len(frame), -1)
+        dummies = [(f"diagnosis={label}", (frame["diagnosis"].to_numpy() == label).astype(float))
+                   for label in self.labels_[1:]]  # fmt: skip
+        sex = self.coding_.sex_indicators(frame["sex"].to_numpy())
+        sexes = [(f"sex={code}", sex[:, k]) for k, code in enumerate(self.coding_.sex_codes[1:])]
+        encoded = self.covariates_.encode(at_baseline(frame, self.covariates_.names))
+        covariates = list(zip(self.covariates_.columns, encoded.T, strict=True))
+        columns = [("intercept", np.ones(len(frame)))]
         if self.design_ != "rate":
-            columns += [age, self.coding_.sex_indicators(frame["sex"].to_numpy()), dummies]
-        columns.append(years)
+            columns += [("age", age), *sexes, *dummies, *covariates]
+        columns.append(("years", years))
         if self.design_ != "rate":
-            columns.append(dummies * years[:, None])
+            columns += [(f"years*{name}", value * years) for name, value in dummies + covariates]
         if self.design_ == "age-by-time":
-            columns.append(age * years)
+            columns.append(("years*age", age * years))
         if self.icv_column:
-            columns.append(frame[self.icv_column].to_numpy(float) - self.icv_ref_)
-        return np.column_stack(columns)
+            icv = frame[self.icv_column].to_numpy(float) - self.icv_ref_
+            columns.append((self.icv_column, icv))
+        return columns
+
+    def coefficients(self, region: str) -> pd.DataFrame:
+        """A region's fixed effects: estimate and standard error (mL; per year for the
+        ``years*`` terms), indexed by design column name."""
+        fit = self.fits_[region]
+        return pd.DataFrame(
+            {"estimate": fit.beta, "se": np.sqrt(np.diag(fit.cov_beta))}, index=self.names_
+        )
 
     def fit(self, table: pd.DataFrame, regions: Sequence[str]) -> MixedEffectsForecaster:
         table = check_table(table, [*regions] + ([self.icv_column] if self.icv_column else []))
@@ -554,10 +603,12 @@ class MixedEffectsForecaster:
         self.labels_ = ordered_labels(table["diagnosis"], self.coding_)
         self.age_ref_ = float(baseline_rows(table)["age"].mean())
         self.icv_ref_ = float(table[self.icv_column].mean()) if self.icv_column else 0.0
+        self.covariates_ = Encoder.fit(self.coding_.covariates, baseline_rows(table))
         years = table["years"].to_numpy(float)
         count = table["participant_id"].nunique()
         for design in DESIGNS[DESIGNS.index(self.design) :]:
             self.design_ = design
+            self.names_ = [name for name, _ in self._columns(table, years)]
             exog = self._design(table, years)
             if count > exog.shape[1] + 3:
                 break
@@ -668,6 +719,8 @@ class MixedEffectsForecaster:
             "coding": self.coding_.to_dict(),
             "age_ref": self.age_ref_,
             "icv_ref": self.icv_ref_,
+            "covariates": self.covariates_.to_dict(),
+            "names": self.names_,
             "fits": {region: fit.to_dict() for region, fit in self.fits_.items()},
         }
 
@@ -680,6 +733,9 @@ class MixedEffectsForecaster:
         model.coding_ = CohortSettings.from_dict(raw["coding"], "mixed-effects model")
         model.regions_, model.labels_ = list(raw["regions"]), list(raw["labels"])
         model.age_ref_, model.icv_ref_ = float(raw["age_ref"]), float(raw["icv_ref"])
+        # priors saved before covariates have none, and no recorded column names
+        model.covariates_ = Encoder.from_dict(raw.get("covariates"), "mixed-effects model")
+        model.names_ = list(raw.get("names", []))
         model.fits_ = {region: MixedFit.from_dict(fit) for region, fit in raw["fits"].items()}
         return model
 

@@ -34,6 +34,7 @@ import torch.distributed as dist
 
 from predictor.atypical import anatomy_reference
 from predictor.config import load_settings, settings_from_table
+from predictor.covariates import Encoder
 from predictor.errors import DataError, OutputError
 from predictor.fields import jacobian_determinant, region_volume_ratio, warp
 from predictor.files import write_tsv
@@ -71,7 +72,7 @@ from predictor.pairs import (
     visit_pairs,
 )
 from predictor.regions import TOTAL_BRAIN, RegionSet
-from predictor.regression import save_mixed_model
+from predictor.regression import baseline_rows, save_mixed_model
 from predictor.rng import seeded_rng
 from predictor.workspace import Workspace, read_workspace
 
@@ -252,8 +253,11 @@ def prepare_run(
     else:
         split = {name: sorted(split.get(name, [])) for name in SETS}
     prior, prior_warnings = fit_prior(volumes, split["train"], regions, coding)
+    names = coding.covariate_names
     pairs = {
-        name: attach_prior(visit_pairs(volumes, split[name], regions), prior, regions.prior)
+        name: attach_prior(
+            visit_pairs(volumes, split[name], regions, names), prior, regions.prior
+        )
         for name in SETS
     }
     if pairs["train"].empty:
@@ -269,10 +273,14 @@ def prepare_run(
             raise DataError(f"member {member}'s bootstrap drew no participant with a follow-up")
     ages = pairs["train"]["age"].to_numpy()
     age_mean, age_sd = float(ages.mean()), float(max(ages.std(), 1.0))
+    train_rows = volumes[volumes["participant_id"].isin(split["train"])]
+    # covariates standardised over the training participants' first visits
+    encoder = Encoder.fit(coding.covariates, baseline_rows(train_rows))
     conditions = {
         name: encode_condition(
-            frame["age"].to_numpy(), frame["sex"], frame["diagnosis"], coding, age_mean, age_sd
-        )
+            frame["age"].to_numpy(), frame["sex"], frame["diagnosis"], coding, age_mean, age_sd,
+            encoder.encode(frame),
+        )  # fmt: skip
         for name, frame in pairs.items()
         if not frame.empty
     }
@@ -282,7 +290,6 @@ def prepare_run(
     digest.update(json.dumps(split, sort_keys=True).encode())
     if counts:
         digest.update(json.dumps(counts, sort_keys=True).encode())
-    train_rows = volumes[volumes["participant_id"].isin(split["train"])]
     info = ModelInfo(
         schema=SCHEMA,
         config=config.to_dict(),
@@ -292,7 +299,8 @@ def prepare_run(
         prepare_settings=workspace.prepare_settings,
         regions=regions.raw,
         cohort=coding.to_dict(),
-        condition={"age_mean": age_mean, "age_sd": age_sd},
+        condition={"age_mean": age_mean, "age_sd": age_sd}
+        | ({"covariates": encoder.to_dict()} if encoder.covariates else {}),
         split=split,
         training_range={
             "age_years": [float(train_rows["age"].min()), float(train_rows["age"].max())],

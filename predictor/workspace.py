@@ -19,7 +19,8 @@ Layout::
         result.json          volumes, native<->template transforms, fit diagnostics
     pairs/<key>.json     change between two visits of a participant measured by
                          registration (predictor.longitudinal); one file per pair
-    volumes.tsv          one row per scan: regions in mL and % of total brain volume
+    volumes.tsv          one row per scan: its covariates (if any), regions in mL and
+                         % of total brain volume
     changes.tsv          per participant and pair of visits: each region's change
                          by registration and by segmentation
     rescans.tsv          per scan with a same-day rescan: each region's change from
@@ -94,10 +95,21 @@ class Layout:
     def scan(self, key: str) -> ScanFiles:
         return ScanFiles(self.root / "scans" / key)
 
-    def read_cohort(self) -> pd.DataFrame:
+    def read_cohort(self, covariates: tuple[str, ...] = ()) -> pd.DataFrame:
+        """cohort.tsv, its ``covariates`` columns as written (see :func:`read_table`)."""
         if not self.cohort.is_file():
             raise DataError(f"{self.root}: not a prepared workspace (cohort.tsv missing)")
-        return pd.read_csv(self.cohort, sep="\t", dtype={"key": str, "rescan_key": str})
+        return read_table(self.cohort, covariates, {"key": str, "rescan_key": str})
+
+
+def read_table(path: Path, text: tuple[str, ...] = (), dtype: dict | None = None) -> pd.DataFrame:
+    """A workspace TSV; the ``text`` columns (covariates) exactly as written, "" for none,
+    so that a level such as "01" or "None" is not read as a number or a missing value."""
+    table = pd.read_csv(path, sep="\t", dtype=dtype)
+    if text:
+        raw = pd.read_csv(path, sep="\t", usecols=list(text), dtype=str, keep_default_na=False)
+        table[list(text)] = raw[list(text)]
+    return table
 
 
 @dataclass(frozen=True)
@@ -125,12 +137,13 @@ def read_workspace(work: str | os.PathLike[str]) -> Workspace:
         if not path.is_file():
             raise DataError(f"{layout.root}: not a prepared workspace ({path.name} missing); "
                             "run prepare")
-    volumes = pd.read_csv(layout.volumes, sep="\t", dtype={"key": str})
-    if volumes.empty:
-        raise DataError(f"{layout.volumes}: no prepared scans")
     prepared = json.loads(layout.prepare_json.read_text())
     if "regions" not in prepared or "cohort" not in prepared:
         raise DataError(f"{layout.prepare_json}: written by an older version; rerun prepare")
+    cohort = CohortSettings.from_dict(prepared["cohort"], str(layout.prepare_json))
+    volumes = read_table(layout.volumes, cohort.covariate_names, {"key": str})
+    if volumes.empty:
+        raise DataError(f"{layout.volumes}: no prepared scans")
     diagnostics = layout.scan(volumes["key"].iloc[0]).read_result()["diagnostics"]
     return Workspace(
         layout,
@@ -140,23 +153,27 @@ def read_workspace(work: str | os.PathLike[str]) -> Workspace:
         prepared["template"],
         prepared["settings"],
         RegionSet.from_dict(prepared["regions"], str(layout.prepare_json)),
-        CohortSettings.from_dict(prepared["cohort"], str(layout.prepare_json)),
+        cohort,
     )
 
 
-def volume_table(layout: Layout, regions: RegionSet) -> pd.DataFrame:
-    """Volume table of a workspace's complete entries: mL and % of total brain volume."""
+def volume_table(
+    layout: Layout, regions: RegionSet, covariates: tuple[str, ...] = ()
+) -> pd.DataFrame:
+    """Volume table of a workspace's complete entries: the ``covariates`` columns of
+    cohort.tsv, then volumes in mL and % of total brain volume."""
     rows = []
-    for record in layout.read_cohort().to_dict("records"):
+    identifiers = (*TSV_ID, *covariates)
+    for record in layout.read_cohort(tuple(covariates)).to_dict("records"):
         files = layout.scan(record["key"])
         if files.result.is_file():
             volumes = files.read_result()["volumes_ml"]
             rows.append(
-                {key: record[key] for key in TSV_ID}
+                {key: record[key] for key in identifiers}
                 | {"key": record["key"]}
                 | volumes
                 | percent_of_brain(volumes)
             )
     names = regions.names
-    columns = [*TSV_ID, "key", *names, *(f"{r}_pct_tbv" for r in names)]
+    columns = [*identifiers, "key", *names, *(f"{r}_pct_tbv" for r in names)]
     return pd.DataFrame(rows, columns=columns)

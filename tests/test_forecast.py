@@ -312,8 +312,8 @@ def test_prior_flag_holds_a_mean_against_the_prior_interval_for_a_mean():
         (mean + Z95 * narrow / 2, False),
     ):
         network = {3.0: [baseline | {region: value}]}  # one member's volumes
-        table, notes = volume_table(as_ensemble(model), baseline, network, first["age"],
-                                    first["sex"], first["diagnosis"])  # fmt: skip
+        request = {key: first[key] for key in ("age", "sex", "diagnosis")}
+        table, notes = volume_table(as_ensemble(model), baseline, network, request)
         row = table[(table["region"] == region)].iloc[0]
         assert bool(row["outside_prior_95"]) is flagged
         assert any("interval for the true volume" in note for note in notes) is flagged

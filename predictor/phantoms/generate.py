@@ -29,7 +29,7 @@ import pandas as pd
 
 from predictor import __version__
 from predictor.errors import OutputError
-from predictor.files import write_json, write_tsv
+from predictor.files import write_json, write_text, write_tsv
 from predictor.nifti import save_array
 from predictor.parallel import run_all, single_threaded_torch
 from predictor.phantoms.anatomy import (
@@ -67,7 +67,12 @@ def _visit_key(draw, number: int, years: float) -> dict:
         "age": round(draw.baseline_age + years, 2),
         "sex": draw.sex,
         "diagnosis": draw.diagnosis,
-    }
+    } | _carrier(draw) | _visit_covariates(draw, number)
+
+
+def _carrier(draw) -> dict:
+    """The participant's risk_carrier column ("no"/"yes"; none without covariates)."""
+    return {} if draw.carrier is None else {"risk_carrier": "yes" if draw.carrier else "no"}
 
 
 def _visit_truth(scenario: Scenario, draw, anatomy, number: int, years: float):
@@ -187,6 +192,7 @@ def _make_participant(
                 "diagnosis": diagnosis,
                 "protocol": 2 if changed else 1,
             }
+            | _visit_covariates(draw, number)
         )
         visits.append(
             {
@@ -202,7 +208,8 @@ def _make_participant(
     rates = {f"{region}_percent_per_year": 100 * rate for region, rate in draw.rates.items()}
     multipliers = {f"{region}_factor": value for region, value in draw.multipliers.items()}
     return {
-        "participant": {"participant_id": pid, "sex": draw.sex, "diagnosis": diagnosis},
+        "participant": {"participant_id": pid, "sex": draw.sex, "diagnosis": diagnosis}
+        | _carrier(draw),
         "rates": {
             "participant_id": pid,
             "diagnosis": diagnosis,
@@ -215,6 +222,32 @@ def _make_participant(
         "best": best_rows,
         "draw": draw.record() | {"visits": visits},
     }
+
+
+def _visit_covariates(draw, number: int) -> dict:
+    """The per-visit covariate columns of a sessions.tsv row (none without covariates)."""
+    if draw.carrier is None:
+        return {}
+    score = draw.cognition[number - 1]
+    return {"cognition": "n/a" if score is None else f"{score:g}"}
+
+
+#: how a phantom cohort with covariates declares them (predictor prepare --covariates)
+COVARIATES_TOML = """# Covariates of this phantom cohort, for
+# predictor prepare BIDS WORK --covariates BIDS/code/covariates.toml
+[covariates.risk_carrier]
+kind = "categorical"
+levels = ["no", "yes"]
+missing = false
+
+[covariates.cognition]
+kind = "numeric"
+unit = "points"
+range = [0.0, 30.0]
+missing = true
+"""
+#: where a phantom cohort keeps that declaration
+COVARIATES_FILE = Path("code") / "covariates.toml"
 
 
 def write_template(scenario: Scenario, size_name: str, out: Path) -> None:
@@ -301,12 +334,19 @@ def _write_tables(out: Path, scenario: Scenario, size: str, seed: int, results: 
         },
     )
     write_tsv(out / "participants.tsv", pd.DataFrame([r["participant"] for r in results]))
+    carrier = {
+        "risk_carrier": {
+            "Description": "carrier of a risk genotype that speeds every rate (invented)",
+            "Levels": {"no": "non-carrier", "yes": "carrier"},
+        }
+    }
     write_json(
         out / "participants.json",
         {
             "sex": {"Description": "sex", "Levels": {"F": "female", "M": "male"}},
             "diagnosis": {"Description": "diagnosis group (constant over visits)"},
-        },
+        }
+        | (carrier if scenario.covariates else {}),
     )
     write_json(
         out / "sessions.json",
@@ -317,8 +357,15 @@ def _write_tables(out: Path, scenario: Scenario, size: str, seed: int, results: 
                 "Description": "scanner protocol of the visit's scan",
                 "Levels": {"1": "first protocol", "2": "protocol after a scanner change"},
             },
-        },
+        }
+        | (
+            {"cognition": {"Description": "cognitive score (invented)", "Units": "points"}}
+            if scenario.covariates
+            else {}
+        ),
     )
+    if scenario.covariates:
+        write_text(out / COVARIATES_FILE, COVARIATES_TOML)
     truth = out / TRUTH
     write_json(
         truth / "dataset_description.json",

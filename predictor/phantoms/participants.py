@@ -48,6 +48,11 @@ class Draw:
     rates: dict[str, float]  # signed mean annual fractions over the first two years
     visit_years: tuple[float, ...]  # time since baseline of each visit, first is 0
     head_scale: float
+    # with a scenario's [covariates]: carrier status, the factor on every rate it brings
+    # (1 for a non-carrier), and the cognitive score at each planned visit (None: missing)
+    carrier: bool | None = None
+    carrier_factor: float = 1.0
+    cognition: tuple[float | None, ...] = ()
 
     def record(self) -> dict:
         return asdict(self)
@@ -216,6 +221,8 @@ def draw_participant(
     """Draw participant number ``index`` (0-based) of a cohort with ``seed``."""
     rng = seeded_rng(seed, index, 0)
     draw = draw_progression(scenario, index, diagnosis, rng)
+    if scenario.covariates:  # their own stream: every other draw is the same without them
+        draw = with_covariates(scenario, draw, seeded_rng(seed, index, 6))
     stages = {
         region: scenario.progression["stage_mean"][diagnosis] + value
         for region, value in draw.deviations.items()
@@ -248,16 +255,16 @@ def draw_progression(
         )
         for region in RATE_REGIONS
     }
-    rates = {
-        region: scenario.rates[region][diagnosis] * factor * multipliers[region]
-        for region in RATE_REGIONS
-    }
     first, last = cohort["follow_up_years"]
     follow_up = int(rng.integers(first, last + 1))
     jitter = cohort["visit_jitter_years"]
     years = (0.0,) + tuple(
         round(float(k + rng.uniform(-jitter, jitter)), 2) for k in range(1, follow_up + 1)
     )
+    rates = {
+        region: scenario.rates[region][diagnosis] * factor * multipliers[region]
+        for region in RATE_REGIONS
+    }
     return Draw(
         participant_id=f"sub-{index + 1:03d}",
         sex=sex,
@@ -272,6 +279,29 @@ def draw_progression(
         visit_years=years,
         head_scale=1.0,
     )
+
+
+def with_covariates(scenario: Scenario, draw: Draw, rng: np.random.Generator) -> Draw:
+    """``draw`` with a carrier status (a carrier's every rate times ``carrier_rate_factor``)
+    and a cognitive score (0-30 points) at each planned visit, from ``rng``.
+
+    The score is the group mean plus ``cognition_per_stage`` times the mean stage
+    deviation, minus the group's decline per year, plus visit noise; a visit's score is
+    missing with ``cognition_missing_fraction`` (all assumed, see the scenario file).
+    """
+    spec = scenario.covariates
+    carrier = bool(rng.random() < spec["carrier_fraction"])
+    stage = float(np.mean(list(draw.deviations.values())))
+    level = spec["cognition_mean"][draw.diagnosis] + spec["cognition_per_stage"] * stage
+    scores = []
+    for t in draw.visit_years:
+        score = level - spec["cognition_decline_per_year"][draw.diagnosis] * t
+        score = float(np.clip(round(score + rng.normal(0.0, spec["cognition_sd"])), 0, 30))
+        scores.append(None if rng.random() < spec["cognition_missing_fraction"] else score)
+    factor = float(spec["carrier_rate_factor"]) if carrier else 1.0
+    rates = {region: rate * factor for region, rate in draw.rates.items()}
+    return replace(draw, carrier=carrier, carrier_factor=factor, cognition=tuple(scores),
+                   rates=rates)  # fmt: skip
 
 
 def _until_dropout(anatomy: Anatomy, draw: Draw) -> tuple[float, ...]:
@@ -299,6 +329,11 @@ def best_forecast_ml(scenario: Scenario, draw: Draw, anatomy: Anatomy, years: fl
     ratios = {}
     for region in RATE_REGIONS:
         multipliers = rate_multiplier(scenario, draw.deviations[FACTOR_OF[region]], _NODES)
-        rate = scenario.rates[region][draw.diagnosis] * draw.age_factor * multipliers
+        rate = (
+            scenario.rates[region][draw.diagnosis]
+            * draw.age_factor
+            * multipliers
+            * draw.carrier_factor
+        )
         ratios[region] = float(_WEIGHTS @ trajectory(rate, draw.acceleration, years))
     return region_volumes(raw_volumes_at(anatomy.baseline_volumes_ml, ratios))

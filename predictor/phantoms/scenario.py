@@ -87,6 +87,7 @@ class Scenario:
     scanner_change: dict  # empty, or 'fraction', 'voxel_factor' and 'imaging' overrides
     kind: str  # "geometric" (layered shapes) or "template" (the MNI152 template deformed)
     template_anatomy: dict  # settings of the "template" kind (empty otherwise)
+    covariates: dict  # empty, or the carrier and cognitive-score settings (see _covariates)
 
     @property
     def diagnoses(self) -> tuple[str, ...]:
@@ -139,6 +140,7 @@ class Scenario:
             scanner_change=_scanner_change(raw, source),
             kind=_kind(raw, source),
             template_anatomy=raw.get("template_anatomy", {}),
+            covariates=_covariates(raw, source, tuple(fractions)),
         )
 
     def imaging_at(self, changed: bool) -> dict:
@@ -162,6 +164,39 @@ def _kind(raw: dict, source: str) -> str:
         for key in TEMPLATE_KEYS:
             require(table, key, source, (int, float, dict))
     return kind
+
+
+COVARIATE_KEYS = {
+    "carrier_fraction": (int, float),
+    "carrier_rate_factor": (int, float),
+    "cognition_mean": dict,
+    "cognition_per_stage": (int, float),
+    "cognition_decline_per_year": dict,
+    "cognition_sd": (int, float),
+    "cognition_missing_fraction": (int, float),
+}
+
+
+def _covariates(raw: dict, source: str, diagnoses: tuple[str, ...]) -> dict:
+    """The optional ``[covariates]`` table, checked: every key, a value per diagnosis."""
+    table = raw.get("covariates", {})
+    if not table:
+        return {}
+    unknown = sorted(set(table) - set(COVARIATE_KEYS))
+    if unknown:
+        raise ConfigError(f"{source} [covariates]: unknown key '{unknown[0]}'")
+    for key, kind in COVARIATE_KEYS.items():
+        require(table, key, source, kind)
+    for key in ("cognition_mean", "cognition_decline_per_year"):
+        missing = [group for group in diagnoses if group not in table[key]]
+        if missing:
+            raise ConfigError(f"{source} [covariates] '{key}': no value for {missing[0]}")
+    for key in ("carrier_fraction", "cognition_missing_fraction"):
+        if not 0 <= table[key] <= 1:
+            raise ConfigError(f"{source} [covariates] '{key}': must lie in [0, 1]")
+    if table["carrier_rate_factor"] <= 0:
+        raise ConfigError(f"{source} [covariates] 'carrier_rate_factor': must be positive")
+    return table
 
 
 def _scanner_change(raw: dict, source: str) -> dict:

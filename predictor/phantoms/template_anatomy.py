@@ -204,6 +204,7 @@ def visible_rates(scenario: Scenario, draw: Draw) -> dict[str, float]:
         region: scenario.rates[region][draw.diagnosis]
         * draw.age_factor
         * expected_multiplier(scenario, draw.deviations[FACTOR_OF[region]])
+        * draw.carrier_factor
         for region in RATE_REGIONS
     }
 
