@@ -516,7 +516,8 @@ def collect(work, out: Path, settings: CompareSettings, seed: int) -> Evaluation
 def run_summary(out: Path, workspace) -> dict:
     """How the folds were run (from fold 1's stamp; :func:`check_folds` holds every fold to
     it): working grid (mm), epochs, training pairs drawn per epoch (0: all), network
-    channels, and whether the network's forecast scans were measured."""
+    channels, whether the network's forecast scans were measured, and the declared
+    covariates every model conditioned on."""
     stamp = json.loads((fold_folder(out, 1) / STAMP).read_text())
     training, network = stamp["config"]["training"], stamp["config"]["network"]
     spacing = np.linalg.norm(workspace.grid_affine[:3, :3], axis=0)
@@ -527,6 +528,7 @@ def run_summary(out: Path, workspace) -> dict:
         "channels": network["channels"],
         "scan_volumes": stamp["measure"],
         "members": stamp.get("members", 1),
+        "covariates": list(workspace.cohort.covariate_names),
     }
 
 

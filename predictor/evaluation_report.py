@@ -222,11 +222,18 @@ def run_note(run: dict) -> str:
         else "The network's forecast scans were not measured (--no-scan-volumes): only its "
         "own Jacobian-integral volumes are scored."
     )
+    covariates = run.get("covariates") or []
+    given = (
+        f" Every model (network, population field and regressions) was also given the "
+        f"covariates {', '.join(covariates)}."
+        if covariates
+        else ""
+    )
     return (
         f"<p>Each fold's models were trained on a {grid} mm working grid for at most "
         f"{run['epochs']} epochs of {pairs} training pairs (network channels "
         f"{', '.join(str(c) for c in run['channels'])}); a coarser grid or fewer epochs "
-        f"than a study would use may understate what the network can do. {scans}</p>"
+        f"than a study would use may understate what the network can do. {scans}{given}</p>"
     )
 
 
@@ -284,8 +291,8 @@ def render(tables: dict[str, pd.DataFrame], data: dict, out: Path) -> str:
         "difference excludes zero and the exact sign test over participants is below "
         f"{1 - data['level']:.2g} (Holm-adjusted except for the primary endpoint). "
         "Subject-specific skill is shown only where the network beats the population "
-        "field (the same training fed the template, so it knows only age, sex and "
-        "diagnosis) and its R^2 of individual "
+        "field (the same training fed the template, so it knows only age, sex, "
+        "diagnosis and any declared covariates) and its R^2 of individual "
         "annualised change exceeds the population field's with a CI above zero.</p>",
         region_words(tables["tests"], tables["headlines"], tables["skill"]),
     ]

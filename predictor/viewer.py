@@ -8,10 +8,11 @@ colour bar in its units, and the regional trajectory figure with its bands. All
 data are inside the page (zlib-compressed bytes in base64, inflated by the
 browser's DecompressionStream): no external address, no server.
 
-Volumes are shrunk to at most :data:`MAX_SIDE` voxels a side for the page (the
-forecast NIfTIs keep the scan's resolution) and quantised to bytes: the scans
-share one intensity window (0 to the 99.5th percentile of the baseline brain),
-the log-Jacobian a symmetric range, the SD a range from 0.
+Volumes are shrunk for the page by averaging blocks of k x k x k voxels, k the
+smallest whole number that brings every side to at most :data:`MAX_SIDE` voxels
+(the forecast NIfTIs keep the scan's resolution), and quantised to bytes: the
+scans share one intensity window (0 to the 99.5th percentile of the baseline
+brain), the log-Jacobian a symmetric range, the SD a range from 0.
 """
 
 from __future__ import annotations
@@ -25,7 +26,6 @@ from importlib import resources
 from pathlib import Path
 
 import numpy as np
-from scipy import ndimage
 
 from predictor.cautions import CAUTION
 
@@ -47,11 +47,18 @@ class Frame:
     log_jacobian_sd: np.ndarray | None = None
 
 
-def shrink(volume: np.ndarray, factor: float, order: int = 1) -> np.ndarray:
-    """``volume`` zoomed by ``factor`` (<= 1) with scipy.ndimage.zoom; unchanged at 1."""
-    if factor >= 1.0:
-        return volume
-    return ndimage.zoom(volume.astype(np.float32), factor, order=order, prefilter=False)
+def block_size(shape) -> int:
+    """The k of :func:`shrink` for a volume of ``shape``."""
+    return max(1, int(np.ceil(max(shape) / MAX_SIDE)))
+
+
+def shrink(volume: np.ndarray, k: int) -> np.ndarray:
+    """The mean of each k x k x k block (the last partial block of an axis dropped)."""
+    if k == 1:
+        return np.asarray(volume, dtype=np.float32)
+    x, y, z = (n // k for n in volume.shape)
+    blocks = np.asarray(volume[: x * k, : y * k, : z * k], dtype=np.float32)
+    return blocks.reshape(x, k, y, k, z, k).mean(axis=(1, 3, 5))
 
 
 def quantise(volume: np.ndarray, low: float, high: float) -> np.ndarray:
@@ -80,29 +87,28 @@ def page_data(
     trajectory_png: bytes | None = None,
 ) -> dict:
     """Everything the page shows, as JSON-ready values (see the module docstring)."""
-    factor = min(1.0, MAX_SIDE / max(baseline.shape))
+    k = block_size(baseline.shape)
     top = window(baseline, brain)
-    mask = shrink(brain.astype(np.float32), factor) > 0.5
-    jacobians = [np.abs(f.log_jacobian[brain]) for f in frames if f.log_jacobian is not None]
+    mask = shrink(brain, k) > 0.5
+    sample = brain & (np.arange(brain.size).reshape(brain.shape) % 7 == 0)  # for the ranges
+    jacobians = [np.abs(f.log_jacobian[sample]) for f in frames if f.log_jacobian is not None]
     jacobian_limit = max(float(np.percentile(np.concatenate(jacobians), 99.5)), 1e-3) if (
         jacobians and jacobians[0].size
     ) else 0.05
-    sds = [f.log_jacobian_sd[brain] for f in frames if f.log_jacobian_sd is not None]
+    sds = [f.log_jacobian_sd[sample] for f in frames if f.log_jacobian_sd is not None]
     sd_limit = max(float(np.percentile(np.concatenate(sds), 99.5)), 1e-4) if sds else 0.0
     blocks = []
     for frame in [Frame(0.0, baseline), *frames]:
         block = {"years": round(frame.years, 2),
-                 "scan": packed(quantise(shrink(frame.image, factor), 0.0, top))}  # fmt: skip
+                 "scan": packed(quantise(shrink(frame.image, k), 0.0, top))}  # fmt: skip
         if frame.log_jacobian is not None:
-            jacobian = shrink(frame.log_jacobian, factor)
+            jacobian = shrink(frame.log_jacobian, k)
             block["jacobian"] = packed(quantise(jacobian, -jacobian_limit, jacobian_limit))
         if frame.log_jacobian_sd is not None:
-            sd = shrink(frame.log_jacobian_sd, factor)
+            sd = shrink(frame.log_jacobian_sd, k)
             block["sd"] = packed(quantise(sd, 0.0, sd_limit))
         blocks.append(block)
-    spacing = np.asarray(voxel_mm, dtype=float) * np.asarray(baseline.shape) / np.asarray(
-        mask.shape
-    )
+    spacing = np.asarray(voxel_mm, dtype=float) * k
     centre = np.argwhere(mask).mean(axis=0) if mask.any() else np.array(mask.shape) / 2
     return {
         "title": title,

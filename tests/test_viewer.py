@@ -239,3 +239,17 @@ def test_pairs_of_readers_agree_with_the_fleiss_formula():
         two = picks[[first, second]]
         counts = np.stack([(two == side).sum(axis=1) for side in ("A", "B")], axis=1)
         assert fleiss(two) == pytest.approx(fleiss_by_hand(counts))
+
+
+def test_page_volumes_are_block_means_like_scikit_image():
+    """The page's shrunk volumes equal scikit-image's block_reduce(mean) on whole blocks."""
+    from skimage.measure import block_reduce
+
+    from predictor.viewer import MAX_SIDE, block_size, shrink
+
+    volume = np.random.default_rng(2).normal(size=(2 * MAX_SIDE + 3, 40, 30))
+    k = block_size(volume.shape)
+    assert k == 3 and max(shrink(volume, k).shape) <= MAX_SIDE
+    whole = volume[: 3 * (volume.shape[0] // 3), :39, :30]
+    np.testing.assert_allclose(shrink(volume, k), block_reduce(whole, (3, 3, 3), np.mean),
+                               atol=1e-5)  # fmt: skip

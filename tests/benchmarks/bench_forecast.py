@@ -35,11 +35,13 @@ def forecast_prepared_1mm() -> dict:
     """Network and native-space warps and volumes for a prepared scan, then the output files.
 
     ``s_compute`` uses the configured (cubic B-spline) resampling of the
-    baseline, ``s_compute_linear`` trilinear resampling.
+    baseline, ``s_compute_linear`` trilinear resampling; ``s_viewer_and_gif`` is the
+    viewer page and GIF alone (also inside ``s_with_outputs``).
     """
     from predictor.forecast import forecast, prepare_for
     from predictor.forecast_io import write_forecast
     from predictor.nifti import load_scan
+    from predictor.viewer import Frame, write_viewer
 
     with tempfile.TemporaryDirectory() as folder:
         model, image = _setup(Path(folder))
@@ -51,11 +53,17 @@ def forecast_prepared_1mm() -> dict:
         write_forecast(result, model, Path(folder) / "out", "mni", "")
         with_outputs = time.perf_counter() - started
         started = time.perf_counter()
+        frames = [Frame(h.years, h.image, h.log_jacobian, h.log_jacobian_sd)
+                  for h in result.horizons]  # fmt: skip
+        write_viewer(Path(folder) / "out", "again", scan, frames, "viewer only")
+        viewer = time.perf_counter() - started
+        started = time.perf_counter()
         forecast(model, scan, 70.0, "F", "MCI", [1, 3], prepared=prepared, interpolation="linear")
         return {
             "horizons": 2,
             "s_compute": round(computed, 2),
             "s_with_outputs": round(with_outputs, 2),
+            "s_viewer_and_gif": round(viewer, 2),
             "s_compute_linear": round(time.perf_counter() - started, 2),
         }
 
