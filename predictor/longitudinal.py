@@ -128,10 +128,12 @@ def rigid_alignment(fixed: Visit, moving: Visit, settings) -> np.ndarray:
     return affine_to_matrix(transform)
 
 
-def aligned_t1(fixed: Visit, moving: Visit, settings) -> np.ndarray:
-    """``moving``'s T1 rigidly registered to ``fixed`` and resampled (linear) onto its grid."""
+def aligned_t1(fixed: Visit, moving: Visit, settings, cubic: bool = False) -> np.ndarray:
+    """``moving``'s T1 rigidly registered to ``fixed`` and resampled onto its grid
+    (trilinear, or a cubic B-spline with ``cubic``)."""
     matrix = rigid_alignment(fixed, moving, settings)
-    return from_sitk(_onto(moving.image(), fixed.image(), matrix))[0]
+    interpolator = sitk.sitkBSpline if cubic else sitk.sitkLinear
+    return from_sitk(_onto(moving.image(), fixed.image(), matrix, interpolator))[0]
 
 
 def _dilated(mask: np.ndarray, iterations: int) -> np.ndarray:
@@ -140,10 +142,13 @@ def _dilated(mask: np.ndarray, iterations: int) -> np.ndarray:
     return ndimage.binary_dilation(mask, iterations=iterations)
 
 
-def _onto(image: sitk.Image, reference: sitk.Image, matrix: np.ndarray | None) -> sitk.Image:
+def _onto(
+    image: sitk.Image, reference: sitk.Image, matrix: np.ndarray | None,
+    interpolator=sitk.sitkLinear,
+) -> sitk.Image:
     """``image`` resampled onto ``reference``'s grid (``matrix``: reference -> image points)."""
     transform = sitk.Transform() if matrix is None else matrix_to_transform(matrix)
-    return sitk.Resample(image, reference, transform, sitk.sitkLinear, 0.0, sitk.sitkFloat32)
+    return sitk.Resample(image, reference, transform, interpolator, 0.0, sitk.sitkFloat32)
 
 
 def demons_jacobian(fixed: sitk.Image, moving: sitk.Image, settings) -> np.ndarray:
