@@ -602,7 +602,10 @@ def evaluation_text(evaluation) -> str:
 def view(
     folder: Annotated[Path, typer.Argument(help="A forecast output folder (searched through).")],
     scan: Annotated[
-        Path, typer.Option(help="The baseline T1w NIfTI the forecast was made from.")
+        Path,
+        typer.Option(exists=True, dir_okay=False,
+                     help="The baseline T1w NIfTI the forecast was made from (the forecast "
+                     "folder does not keep it)."),
     ],
 ) -> None:
     """Write the progression viewer of an earlier forecast: one HTML page that opens offline
@@ -631,7 +634,9 @@ def study_build(
     work: Annotated[Path, typer.Argument(help="The prepared workspace the model was trained on.")],
     out: Annotated[Path, typer.Argument(help="A new folder for the study.")],
     cases: Annotated[int, typer.Option(min=1, help="Number of cases (visit pairs).")] = 20,
-    seed: Annotated[int, typer.Option(help="Seed of the case draw and the A/B order.")] = 0,
+    seed: Annotated[
+        int, typer.Option(min=0, help="Seed of the case draw and the A/B order.")
+    ] = 0,
     match: Annotated[
         str,
         typer.Option(

@@ -163,8 +163,9 @@ def viewer_title(stem: str, condition: dict) -> str:
 
 def view_forecast(folder: str | os.PathLike[str], scan_path: str | os.PathLike[str]) -> Path:
     """Write the progression viewer (and GIF) of an earlier forecast in ``folder`` (searched
-    recursively) of the baseline ``scan_path``; returns the page's path. The scan must be
-    the forecast's input (its checksum is compared with the provenance's)."""
+    recursively) of the baseline ``scan_path`` (the latest, when there are several);
+    returns the page's path. The scan must be the forecast's input (its checksum is
+    compared with the provenance's)."""
     from predictor.nifti import load_scan
 
     folder, checksum = Path(folder), sha256_file(scan_path)
@@ -179,7 +180,7 @@ def view_forecast(folder: str | os.PathLike[str], scan_path: str | os.PathLike[s
     if not found:
         raise DataError(f"{folder}: no forecast of {Path(scan_path).name} (no provenance file "
                         "records its checksum)")  # fmt: skip
-    path, saved = found[0]
+    path, saved = max(found, key=lambda item: item[0].stat().st_mtime)  # the latest
     stem = path.name.removesuffix(f"_{PROVENANCE}")
     scan = load_scan(scan_path)
     frames = []

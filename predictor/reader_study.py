@@ -7,9 +7,13 @@ workspace's prepared T1 (bias-corrected, white matter = 1, brain only) in the
 baseline's own space and resolution: the real follow-up rigidly registered to
 the baseline and resampled once, the forecast the baseline warped once, both
 with the forecast's interpolation (``configs/forecast.toml``; cubic B-spline by
-default). All three share one intensity window. The page holds no participant
-or session name and no answer: the key (which image is the forecast, with who
-and when) goes to a separate file with a checksum.
+default). All three share one intensity window, and A and B are shown inside
+the same mask (where both have brain), so neither brain outline gives the other
+away. Images are uncompressed PNGs (equal byte lengths for A and B). The page
+holds no participant or session name and no answer: the key (which image is the
+forecast, with who and when) goes to a separate file with a checksum. The case
+draw, the A/B order, the noise and the case names use separate random streams of
+the seed, so the A/B order is independent of which cases were drawn.
 
 Known tells, stated in the settings file and the score report: a forecast is the
 baseline resampled, so it carries the baseline's noise pattern and interpolation
@@ -69,11 +73,19 @@ INSTRUCTIONS = (
 
 
 # --- building -----------------------------------------------------------------------------------
-def ab_order(cases: int, seed: int) -> list[str]:
+def streams(seed: int) -> dict[str, np.random.Generator]:
+    """Independent random streams of a study's seed: cases, sides, noise, names."""
+    children = np.random.SeedSequence(seed).spawn(4)
+    names = ("cases", "sides", "noise", "names")
+    return {name: np.random.default_rng(child) for name, child in zip(names, children,
+                                                                      strict=True)}  # fmt: skip
+
+
+def ab_order(cases: int, rng: np.random.Generator) -> list[str]:
     """Which side (A or B) shows the forecast in each case: half each (one more A when odd),
-    in a seeded random order."""
+    in a random order."""
     sides = np.array(["A"] * ((cases + 1) // 2) + ["B"] * (cases // 2))
-    return list(np.random.default_rng(seed).permutation(sides))
+    return [str(side) for side in rng.permutation(sides)]
 
 
 def noise_sd(image: np.ndarray, mask: np.ndarray) -> float:
@@ -99,7 +111,8 @@ def matched(
     if match == "noise":
         real_sd, forecast_sd = noise_sd(real, mask), noise_sd(forecast, mask)
         added = float(np.sqrt(max(real_sd**2 - forecast_sd**2, 0.0)))
-        noisy = forecast + np.where(mask, rng.normal(0.0, added, forecast.shape), 0.0)
+        inside = mask & (forecast > 0)  # never speckle on background
+        noisy = forecast + np.where(inside, rng.normal(0.0, added, forecast.shape), 0.0)
         return real, noisy.astype(forecast.dtype), baseline, {
             "real_noise_sd": real_sd, "forecast_noise_sd": forecast_sd, "added_sd": added
         }
@@ -119,7 +132,9 @@ def plane_pictures(volume: np.ndarray, centre, top: float, voxel_mm) -> list[dic
     for name, plane, across, up in planes:
         scaled = np.clip(np.flipud(plane.T) / top, 0.0, 1.0)
         buffer = io.BytesIO()
-        Image.fromarray(np.round(255 * scaled).astype(np.uint8)).save(buffer, "PNG")
+        # uncompressed: a compressed size would tell a smooth image from a noisy one
+        picture = Image.fromarray(np.round(255 * scaled).astype(np.uint8))
+        picture.save(buffer, "PNG", compress_level=0)
         pictures.append({
             "name": name,
             "png": base64.b64encode(buffer.getvalue()).decode(),
@@ -129,18 +144,18 @@ def plane_pictures(volume: np.ndarray, centre, top: float, voxel_mm) -> list[dic
     return pictures
 
 
-def choose_cases(pairs: pd.DataFrame, cases: int, seed: int) -> pd.DataFrame:
-    """``cases`` baseline -> follow-up pairs, spread over participants: a seeded random order
-    of participants, each giving its pairs in turn (one per participant per round)."""
+def choose_cases(pairs: pd.DataFrame, cases: int, rng: np.random.Generator) -> pd.DataFrame:
+    """``cases`` baseline -> follow-up pairs, spread over participants: a random order of
+    participants, each giving its pairs in turn (one per participant per round)."""
     if cases > len(pairs):
         raise DataError(
             f"only {len(pairs)} held-out visit pairs are available; ask for at most that many "
             "cases"
         )
-    rng = np.random.default_rng(seed)
-    shuffled = pairs.iloc[rng.permutation(len(pairs))].copy()
-    shuffled["round"] = shuffled.groupby("participant_id").cumcount()
-    return shuffled.sort_values("round", kind="stable").head(cases).reset_index(drop=True)
+    shuffled = pairs.iloc[rng.permutation(len(pairs))]
+    rounds = shuffled.groupby("participant_id").cumcount().to_numpy()
+    order = np.argsort(rounds, kind="stable")[:cases]
+    return shuffled.iloc[order].reset_index(drop=True)
 
 
 def build_study(
@@ -148,7 +163,7 @@ def build_study(
 ) -> dict:
     """Write the study page, its settings and the answer key into ``out`` (new or empty);
     returns the settings. Cases come from the model's held-out (test) participants."""
-    from predictor.compare import baseline_pairs, prepared_like
+    from predictor.compare import baseline_pairs, check_split, prepared_like
     from predictor.forecast import ForecastSettings, as_ensemble, forecast, prepare_for
     from predictor.longitudinal import Visit, aligned_t1
     from predictor.nifti import load_scan
@@ -163,62 +178,70 @@ def build_study(
     model = as_ensemble(model_dir)
     lead = model.lead
     workspace = read_workspace(work)
-    held_out = lead.info.split["test"]
+    split = lead.info.split
+    check_split(split)
+    absent = sorted((set(split["test"]) | set(split["train"])) - set(workspace.volumes[
+        "participant_id"]))  # fmt: skip
+    if absent:
+        raise DataError(f"{work}: the model's participants {', '.join(absent[:5])} are not here")
     covariates = workspace.cohort.covariate_names
-    pairs = baseline_pairs(workspace.volumes, held_out, workspace.regions, covariates)
-    chosen = choose_cases(pairs, cases, seed)
-    sides = ab_order(len(chosen), seed)
+    pairs = baseline_pairs(workspace.volumes, split["test"], workspace.regions, covariates)
+    draw = streams(seed)
+    chosen = choose_cases(pairs, cases, draw["cases"])
+    sides = ab_order(len(chosen), draw["sides"])
     layout = workspace.layout
     images = layout.read_cohort().set_index("key")["image"]
     settings = PrepareSettings.from_dict(workspace.prepare_settings).longitudinal
     interpolation = ForecastSettings.from_toml().interpolation  # the forecast's and the real's
-    rng = np.random.default_rng(seed)
-    names = np.random.default_rng([seed, 1])  # case identifiers: random, reproducible
     page_cases, key_cases = [], {}
-    for number, pair in enumerate(chosen.itertuples(index=False)):
-        scan = load_scan(images.loc[pair.base_key])
+    for number, pair in enumerate(chosen.to_dict("records")):
+        scan = load_scan(images.loc[pair["base_key"]])
         if prepared_like(layout, lead):
-            prepared = read_prepared(layout.scan(pair.base_key), scan, lead.info.region_set)
+            prepared = read_prepared(layout.scan(pair["base_key"]), scan, lead.info.region_set)
         else:
             prepared = prepare_for(lead, scan)
         if prepared.native_t1.shape != scan.data.shape:
-            raise DataError(f"{images.loc[pair.base_key]}: its prepared T1 is not on its grid")
+            raise DataError(f"{images.loc[pair['base_key']]}: its prepared T1 is not on its grid")
         base = replace(scan, data=prepared.native_t1)
-        values = {name: getattr(pair, name) for name in lead.info.coding.covariate_names}
-        result = forecast(model, base, pair.age, pair.sex, pair.diagnosis, [pair.years],
-                          prepared=prepared, covariates=values)  # fmt: skip
-        follow = Visit.read(layout.scan(pair.follow_key).folder, workspace.regions)
+        values = {name: pair[name] for name in lead.info.coding.covariate_names}
+        result = forecast(model, base, pair["age"], pair["sex"], pair["diagnosis"],
+                          [pair["years"]], prepared=prepared, covariates=values)  # fmt: skip
+        follow = Visit.read(layout.scan(pair["follow_key"]).folder, workspace.regions)
         real = aligned_t1(Visit.of(prepared), follow, settings, cubic=interpolation == "cubic")
         mask = prepared.native_t1 > 0
         real, predicted, baseline, detail = matched(
-            real, result.horizons[0].image, prepared.native_t1, mask, match, rng
+            real, result.horizons[0].image, prepared.native_t1, mask, match, draw["noise"]
         )
+        both = (real > 0) & (predicted > 0)  # one outline for A and B
+        real, predicted = np.where(both, real, 0.0), np.where(both, predicted, 0.0)
         top = max(float(np.percentile(baseline[mask], 99.5)), 1e-6) if mask.any() else 1.0
         centre = np.argwhere(mask).mean(axis=0) if mask.any() else np.array(mask.shape) / 2
         pictures = {name: plane_pictures(array, centre, top, scan.voxel_size_mm)
                     for name, array in (("baseline", baseline), ("real", real),
                                         ("forecast", predicted))}  # fmt: skip
-        case_id = names.bytes(5).hex()
+        case_id = draw["names"].bytes(5).hex()
         forecast_side = sides[number]
-        real_side = "B" if forecast_side == "A" else "A"
-        page_cases.append({
+        shown = {forecast_side: pictures["forecast"],
+                 "B" if forecast_side == "A" else "A": pictures["real"]}  # fmt: skip
+        page_cases.append({  # keys in a fixed order: the order never tells the forecast
             "id": case_id,
-            "years": round(float(pair.years), 1),
+            "years": round(float(pair["years"]), 1),
             "baseline": pictures["baseline"],
-            forecast_side: pictures["forecast"],
-            real_side: pictures["real"],
+            "A": shown["A"],
+            "B": shown["B"],
         })  # fmt: skip
         key_cases[case_id] = {
             "forecast": forecast_side,
-            "participant_id": pair.participant_id,
-            "session_to": pair.session_id,
-            "years": float(pair.years),
-            "diagnosis": pair.diagnosis,
+            "participant_id": pair["participant_id"],
+            "session_to": pair["session_id"],
+            "years": float(pair["years"]),
+            "diagnosis": pair["diagnosis"],
         } | ({"match": detail} if detail else {})
         if progress:
             progress()
-    study = hashlib.sha256(json.dumps(sorted(key_cases), sort_keys=True).encode()).hexdigest()
-    study = study[:16]
+    # a study is its cases, model, matching and seed: another build has another id
+    identity = {"cases": key_cases, "model": model.checksum, "match": match, "seed": seed}
+    study = hashlib.sha256(json.dumps(identity, sort_keys=True).encode()).hexdigest()[:16]
     zoom = 260.0 / max(max(p["width_mm"], p["height_mm"]) for c in page_cases
                        for p in c["baseline"])  # fmt: skip
     data = {
@@ -275,9 +298,14 @@ def read_answers(path: Path, study: str) -> dict:
     """One reader's exported answers, checked against the study."""
     try:
         answers = json.loads(Path(path).read_text())
-        answers["answers"], answers["rater"]
+        given, rater = answers["answers"], answers["rater"]
     except (OSError, ValueError, KeyError, TypeError) as error:
         raise DataError(f"{path}: not an exported answers file ({error})") from None
+    if not isinstance(given, dict) or not isinstance(rater, str) or not all(
+        isinstance(answer, dict | None) for answer in given.values()
+    ):
+        raise DataError(f"{path}: not an exported answers file (answers must map cases to "
+                        "answers)")  # fmt: skip
     if answers.get("study") != study:
         raise DataError(f"{path}: answers to study '{answers.get('study')}', not '{study}'")
     return answers
@@ -301,7 +329,8 @@ def fleiss(table: pd.DataFrame) -> float:
     if table.shape[1] < 2 or table.empty:
         return float("nan")
     counts, _ = aggregate_raters(table.to_numpy())
-    return float(fleiss_kappa(counts, method="fleiss"))
+    with np.errstate(divide="ignore", invalid="ignore"):  # all alike: kappa undefined (NaN)
+        return float(fleiss_kappa(counts, method="fleiss"))
 
 
 def score_study(out, answer_files) -> dict:
@@ -338,15 +367,21 @@ def score_study(out, answer_files) -> dict:
     picked = answers[answers["picked"].isin(["A", "B"])]
     for rater in raters:
         mine = picked[picked["rater"] == rater]
-        rows.append(accuracy_row(rater, int(mine["correct"].sum()), len(mine)))
-    rows.append(accuracy_row("pooled", int(picked["correct"].sum()), len(picked)))
+        rows.append(accuracy_row(rater, int(mine["correct"].sum()), len(mine))
+                    | {"unanswered": len(cases) - len(mine)})  # fmt: skip
+    rows.append(accuracy_row("pooled", int(picked["correct"].sum()), len(picked))
+                | {"unanswered": len(cases) * len(raters) - len(picked)})  # fmt: skip
     table = pd.DataFrame(rows)
     choices = picked.pivot(index="case", columns="rater", values="picked").dropna()
     scored = answers.dropna(subset=["artefact_forecast", "artefact_real"])
     per_case = scored.groupby("case")[["artefact_forecast", "artefact_real"]].mean()
     artefacts = {"cases": len(per_case)}
     if len(per_case) and (per_case["artefact_real"] != per_case["artefact_forecast"]).any():
-        test = stats.wilcoxon(per_case["artefact_real"], per_case["artefact_forecast"])
+        # scores are small whole numbers with many ties: a permutation p-value (exact
+        # enumeration up to 13 cases, else 9999 seeded resamples), not the tie-free table
+        method = stats.PermutationMethod(n_resamples=9999, random_state=0)
+        test = stats.wilcoxon(per_case["artefact_real"], per_case["artefact_forecast"],
+                              method=method)  # fmt: skip
         artefacts |= {"statistic": float(test.statistic), "p": float(test.pvalue)}
     artefacts |= {"median_real": float(per_case["artefact_real"].median()) if len(per_case)
                   else None, "median_forecast": float(per_case["artefact_forecast"].median())
@@ -358,7 +393,10 @@ def score_study(out, answer_files) -> dict:
         for rater, mine in impressions.groupby("rater")
     }
     dx = impressions.pivot(index="case", columns="rater", values="diagnosis").dropna()
-    settings = json.loads((out / SETTINGS).read_text()) if (out / SETTINGS).is_file() else {}
+    try:
+        settings = json.loads((out / SETTINGS).read_text()) if (out / SETTINGS).is_file() else {}
+    except ValueError as error:
+        raise DataError(f"{out / SETTINGS}: not JSON ({error})") from None
     summary = {
         "kind": "predictor reader study scores",
         "study": key["study"],

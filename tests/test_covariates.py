@@ -358,3 +358,19 @@ def test_covariates_leave_every_other_phantom_draw_alone():
         np.testing.assert_array_equal(anatomy_a.semi_axes, anatomy_b.semi_axes)
         for region, rate in a.rates.items():
             assert b.rates[region] == pytest.approx(rate * b.carrier_factor)
+
+
+def test_the_comparison_runs_every_forecaster_with_the_covariates(carrier_model):
+    """compare on the covariate workspace: the network (given each test participant's
+    covariates) and every regression fitted with them, none left out."""
+    from predictor.compare import CompareSettings, compare
+
+    root, _ = carrier_model
+    settings = replace(CompareSettings.from_toml(), observed_change="segmentation",
+                       bootstrap=200)  # fmt: skip
+    comparison = compare(root / "model", root / "work", settings=settings)
+    methods = set(comparison.errors["method"])
+    assert {"mixed-effects", "ridge", "svr", "no-change"} <= methods
+    assert comparison.data.get("not_fitted", {}) == {}
+    network = comparison.errors[comparison.errors["method"].str.startswith("network")]
+    assert len(network) and np.isfinite(network["abs_error_pct_tbv"]).all()
