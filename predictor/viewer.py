@@ -8,9 +8,10 @@ colour bar in its units, and the regional trajectory figure with its bands. All
 data are inside the page (zlib-compressed bytes in base64, inflated by the
 browser's DecompressionStream): no external address, no server.
 
-Volumes are shrunk for the page by averaging blocks of k x k x k voxels, k the
-smallest whole number that brings every side to at most :data:`MAX_SIDE` voxels
-(the forecast NIfTIs keep the scan's resolution), and quantised to bytes: the
+Volumes are shrunk for the page by averaging blocks of voxels, along each axis
+the smallest whole number of voxels that brings that side to at most
+:data:`MAX_SIDE` (so thick slices are kept; the forecast NIfTIs keep the scan's
+resolution), and quantised to bytes: the
 scans share one intensity window (0 to the 99.5th percentile of the baseline
 brain), the log-Jacobian a symmetric range, the SD a range from 0.
 """
@@ -47,18 +48,17 @@ class Frame:
     log_jacobian_sd: np.ndarray | None = None
 
 
-def block_size(shape) -> int:
-    """The k of :func:`shrink` for a volume of ``shape``."""
-    return max(1, int(np.ceil(max(shape) / MAX_SIDE)))
+def block_size(shape) -> tuple[int, int, int]:
+    """The block of :func:`shrink` for a volume of ``shape``: voxels along each axis."""
+    return tuple(max(1, int(np.ceil(n / MAX_SIDE))) for n in shape)
 
 
-def shrink(volume: np.ndarray, k: int) -> np.ndarray:
-    """The mean of each k x k x k block (the last partial block of an axis dropped)."""
-    if k == 1:
-        return np.asarray(volume, dtype=np.float32)
-    x, y, z = (n // k for n in volume.shape)
-    blocks = np.asarray(volume[: x * k, : y * k, : z * k], dtype=np.float32)
-    return blocks.reshape(x, k, y, k, z, k).mean(axis=(1, 3, 5))
+def shrink(volume: np.ndarray, block) -> np.ndarray:
+    """The mean of each ``block`` (voxels per axis; the last partial block dropped)."""
+    kx, ky, kz = block
+    x, y, z = (n // k for n, k in zip(volume.shape, block, strict=True))
+    blocks = np.asarray(volume[: x * kx, : y * ky, : z * kz], dtype=np.float32)
+    return blocks.reshape(x, kx, y, ky, z, kz).mean(axis=(1, 3, 5))
 
 
 def quantise(volume: np.ndarray, low: float, high: float) -> np.ndarray:
@@ -108,7 +108,7 @@ def page_data(
             sd = shrink(frame.log_jacobian_sd, k)
             block["sd"] = packed(quantise(sd, 0.0, sd_limit))
         blocks.append(block)
-    spacing = np.asarray(voxel_mm, dtype=float) * k
+    spacing = np.asarray(voxel_mm, dtype=float) * np.asarray(k)
     centre = np.argwhere(mask).mean(axis=0) if mask.any() else np.array(mask.shape) / 2
     return {
         "title": title,
@@ -135,20 +135,31 @@ def viewer_html(data: dict) -> str:
 
 
 def progression_gif(
-    baseline: np.ndarray, frames: list[Frame], brain: np.ndarray, seconds: float = 0.8
+    baseline: np.ndarray, frames: list[Frame], brain: np.ndarray, voxel_mm=(1.0, 1.0, 1.0),
+    seconds: float = 0.8,
 ) -> bytes:
     """An animated GIF of the mid-planes (axial, coronal, sagittal side by side) over the
-    baseline and every horizon, each frame captioned with its horizon."""
+    baseline and every horizon, each frame captioned with its horizon; planes drawn at
+    their shape in mm (the finest voxel side a pixel)."""
     from PIL import Image, ImageDraw
 
     top = window(baseline, brain)
     centre = np.argwhere(brain).mean(axis=0) if brain.any() else np.array(brain.shape) / 2
     i, j, k = (int(round(c)) for c in centre)
+    sx, sy, sz = np.asarray(voxel_mm, dtype=float) / float(min(voxel_mm))
+
+    def sized(plane, across, up):  # (rows, columns) image -> pixels of its size in mm
+        width, height = round(plane.shape[1] * across), round(plane.shape[0] * up)
+        if (height, width) == plane.shape:
+            return plane
+        return np.asarray(Image.fromarray(plane).resize((width, height), Image.BILINEAR))
+
     pictures = []
     for frame in [Frame(0.0, baseline), *frames]:
         volume = quantise(frame.image, 0.0, top)
-        planes = [np.flipud(volume[:, :, k].T), np.flipud(volume[:, j, :].T),
-                  np.flipud(volume[i, :, :].T)]  # fmt: skip
+        planes = [sized(np.flipud(volume[:, :, k].T), sx, sy),
+                  sized(np.flipud(volume[:, j, :].T), sx, sz),
+                  sized(np.flipud(volume[i, :, :].T), sy, sz)]  # fmt: skip
         height = max(p.shape[0] for p in planes)
         strip = np.zeros((height + 14, sum(p.shape[1] for p in planes) + 8), dtype=np.uint8)
         left = 0
@@ -186,5 +197,6 @@ def write_viewer(
     data = page_data(baseline.data, baseline.voxel_size_mm, frames, brain, title, png)
     names = [f"{stem}_{VIEWER}", f"{stem}_{ANIMATION}"]
     write_text(folder / names[0], viewer_html(data))
-    write_bytes(folder / names[1], progression_gif(baseline.data, frames, brain))
+    gif = progression_gif(baseline.data, frames, brain, baseline.voxel_size_mm)
+    write_bytes(folder / names[1], gif)
     return names
