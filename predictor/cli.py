@@ -410,9 +410,9 @@ def forecast(
             "give SCAN with --age, --sex and --diagnosis, or --cohort"
             + (f" (missing {', '.join(missing)})" if scan is not None else "")
         )
-    from predictor.covariates import parse_assignments
+    from predictor.covariates import assignments
 
-    values = parse_assignments(covariate or [], coding.covariates)
+    values = assignments(covariate or [])
     provenance, skipped = forecast_one(
         model, scan, age, sex, diagnosis, years, out, covariates=values
     )

@@ -328,28 +328,17 @@ class Encoder:
             raise DataError(f"{source}: malformed covariate statistics ({error})") from None
 
 
-def parse_assignments(texts: Sequence[str], covariates: Sequence[Covariate]) -> dict:
-    """``NAME=VALUE`` options -> {name: parsed value}; every declared covariate must be
-    given (``NAME=n/a`` where it may be missing). CohortError naming the option."""
-    by_name = {c.name: c for c in covariates}
+def assignments(texts: Sequence[str]) -> dict[str, str]:
+    """``NAME=VALUE`` command-line options -> {name: value as typed}; CohortError for one
+    without "=" or a name given twice. The model checks and parses the values
+    (:func:`predictor.forecast.covariate_values`)."""
     values = {}
     for text in texts:
         name, sep, value = text.partition("=")
         name = name.strip()
-        if not sep:
+        if not sep or not name:
             raise CohortError(f"--covariate '{text}': write NAME=VALUE")
         if name in values:
             raise CohortError(f"--covariate '{text}': {name} is given twice")
-        if name not in by_name:
-            known = ", ".join(by_name) or "none"
-            raise CohortError(
-                f"--covariate '{text}': unknown covariate '{name}' (the model knows: {known})"
-            )
-        values[name] = by_name[name].parse(value, f"--covariate {name}")
-    absent = [c.name for c in covariates if c.name not in values]
-    if absent:
-        raise CohortError(
-            f"--covariate {absent[0]}=VALUE is required by this model "
-            "(give n/a where it may be missing)"
-        )
+        values[name] = value
     return values

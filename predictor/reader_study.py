@@ -82,9 +82,10 @@ def streams(seed: int) -> dict[str, np.random.Generator]:
 
 
 def ab_order(cases: int, rng: np.random.Generator) -> list[str]:
-    """Which side (A or B) shows the forecast in each case: half each (one more A when odd),
-    in a random order."""
-    sides = np.array(["A"] * ((cases + 1) // 2) + ["B"] * (cases // 2))
+    """Which side (A or B) shows the forecast in each case: half each (the odd one out drawn
+    too), in a random order."""
+    odd = [str(rng.choice(["A", "B"]))] if cases % 2 else []
+    sides = np.array(["A"] * (cases // 2) + ["B"] * (cases // 2) + odd)
     return [str(side) for side in rng.permutation(sides)]
 
 
@@ -208,13 +209,18 @@ def build_study(
                           [pair["years"]], prepared=prepared, covariates=values)  # fmt: skip
         follow = Visit.read(layout.scan(pair["follow_key"]).folder, workspace.regions)
         real = aligned_t1(Visit.of(prepared), follow, settings, cubic=interpolation == "cubic")
-        mask = prepared.native_t1 > 0
+        mask, predicted = prepared.native_t1 > 0, result.horizons[0].image
+        top = max(float(np.percentile(prepared.native_t1[mask], 99.5)), 1e-6) if (
+            mask.any()) else 1.0  # fmt: skip
+        # one outline for A and B: where both show (at least half a display step) before
+        # any matching; inside it, nothing darker than that step, so no hole tells either
+        step = 0.5 * top / 255
+        both = (real >= step) & (predicted >= step)
         real, predicted, baseline, detail = matched(
-            real, result.horizons[0].image, prepared.native_t1, mask, match, draw["noise"]
+            real, predicted, prepared.native_t1, mask, match, draw["noise"]
         )
-        both = (real > 0) & (predicted > 0)  # one outline for A and B
-        real, predicted = np.where(both, real, 0.0), np.where(both, predicted, 0.0)
-        top = max(float(np.percentile(baseline[mask], 99.5)), 1e-6) if mask.any() else 1.0
+        real, predicted = (np.where(both, np.maximum(image, step), 0.0)
+                           for image in (real, predicted))  # fmt: skip
         centre = np.argwhere(mask).mean(axis=0) if mask.any() else np.array(mask.shape) / 2
         pictures = {name: plane_pictures(array, centre, top, scan.voxel_size_mm)
                     for name, array in (("baseline", baseline), ("real", real),
@@ -302,13 +308,26 @@ def read_answers(path: Path, study: str) -> dict:
     except (OSError, ValueError, KeyError, TypeError) as error:
         raise DataError(f"{path}: not an exported answers file ({error})") from None
     if not isinstance(given, dict) or not isinstance(rater, str) or not all(
-        isinstance(answer, dict | None) for answer in given.values()
+        _well_formed(answer) for answer in given.values()
     ):
-        raise DataError(f"{path}: not an exported answers file (answers must map cases to "
-                        "answers)")  # fmt: skip
+        raise DataError(f"{path}: not an exported answers file (each answer holds forecast "
+                        "A/B, artefacts {A, B} of 1-5 and a diagnosis text, or nulls)")  # fmt: skip
     if answers.get("study") != study:
         raise DataError(f"{path}: answers to study '{answers.get('study')}', not '{study}'")
     return answers
+
+
+def _well_formed(answer) -> bool:
+    if answer is None:
+        return True
+    if not isinstance(answer, dict) or answer.get("forecast") not in ("A", "B", None):
+        return False
+    artefacts = answer.get("artefacts") or {}
+    scores_ok = isinstance(artefacts, dict) and all(
+        v is None or (isinstance(v, int) and not isinstance(v, bool) and 1 <= v <= 5)
+        for v in artefacts.values()
+    )
+    return scores_ok and isinstance(answer.get("diagnosis"), str | None)
 
 
 def accuracy_row(rater: str, correct: int, total: int) -> dict:
@@ -376,7 +395,8 @@ def score_study(out, answer_files) -> dict:
     scored = answers.dropna(subset=["artefact_forecast", "artefact_real"])
     per_case = scored.groupby("case")[["artefact_forecast", "artefact_real"]].mean()
     artefacts = {"cases": len(per_case)}
-    if len(per_case) and (per_case["artefact_real"] != per_case["artefact_forecast"]).any():
+    differs = (per_case["artefact_real"] != per_case["artefact_forecast"]).any()
+    if len(per_case) >= 2 and differs:
         # scores are small whole numbers with many ties: a permutation p-value (exact
         # enumeration up to 13 cases, else 9999 seeded resamples), not the tie-free table
         method = stats.PermutationMethod(n_resamples=9999, random_state=0)

@@ -16,7 +16,7 @@ from typer.testing import CliRunner
 from predictor.cli import app
 from predictor.cohort import read_cohort
 from predictor.config import CohortSettings
-from predictor.covariates import Covariate, Encoder, parse_assignments
+from predictor.covariates import Covariate, Encoder, assignments
 from predictor.errors import CohortError, ConfigError, DataError
 from predictor.phantoms.generate import COVARIATES_FILE, COVARIATES_TOML
 
@@ -122,15 +122,15 @@ def test_declarations_are_checked(tmp_path):
 
 
 def test_assignments_from_the_command_line():
-    values = parse_assignments(["risk_carrier=YES", "cognition=n/a"], (CARRIER, SCORE))
-    assert values == {"risk_carrier": "yes", "cognition": None}
+    assert assignments(["risk_carrier=YES", "cognition=n/a", "score=1=2"]) == {
+        "risk_carrier": "YES", "cognition": "n/a", "score": "1=2"}  # fmt: skip
     for texts, message in (
-        (["colour=1", "risk_carrier=no", "cognition=20"], "unknown covariate 'colour'"),
-        (["risk_carrier=no"], "--covariate cognition=VALUE is required"),
         (["risk_carrier"], "write NAME=VALUE"),
+        (["=1"], "write NAME=VALUE"),
+        (["cognition=20", "cognition=21"], "cognition is given twice"),
     ):
         with pytest.raises(CohortError, match=message):
-            parse_assignments(texts, (CARRIER, SCORE))
+            assignments(texts)
 
 
 def test_table_and_bids_cohorts_carry_covariates(tiny_cohort, tmp_path):
@@ -219,10 +219,12 @@ def test_the_network_forecasts_faster_atrophy_for_carriers(carrier_model):
 @pytest.mark.parametrize(
     ("options", "message"),
     [
-        (["--covariate", "colour=1"], "unknown covariate 'colour'"),
-        (["--covariate", "risk_carrier=maybe"], "value 'maybe' is not one of no, yes"),
+        (["--covariate", "colour=1"], "covariate 'colour' is unknown to this model"),
+        (["--covariate", "risk_carrier=maybe", "--covariate", "cognition=20"],
+         "value 'maybe' is not one of no, yes"),
         (["--covariate", "risk_carrier=no", "--covariate", "cognition=high"], "not a number"),
-        (["--covariate", "cognition=20"], "--covariate risk_carrier=VALUE is required"),
+        (["--covariate", "cognition=20"], "this model needs covariate 'risk_carrier'"),
+        (["--covariate", "cognition=20", "--covariate", "cognition=21"], "given twice"),
     ],
 )
 def test_bad_covariate_options_exit_2_with_one_line(carrier_model, tmp_path, options, message):
@@ -236,12 +238,14 @@ def test_bad_covariate_options_exit_2_with_one_line(carrier_model, tmp_path, opt
 
 
 def test_a_model_without_covariates_refuses_one_and_keeps_working(tiny_model):
+    from predictor.forecast import as_ensemble, covariate_values
     from predictor.modelstore import read_model_json
 
     info = read_model_json(tiny_model)
     assert info.covariates.width == 0 and info.condition_size == 5
-    with pytest.raises(CohortError, match="the model knows: none"):
-        parse_assignments(["risk_carrier=yes"], info.coding.covariates)
+    assert covariate_values(as_ensemble(tiny_model).lead, None) == {}
+    with pytest.raises(DataError, match=r"unknown to this model \(it knows: none\)"):
+        covariate_values(as_ensemble(tiny_model).lead, {"risk_carrier": "yes"})
 
 
 def test_mixed_model_recovers_the_carrier_effect():

@@ -154,6 +154,64 @@ def fleiss_by_hand(table: np.ndarray) -> float:
     return (agreement.mean() - (p**2).sum()) / (1 - (p**2).sum())
 
 
+def shown_pixels(plane: dict) -> np.ndarray:
+    """The grey values of one plane's PNG in the study page."""
+    import base64
+    import io
+
+    from PIL import Image
+
+    return np.asarray(Image.open(io.BytesIO(base64.b64decode(plane["png"]))))
+
+
+def write_key(folder: Path, cases: dict) -> None:
+    body = {"study": "s1", "cases": cases}
+    key = body | {"sha256": hashlib.sha256(json.dumps(body, sort_keys=True).encode()).hexdigest()}
+    (folder / KEY).write_text(json.dumps(key))
+
+
+def test_artefact_test_with_ties_matches_the_full_permutation_distribution(tmp_path):
+    """16 cases of tied whole-number differences: the score's Wilcoxon p (9999 seeded sign
+    flips) within 0.01 of the exact p from all 2^16 sign flips of the signed-rank statistic
+    with midranks (Wilcoxon 1945; ties share their mean rank), counted by hand here."""
+    from scipy.stats import rankdata
+
+    differences = np.array([2, 2, 1, 1, 1, 1, -1, 1, 2, 1, -1, 1, 1, 2, 1, 3])  # real - forecast
+    cases = {f"c{k}": {"forecast": "A", "participant_id": f"sub-{k}", "session_to": "ses-02",
+                       "years": 2.0, "diagnosis": "CN"} for k in range(16)}  # fmt: skip
+    write_key(tmp_path, cases)
+    answers = {f"c{k}": {"forecast": "A", "artefacts": {"A": 1, "B": 1 + int(d)} if d > 0
+                         else {"A": 1 - int(d), "B": 1}, "diagnosis": None}
+               for k, d in enumerate(differences)}  # fmt: skip
+    path = tmp_path / "r1.json"
+    path.write_text(json.dumps({"study": "s1", "rater": "r1", "answers": answers}))
+    p = score_study(tmp_path, [path])["artefacts_real_vs_forecast"]["p"]
+    ranks = rankdata(np.abs(differences))
+    observed = ranks[differences > 0].sum()
+    signs = (np.arange(2**16)[:, None] >> np.arange(16)) & 1
+    statistics = signs @ ranks
+    centre = ranks.sum() / 2
+    exact = np.mean(np.abs(statistics - centre) >= abs(observed - centre) - 1e-9)
+    assert p == pytest.approx(exact, abs=0.01)
+
+
+def test_one_case_and_malformed_answers(tmp_path):
+    cases = {"c0": {"forecast": "B", "participant_id": "sub-1", "session_to": "ses-02",
+                    "years": 2.0, "diagnosis": "AD"}}  # fmt: skip
+    write_key(tmp_path, cases)
+    path = tmp_path / "r1.json"
+    answer = {"forecast": "B", "artefacts": {"A": 2, "B": 3}, "diagnosis": "AD"}
+    path.write_text(json.dumps({"study": "s1", "rater": "r1", "answers": {"c0": answer}}))
+    summary = score_study(tmp_path, [path])  # one case: no Wilcoxon test, no crash
+    assert summary["accuracy"][0]["correct"] == 1 and "p" not in summary[
+        "artefacts_real_vs_forecast"]  # fmt: skip
+    for broken in ({"forecast": "B", "artefacts": [1, 2]}, {"forecast": "C"},
+                   {"forecast": "A", "artefacts": {"A": "x"}}):  # fmt: skip
+        path.write_text(json.dumps({"study": "s1", "rater": "r1", "answers": {"c0": broken}}))
+        result = runner.invoke(app, ["reader-study", "score", str(tmp_path), str(path)])
+        assert result.exit_code == 2 and "not an exported answers file" in result.output
+
+
 def test_scores_match_scipy_and_statsmodels_on_hand_cases(tmp_path):
     """Three readers, ten cases: accuracy, exact CI and p from scipy's binomtest (and 8/10's
     two-sided p by hand, 2 x 56 / 1024); kappa from the Fleiss (1971) formula by hand and
@@ -225,10 +283,22 @@ def test_reader_study_page_is_blind_and_answers_round_trip(
         assert list(shown) == ["id", "years", "baseline", "A", "B"]  # order too
         assert [(p["name"], len(p["png"])) for p in shown["A"]] == [
             (p["name"], len(p["png"])) for p in shown["B"]]  # fmt: skip
+        for a, b in zip(shown["A"], shown["B"], strict=True):  # one outline, no holes
+            assert np.array_equal(shown_pixels(a) > 0, shown_pixels(b) > 0)
     for case in key["cases"].values():
         assert case["participant_id"] not in page and case["session_to"] not in page
     driver = opened(browser, out / PAGE)
+    driver.find_element("id", "pick-A").click()
+    driver.find_element("id", "next").click()  # no reader code yet: nothing moves
+    assert "reader code first" in driver.find_element("id", "status").text
+    assert driver.execute_script("return document.body.dataset.case") == "0"
     driver.find_element("id", "rater").send_keys("reader-1")
+    driver.execute_script("document.getElementById('rater').dispatchEvent(new Event('change'))")
+    kept = driver.execute_script(
+        "return JSON.parse(localStorage.getItem(`reading-${STUDY.study}-reader-reader-1`))"
+        ".answers[STUDY.cases[0].id].forecast"
+    )
+    assert kept == "A"  # the first code keeps the answer on screen
     for _ in range(3):
         driver.find_element("id", "pick-A").click()
         for side, score in (("A", "2"), ("B", "1")):
