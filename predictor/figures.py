@@ -49,8 +49,14 @@ def figure_png(figure) -> bytes:
     return stream.getvalue()
 
 
+#: the slices of :func:`planes`, and the (column, row) voxel axes each one shows
+PLANE_NAMES = ("axial", "coronal", "sagittal")
+PLANE_AXES = ((0, 1), (0, 2), (1, 2))
+
+
 def planes(volume: np.ndarray, centre) -> list[np.ndarray]:
-    """Axial, coronal and sagittal slices through ``centre`` (voxel indices), display-ready."""
+    """Axial, coronal and sagittal slices through ``centre`` (voxel indices), display-ready:
+    (rows, columns) arrays with row 0 at the bottom (see :data:`PLANE_AXES`)."""
     i, j, k = (int(round(c)) for c in centre)
     return [volume[:, :, k].T, volume[:, j, :].T, volume[i, :, :].T]
 
@@ -102,8 +108,7 @@ def forecast_overview(
                                                       strict=True)]  # fmt: skip
         columns.append(("member spread", sd, SPREAD_MAP, (0, limit(sd, 1e-4)),
                         "SD of the log-Jacobian across members"))  # fmt: skip
-    # displayed rows over columns: axial y/x, coronal z/x, sagittal z/y
-    aspects = [voxel_mm[1] / voxel_mm[0], voxel_mm[2] / voxel_mm[0], voxel_mm[2] / voxel_mm[1]]
+    aspects = [voxel_mm[row] / voxel_mm[column] for column, row in PLANE_AXES]
     figure = plt.figure(figsize=(3.25 * len(columns), 10.5))
     layout = figure.add_gridspec(
         4, len(columns), height_ratios=[1, 1, 1, 0.06], hspace=0.08, wspace=0.05
@@ -120,7 +125,7 @@ def forecast_overview(
             if row == 0:
                 axis.set_title(name, fontsize=11)
             if column == 0:
-                axis.set_ylabel(("axial", "coronal", "sagittal")[row], fontsize=10)
+                axis.set_ylabel(PLANE_NAMES[row], fontsize=10)
             if row < 2:
                 axis.text(0.02, 0.03, "L", transform=axis.transAxes, color="#e0e0e0", fontsize=9)
         colour_bar = figure.colorbar(

@@ -125,13 +125,12 @@ def plane_pictures(volume: np.ndarray, centre, top: float, voxel_mm) -> list[dic
     resolution, intensity 0-``top`` (shared by every image of a case)."""
     from PIL import Image
 
-    i, j, k = (int(round(c)) for c in centre)
-    sx, sy, sz = (float(v) for v in voxel_mm)
-    planes = (("axial", volume[:, :, k], sx, sy), ("coronal", volume[:, j, :], sx, sz),
-              ("sagittal", volume[i, :, :], sy, sz))  # fmt: skip
+    from predictor.figures import PLANE_AXES, PLANE_NAMES, planes
+
     pictures = []
-    for name, plane, across, up in planes:
-        scaled = np.clip(np.flipud(plane.T) / top, 0.0, 1.0)
+    for name, plane, (column, row) in zip(PLANE_NAMES, planes(volume, centre), PLANE_AXES,
+                                          strict=True):  # fmt: skip
+        scaled = np.clip(np.flipud(plane) / top, 0.0, 1.0)
         buffer = io.BytesIO()
         # uncompressed: a compressed size would tell a smooth image from a noisy one
         picture = Image.fromarray(np.round(255 * scaled).astype(np.uint8))
@@ -139,8 +138,8 @@ def plane_pictures(volume: np.ndarray, centre, top: float, voxel_mm) -> list[dic
         pictures.append({
             "name": name,
             "png": base64.b64encode(buffer.getvalue()).decode(),
-            "width_mm": round(plane.shape[0] * across, 2),
-            "height_mm": round(plane.shape[1] * up, 2),
+            "width_mm": round(plane.shape[1] * float(voxel_mm[column]), 2),
+            "height_mm": round(plane.shape[0] * float(voxel_mm[row]), 2),
         })  # fmt: skip
     return pictures
 

@@ -29,6 +29,7 @@ from pathlib import Path
 import numpy as np
 
 from predictor.cautions import CAUTION
+from predictor.figures import PLANE_AXES, planes
 
 #: largest side (voxels) of a volume in the page
 MAX_SIDE = 128
@@ -145,8 +146,7 @@ def progression_gif(
 
     top = window(baseline, brain)
     centre = np.argwhere(brain).mean(axis=0) if brain.any() else np.array(brain.shape) / 2
-    i, j, k = (int(round(c)) for c in centre)
-    sx, sy, sz = np.asarray(voxel_mm, dtype=float) / float(min(voxel_mm))
+    scale = np.asarray(voxel_mm, dtype=float) / float(min(voxel_mm))
 
     def sized(plane, across, up):  # (rows, columns) image -> pixels of its size in mm
         width, height = round(plane.shape[1] * across), round(plane.shape[0] * up)
@@ -157,13 +157,13 @@ def progression_gif(
     pictures = []
     for frame in [Frame(0.0, baseline), *frames]:
         volume = quantise(frame.image, 0.0, top)
-        planes = [sized(np.flipud(volume[:, :, k].T), sx, sy),
-                  sized(np.flipud(volume[:, j, :].T), sx, sz),
-                  sized(np.flipud(volume[i, :, :].T), sy, sz)]  # fmt: skip
-        height = max(p.shape[0] for p in planes)
-        strip = np.zeros((height + 14, sum(p.shape[1] for p in planes) + 8), dtype=np.uint8)
+        shown = [sized(np.flipud(plane), scale[column], scale[row])
+                 for plane, (column, row) in zip(planes(volume, centre), PLANE_AXES,
+                                                 strict=True)]  # fmt: skip
+        height = max(p.shape[0] for p in shown)
+        strip = np.zeros((height + 14, sum(p.shape[1] for p in shown) + 8), dtype=np.uint8)
         left = 0
-        for plane in planes:
+        for plane in shown:
             strip[14 : 14 + plane.shape[0], left : left + plane.shape[1]] = plane
             left += plane.shape[1] + 4
         picture = Image.fromarray(strip)
