@@ -306,13 +306,9 @@ def forecast_one(
         return write_forecast(result, model, folder, stem, checksum, identifiers), False
 
 
-def _cohort_task(model_dir: str, row: dict, horizons, out: str, threads: int) -> dict:
+def _cohort_task(model_dir: str, row: dict, horizons, out: str) -> dict:
     """Worker: one participant's forecast (its covariates from its row, when the model
     declares any); returns its status instead of raising."""
-    import torch
-
-    if threads:
-        torch.set_num_threads(threads)
     identifiers = {key: row[key] for key in ("participant_id", "session_id")}
     try:
         _, skipped = forecast_one(
@@ -370,8 +366,7 @@ def forecast_cohort(
             raise DataError(f"no scan of session '{session}' in the cohort")
     rows = chosen.to_dict("records")
     arguments = [
-        (models[row["participant_id"]], row, horizons, str(out), 1 if jobs > 1 else 0)
-        for row in rows
+        (models[row["participant_id"]], row, horizons, str(out)) for row in rows
     ]
     results = run_all(_cohort_task, arguments, jobs, progress)
     failures = [r for r in results if "failed" in r]

@@ -156,20 +156,13 @@ def attach_prior(pairs: pd.DataFrame, prior, names) -> pd.DataFrame:
     ``names`` are the prior regions (:attr:`~predictor.regions.RegionSet.prior`).
     """
     request = pairs.reset_index(drop=True)
-    request = request.assign(participant_id=[f"pair{k}" for k in range(len(request))])
-    ratio = {region: np.zeros(len(request)) for region in names}
-    spread = {region: np.zeros(len(request)) for region in names}
-    for years, index in request.groupby("years").groups.items():
-        subset = request.loc[index]
-        forecast = prior.predict(subset, [years]).set_index(["region", "participant_id"])
-        for region in names:
-            values = forecast.loc[region].loc[subset["participant_id"]]
-            baseline = subset[region].to_numpy()
-            ratio[region][index] = values["mean_ml"].to_numpy() / baseline
-            spread[region][index] = values["sd_ml"].to_numpy() / baseline
-    columns = {f"{region}_prior": ratio[region] for region in names}
-    columns |= {f"{region}_prior_sd": spread[region] for region in names}
-    return pairs.reset_index(drop=True).assign(**columns)
+    forecast = prior.predict_each(request).groupby("region", sort=False)
+    ratio, spread = {}, {}
+    for region in names:
+        values, baseline = forecast.get_group(region), request[region].to_numpy()
+        ratio[f"{region}_prior"] = values["mean_ml"].to_numpy() / baseline
+        spread[f"{region}_prior_sd"] = values["sd_ml"].to_numpy() / baseline
+    return request.assign(**ratio, **spread)
 
 
 def grid_entry(t1, mask, tissue, deep) -> torch.Tensor:

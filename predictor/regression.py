@@ -676,8 +676,15 @@ class MixedEffectsForecaster:
         residual noise included); with ``noise_free``, for the participant's true volume
         at the horizon (the mean of its follow-up observations), the like of a forecast."""
         horizons = check_request(baseline, years, self.labels_, self.regions_)
-        base = baseline.reset_index(drop=True).assign(baseline_age=baseline["age"].to_numpy())
-        grid = _grid(base, horizons)
+        return self.predict_each(_grid(baseline.reset_index(drop=True), horizons), noise_free)
+
+    def predict_each(self, rows: pd.DataFrame, noise_free: bool = False) -> pd.DataFrame:
+        """:meth:`predict` for baselines that each carry their own horizon (column
+        ``years``, years): one forecast per row and region, regions in turn, rows in
+        order within each (``participant_id`` may repeat, as for visit pairs)."""
+        numbered = rows.assign(participant_id=np.arange(len(rows)))
+        check_request(numbered, rows["years"], self.labels_, self.regions_)
+        grid = rows.reset_index(drop=True).assign(baseline_age=rows["age"].to_numpy())
         t = grid["years"].to_numpy(float)
         x0 = self._design(grid, np.zeros(len(grid)))
         xt = self._design(grid, t)

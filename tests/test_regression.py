@@ -159,6 +159,19 @@ def test_small_cohort_falls_back_to_a_smaller_design_with_a_warning(tmp_path):
     pd.testing.assert_frame_equal(older.predict(base, [2]), legacy.predict(base, [2]))
 
 
+def test_forecasts_at_each_rows_own_horizon_equal_the_grid_forecasts():
+    # predict_each (visit pairs: a horizon per row, participants repeated) gives, row by
+    # row, what predict gives for that baseline at that horizon.
+    model = MixedEffectsForecaster(design="diagnosis-by-time").fit(simulate_lmm(8), ["hippocampus"])
+    base = baseline_rows(check_table(simulate_lmm(8), ["hippocampus"])).reset_index(drop=True)
+    rows = pd.concat([base.assign(years=1.5), base.iloc[:3].assign(years=4.0)], ignore_index=True)
+    each = model.predict_each(rows, noise_free=True)
+    for k, row in rows.iterrows():
+        grid = model.predict(rows.iloc[[k]], [row["years"]], noise_free=True)
+        np.testing.assert_allclose(each.iloc[k][["mean_ml", "sd_ml"]].to_numpy(float),
+                                   grid[["mean_ml", "sd_ml"]].to_numpy(float)[0], rtol=1e-12)
+
+
 @pytest.fixture(scope="module")
 def linear_scenario(tmp_path_factory) -> Scenario:
     """memory_clinic with linear trajectories (no acceleration): the model class of the

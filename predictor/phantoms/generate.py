@@ -31,7 +31,7 @@ from predictor import __version__
 from predictor.errors import OutputError
 from predictor.files import write_json, write_text, write_tsv
 from predictor.nifti import save_array
-from predictor.parallel import run_all, single_threaded_torch
+from predictor.parallel import run_all
 from predictor.phantoms.anatomy import (
     CSF_LABELS,
     GM_LABELS,
@@ -304,10 +304,7 @@ def generate_cohort(
         raise ValueError(f"participants must be at least 1, got {count}")
     groups = assign_groups(scenario.cohort["diagnosis_fractions"], count, seed)
     arguments = [(scenario.source, size, k, groups[k], seed, str(out)) for k in range(count)]
-    # one PyTorch thread per worker; never in this process (run_all runs a single item
-    # here), whose thread count other work relies on
-    workers = single_threaded_torch if jobs > 1 and count > 1 else None
-    results = run_all(_make_participant, arguments, jobs, progress, workers)
+    results = run_all(_make_participant, arguments, jobs, progress)
     _write_tables(out, scenario, size, seed, results)
     if scenario.kind == "geometric":  # a "template" scenario's template is mni152 itself
         write_template(scenario, size, out)
