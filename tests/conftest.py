@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 import numpy as np
@@ -10,6 +11,19 @@ import pytest
 NIBABEL_ANATOMICAL = (
     Path(__import__("nibabel").__file__).parent / "tests" / "data" / "anatomical.nii"
 )
+
+
+def pytest_configure(config):
+    """Under pytest-xdist (``make test`` runs two test processes, which share the cores),
+    one PyTorch thread in each test process and in the commands it starts (they inherit
+    OMP_NUM_THREADS): two processes of two threads each on two cores spin against each
+    other (see predictor.parallel), and a command must train as the test process does
+    for their weights to be compared bit for bit."""
+    if os.environ.get("PYTEST_XDIST_WORKER"):
+        os.environ["OMP_NUM_THREADS"] = "1"
+        import torch
+
+        torch.set_num_threads(1)
 
 
 @pytest.fixture
