@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -26,6 +27,30 @@ def pytest_configure(config):
         torch.set_num_threads(1)
 
 
+#: the slowest files (most of their time in fixtures), run first so that the two test
+#: processes of ``make test`` (one file at a time each) finish together
+SLOWEST_FIRST = (
+    "test_evaluate.py",
+    "test_covariates.py",
+    "test_longitudinal.py",
+    "test_cli.py",
+    "test_prepare.py",
+    "test_reliability.py",
+    "test_regression.py",
+    "test_ensemble.py",
+)
+
+
+def pytest_collection_modifyitems(config, items):
+    """Order the files as :data:`SLOWEST_FIRST`, the others after them as collected."""
+
+    def rank(item):
+        name = item.path.name
+        return SLOWEST_FIRST.index(name) if name in SLOWEST_FIRST else len(SLOWEST_FIRST)
+
+    items.sort(key=rank)  # stable: tests keep their order within a file
+
+
 @pytest.fixture
 def rng() -> np.random.Generator:
     return np.random.default_rng(20261201)
@@ -40,6 +65,25 @@ def tiny_cohort(tmp_path_factory) -> Path:
     return generate_cohort(out, participants=4, size="tiny", seed=3)
 
 
+def built_once(tmp_path_factory, name: str, build) -> Path:
+    """Folder ``name``, filled by ``build(folder)`` once per test run: under pytest-xdist
+    the first test process to need it builds it under a file lock, and the other waits
+    and reads the same folder (pytest-xdist's documented pattern). Its users only read it,
+    or rewrite a file atomically with the same content."""
+    from filelock import FileLock
+
+    root = tmp_path_factory.getbasetemp()
+    if os.environ.get("PYTEST_XDIST_WORKER"):
+        root = root.parent  # shared by the run's test processes
+    folder = root / name
+    with FileLock(f"{folder}.lock"):
+        if not (root / f"{name}.complete").is_file():
+            shutil.rmtree(folder, ignore_errors=True)
+            build(folder)
+            (root / f"{name}.complete").touch()
+    return folder
+
+
 @pytest.fixture(scope="session")
 def tiny_workspace(tmp_path_factory) -> Path:
     """Twenty tiny phantom participants (seed 4) prepared on a 4 mm working grid."""
@@ -49,10 +93,12 @@ def tiny_workspace(tmp_path_factory) -> Path:
     from predictor.phantoms.generate import TEMPLATE, generate_cohort
     from predictor.prepare import prepare_cohort
 
-    root = tmp_path_factory.mktemp("tinywork")
-    cohort = generate_cohort(root / "bids", participants=20, size="tiny", seed=4, jobs=2)
-    prepare_cohort(read_cohort(cohort), root / "work", cohort / TEMPLATE, BOUNDARY_CHANGE_ONLY, 2)
-    return root / "work"
+    def build(root):
+        cohort = generate_cohort(root / "bids", participants=20, size="tiny", seed=4, jobs=2)
+        settings = BOUNDARY_CHANGE_ONLY
+        prepare_cohort(read_cohort(cohort), root / "work", cohort / TEMPLATE, settings, 2)
+
+    return built_once(tmp_path_factory, "tinywork", build) / "work"
 
 
 @pytest.fixture(scope="session")
@@ -71,6 +117,8 @@ def tiny_model(tiny_workspace, tmp_path_factory) -> Path:
     from predictor.config import CONFIG_DIR
     from predictor.training import TrainConfig, train
 
-    model = tmp_path_factory.mktemp("tinymodel") / "model"
-    train(tiny_workspace, model, TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml"), epochs=4)
-    return model
+    def build(folder):
+        config = TrainConfig.from_toml(CONFIG_DIR / "train-tiny.toml")
+        train(tiny_workspace, folder / "model", config, epochs=4)
+
+    return built_once(tmp_path_factory, "tinymodel", build) / "model"
