@@ -17,7 +17,7 @@ lint: $(STAMP)
 	$(BIN)/ruff check .
 
 test: $(STAMP) lint
-	$(BIN)/python -m pytest -n 2 --dist loadfile --durations=15
+	$(BIN)/python -m pytest -n 2 --dist loadfile --no-loadscope-reorder --durations=15
 
 demo: $(STAMP)
 	$(BIN)/predictor demo $(OUT)

@@ -156,10 +156,10 @@ def attach_prior(pairs: pd.DataFrame, prior, names) -> pd.DataFrame:
     ``names`` are the prior regions (:attr:`~predictor.regions.RegionSet.prior`).
     """
     request = pairs.reset_index(drop=True)
-    forecast = prior.predict_each(request).groupby("region", sort=False)
+    forecast = prior.predict_each(request)
     ratio, spread = {}, {}
     for region in names:
-        values, baseline = forecast.get_group(region), request[region].to_numpy()
+        values, baseline = forecast[forecast["region"] == region], request[region].to_numpy()
         ratio[f"{region}_prior"] = values["mean_ml"].to_numpy() / baseline
         spread[f"{region}_prior_sd"] = values["sd_ml"].to_numpy() / baseline
     return request.assign(**ratio, **spread)

@@ -2,15 +2,17 @@
 
 Workers are *spawned*, not forked: a process that has already run PyTorch or
 ITK holds thread pools whose locks a fork would copy in a locked state, and a
-forked worker can then wait forever. Each worker runs PyTorch on one thread:
-``jobs`` workers share the cores, and two workers of two threads each on two
-cores ran held-out forecasts ten times slower (47.7 s against 4.5 s for ten
-participants, 2026-12-05).
+forked worker can then wait forever. The ``jobs`` workers share the cores:
+each runs PyTorch (and OpenMP) on its share of them. Two workers of two
+threads each on two cores ran held-out forecasts ten times slower (47.7 s
+against 4.5 s for ten participants, 2026-12-05).
 """
 
 from __future__ import annotations
 
 import multiprocessing
+import os
+import sys
 from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor
 
@@ -25,17 +27,17 @@ def run_all(
     """``[function(*a) for a in arguments]``, in ``jobs`` processes when ``jobs > 1``.
 
     Results keep the order of ``arguments``; ``progress()`` is called after
-    each item; ``initializer()`` runs once in each worker, after PyTorch is set to one
-    thread there (or once here when the items run in this process, PyTorch's threads
-    unchanged). ``function`` and ``initializer`` must be importable (defined at module
-    level).
+    each item; ``initializer()`` runs once in each worker, after PyTorch is set to the
+    worker's share of the cores (or once here when the items run in this process,
+    PyTorch's threads unchanged). ``function`` and ``initializer`` must be importable
+    (defined at module level).
     """
     results = []
     if jobs > 1 and len(arguments) > 1:
         context = multiprocessing.get_context("spawn")
         with ProcessPoolExecutor(
             max_workers=jobs, mp_context=context, initializer=_start_worker,
-            initargs=(initializer,),
+            initargs=(max(1, len(os.sched_getaffinity(0)) // jobs), initializer),
         ) as pool:  # fmt: skip
             for future in [pool.submit(function, *argument) for argument in arguments]:
                 results.append(future.result())
@@ -51,10 +53,11 @@ def run_all(
     return results
 
 
-def _start_worker(initializer: Callable[[], None] | None) -> None:
-    """A worker's start: one PyTorch thread, then ``initializer()``."""
-    import torch
-
-    torch.set_num_threads(1)
+def _start_worker(threads: int, initializer: Callable[[], None] | None) -> None:
+    """A worker's start: ``threads`` threads for OpenMP and PyTorch (read when PyTorch is
+    imported, or set where it already is), then ``initializer()``."""
+    os.environ["OMP_NUM_THREADS"] = str(threads)
+    if "torch" in sys.modules:
+        sys.modules["torch"].set_num_threads(threads)
     if initializer:
         initializer()

@@ -676,15 +676,29 @@ class MixedEffectsForecaster:
         residual noise included); with ``noise_free``, for the participant's true volume
         at the horizon (the mean of its follow-up observations), the like of a forecast."""
         horizons = check_request(baseline, years, self.labels_, self.regions_)
-        return self.predict_each(_grid(baseline.reset_index(drop=True), horizons), noise_free)
+        return self._forecast(_grid(baseline.reset_index(drop=True), horizons), noise_free)
 
     def predict_each(self, rows: pd.DataFrame, noise_free: bool = False) -> pd.DataFrame:
         """:meth:`predict` for baselines that each carry their own horizon (column
-        ``years``, years): one forecast per row and region, regions in turn, rows in
-        order within each (``participant_id`` may repeat, as for visit pairs)."""
+        ``years``, years) and covariate values: one forecast per row and region, regions
+        in turn, rows in order within each (``participant_id`` may repeat, as for the
+        visit pairs of one participant)."""
+        rows = rows.reset_index(drop=True)
+        if "participant_id" not in rows.columns:
+            raise DataError("baseline rows lack column 'participant_id'")
+        if rows.empty:
+            return _long([], "", [], [], [], [], [])
+        # one participant per row: each row keeps its own covariates (at_baseline takes a
+        # participant's first row)
         numbered = rows.assign(participant_id=np.arange(len(rows)))
         check_request(numbered, rows["years"], self.labels_, self.regions_)
-        grid = rows.reset_index(drop=True).assign(baseline_age=rows["age"].to_numpy())
+        table = self._forecast(numbered, noise_free)
+        ids = np.tile(rows["participant_id"].to_numpy(), len(self.regions_))
+        return table.assign(participant_id=ids)
+
+    def _forecast(self, grid: pd.DataFrame, noise_free: bool) -> pd.DataFrame:
+        """The common table of checked baseline rows that carry their horizon (``years``)."""
+        grid = grid.assign(baseline_age=grid["age"].to_numpy())
         t = grid["years"].to_numpy(float)
         x0 = self._design(grid, np.zeros(len(grid)))
         xt = self._design(grid, t)

@@ -27,8 +27,8 @@ def pytest_configure(config):
         torch.set_num_threads(1)
 
 
-#: the slowest files (most of their time in fixtures), run first so that the two test
-#: processes of ``make test`` (one file at a time each) finish together
+#: the slowest files (most of their time in fixtures), handed out first (make test keeps
+#: this order: --no-loadscope-reorder) so that its two test processes finish together
 SLOWEST_FIRST = (
     "test_evaluate.py",
     "test_covariates.py",

@@ -348,6 +348,26 @@ def test_the_mixed_model_reads_covariates_at_baseline():
     np.testing.assert_allclose(fits[0].coefficients("brain"), fits[1].coefficients("brain"))
 
 
+def test_visit_pair_forecasts_start_from_each_pairs_own_covariates():
+    """The training prior's forecast of a visit pair (predict_each, rows of one participant
+    repeated) uses the pair's earlier visit's covariates, as a forecast from that visit
+    alone (predict) does."""
+    from predictor.phantoms.generate import true_volume_table
+    from predictor.phantoms.scenario import Scenario
+    from predictor.regression import MixedEffectsForecaster
+
+    truth, _ = true_volume_table(Scenario.from_toml("memory_clinic_covariates"), 60, seed=4)
+    truth["cognition"] = truth["cognition"].replace("n/a", "25")
+    model = MixedEffectsForecaster(coding=coding_with_covariates()).fit(truth, ["brain"])
+    one = truth[truth["participant_id"] == truth["participant_id"].iloc[0]]
+    rows = one.iloc[:-1].assign(years=np.diff(one["years"].to_numpy()))
+    assert rows["cognition"].nunique() > 1  # the visits' scores differ
+    each = model.predict_each(rows)
+    for k in range(len(rows)):
+        alone = model.predict(rows.iloc[[k]], [rows["years"].iloc[k]])
+        assert each["mean_ml"].iloc[k] == pytest.approx(alone["mean_ml"].iloc[0], rel=1e-12)
+
+
 def test_covariates_leave_every_other_phantom_draw_alone():
     """The covariates come from their own random stream: the same participants as the
     scenario without them, except for the carriers' rates."""

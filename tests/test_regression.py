@@ -168,8 +168,12 @@ def test_forecasts_at_each_rows_own_horizon_equal_the_grid_forecasts():
     each = model.predict_each(rows, noise_free=True)
     for k, row in rows.iterrows():
         grid = model.predict(rows.iloc[[k]], [row["years"]], noise_free=True)
-        np.testing.assert_allclose(each.iloc[k][["mean_ml", "sd_ml"]].to_numpy(float),
-                                   grid[["mean_ml", "sd_ml"]].to_numpy(float)[0], rtol=1e-12)
+        np.testing.assert_allclose(
+            each.iloc[k][["mean_ml", "sd_ml"]].to_numpy(float),
+            grid[["mean_ml", "sd_ml"]].to_numpy(float)[0],
+            rtol=1e-12,
+        )
+    assert model.predict_each(rows.iloc[:0]).empty
 
 
 @pytest.fixture(scope="module")
