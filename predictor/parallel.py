@@ -37,7 +37,7 @@ def run_all(
         context = multiprocessing.get_context("spawn")
         with ProcessPoolExecutor(
             max_workers=jobs, mp_context=context, initializer=_start_worker,
-            initargs=(max(1, len(os.sched_getaffinity(0)) // jobs), initializer),
+            initargs=(max(1, cores() // jobs), initializer),
         ) as pool:  # fmt: skip
             for future in [pool.submit(function, *argument) for argument in arguments]:
                 results.append(future.result())
@@ -51,6 +51,13 @@ def run_all(
         if progress:
             progress()
     return results
+
+
+def cores() -> int:
+    """CPU cores this process may run on (its affinity where the system reports one)."""
+    if hasattr(os, "sched_getaffinity"):  # Linux; not macOS or Windows
+        return len(os.sched_getaffinity(0))
+    return os.cpu_count() or 1
 
 
 def _start_worker(threads: int, initializer: Callable[[], None] | None) -> None:

@@ -71,6 +71,7 @@ from predictor.pairs import (
     template_entry,
     visit_pairs,
 )
+from predictor.parallel import cores
 from predictor.regions import TOTAL_BRAIN, RegionSet
 from predictor.regression import baseline_rows, save_mixed_model
 from predictor.rng import seeded_rng
@@ -449,7 +450,7 @@ def train(
         raise OutputError(
             f"{model_dir}: holds a trained model; pass --resume to continue or --force to restart"
         )
-    threads = settings.threads or (max(1, (os.cpu_count() or 1) // world) if world > 1 else 0)
+    threads = settings.threads or (max(1, cores() // world) if world > 1 else 0)
     if threads:
         torch.set_num_threads(threads)
     run, prior = prepare_run(work, config, seed, split, member)
