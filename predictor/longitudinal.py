@@ -89,9 +89,11 @@ class Visit:
         from predictor.workspace import ScanFiles
 
         files = ScanFiles(folder)
-        image = nib.load(files.native_t1)
+        image = nib.load(files.native_t1)  # the whole head; the brain is native_dseg > 0
+        brain = np.asarray(nib.load(files.labels).dataobj) > 0
         tissue, deep = native_maps(files, regions)
-        return cls(np.asarray(image.dataobj, dtype=np.float32), image.affine, tissue, deep)
+        t1 = np.where(brain, np.asarray(image.dataobj, dtype=np.float32), 0.0)
+        return cls(t1.astype(np.float32), image.affine, tissue, deep)
 
     @property
     def voxel_ml(self) -> float:
@@ -105,13 +107,18 @@ class Visit:
         return to_sitk(self.t1, self.affine)
 
 
-def rigid_alignment(fixed: Visit, moving: Visit, settings) -> np.ndarray:
-    """4x4 RAS matrix mapping fixed points (mm) to moving points: a rigid registration."""
+#: SimpleITK transform of each number of registration parameters (rigid, 3 scales, affine)
+TRANSFORMS = {6: sitk.Euler3DTransform, 9: sitk.ScaleVersor3DTransform, 12: sitk.AffineTransform}
+
+
+def rigid_alignment(fixed: Visit, moving: Visit, settings, parameters: int = 6) -> np.ndarray:
+    """4x4 RAS matrix mapping fixed points (mm) to moving points: a rigid registration
+    (or, with ``parameters`` 9 or 12, one with three scales or affine) of the brains."""
     fixed_image, moving_image = fixed.image(), moving.image()
     initial = sitk.CenteredTransformInitializer(
         fixed_image,
         moving_image,
-        sitk.Euler3DTransform(),
+        TRANSFORMS[parameters](),
         sitk.CenteredTransformInitializerFilter.MOMENTS,
     )
     options = SimpleNamespace(

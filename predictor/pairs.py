@@ -217,11 +217,16 @@ def region_weights(entry: torch.Tensor, regions: RegionSet, names) -> torch.Tens
 class ScanStore:
     """Working-grid entries (:func:`grid_entry`) of prepared scans, read on demand.
 
-    At most ``capacity`` are kept, so memory stays flat as a cohort grows.
+    ``spaces`` gives a scan key's within-subject entry (volumes.tsv's
+    ``within_subject``): its images are read from there, so a participant's
+    visits share one transform to the template. At most ``capacity`` are kept, so
+    memory stays flat as a cohort grows.
     """
 
-    def __init__(self, work: str | os.PathLike[str], capacity: int = 64):
+    def __init__(self, work: str | os.PathLike[str], spaces: dict | None = None,
+                 capacity: int = 64):  # fmt: skip
         self.layout = Layout(work)
+        self.spaces = spaces or {}
         self.capacity = capacity
         self._cache: OrderedDict[str, torch.Tensor] = OrderedDict()
 
@@ -229,7 +234,7 @@ class ScanStore:
         if key in self._cache:
             self._cache.move_to_end(key)
             return self._cache[key]
-        files = self.layout.scan(key)
+        files = self.layout.grid(key, self.spaces.get(key))
         try:
             tensor = grid_entry(
                 *(nib.load(path).dataobj for path in (files.t1, files.mask)),

@@ -40,7 +40,7 @@ from predictor.segment import fit_mixture
 from predictor.spatial import grid_affine
 from predictor.templates import Template, load_template
 from predictor.volumes import region_volumes, unmixed_fraction
-from predictor.workspace import Layout, ScanFiles, volume_table
+from predictor.workspace import WITHIN_SUBJECT, Layout, ScanFiles, volume_table
 
 
 @dataclass(frozen=True)
@@ -112,10 +112,19 @@ class LongitudinalSettings:
     demons_iterations: tuple[int, ...]
     demons_field_sd_voxels: float
     histogram_levels: int
+    within_subject: bool  # every visit of a participant in one space (predictor.within_subject)
+    within_subject_parameters: int  # 6 (rigid), 9 (and three scales) or 12 (affine)
+    within_subject_rounds: int
+    within_subject_tolerance: float
 
     def __post_init__(self):
         if len(self.rigid_shrink_factors) != len(self.rigid_smoothing_mm):
             raise ValueError("'rigid_shrink_factors' and 'rigid_smoothing_mm' need equal lengths")
+        if self.within_subject_parameters not in (6, 9, 12):
+            raise ValueError("'within_subject_parameters' must be 6, 9 or 12, got "
+                             f"{self.within_subject_parameters}")  # fmt: skip
+        if self.within_subject_rounds < 1:
+            raise ValueError("'within_subject_rounds' must be at least 1")
         if len(self.demons_shrink_factors) != len(self.demons_iterations):
             raise ValueError("'demons_shrink_factors' and 'demons_iterations' need equal lengths")
 
@@ -178,7 +187,8 @@ class PreparedScan:
     native_tissue: dict[str, np.ndarray]  # GM, WM, CSF probabilities, the scan's RAS grid
     native_deep: dict[str, np.ndarray]  # each deep region's tissue fraction, same grid
     native_labels: np.ndarray  # uint8, the scan's RAS grid
-    native_t1: np.ndarray  # bias-corrected, white matter 1, the scan's RAS grid
+    native_t1: np.ndarray  # bias-corrected, white matter 1, the scan's RAS grid, 0 off the brain
+    native_head: np.ndarray  # the same over the whole head (what the working grid shows)
     native_affine: np.ndarray
     diagnostics: dict
 
@@ -243,21 +253,18 @@ def prepare_scan(
     labels = np.zeros(data.shape, np.uint8)
     labels[brain] = np.argmax(posterior, axis=1).astype(np.uint8) + 1
     grid, shape = working_grid(template, settings)
-
-    def onto_grid(array):
-        return resample(array, affine, grid, shape, registration.template_to_native)
-
+    deep_names = template.region_set.deep
+    on_grid = grid_arrays(normalised, brain, tissue, [deep[name] for name in deep_names], affine,
+                          registration.template_to_native, grid, shape)  # fmt: skip
     return PreparedScan(
         volumes=volumes,
         template_to_native=registration.template_to_native,
-        grid_t1=onto_grid(normalised),
-        grid_mask=onto_grid(brain.astype(np.float32)) > 0.5,
-        grid_tissue=np.stack([onto_grid(tissue[name]) for name in TISSUES], axis=-1),
-        grid_regions=np.stack([onto_grid(deep[name]) for name in template.region_set.deep], -1),
+        **on_grid,
         native_tissue=tissue,
         native_deep=deep,
         native_labels=labels,
         native_t1=np.where(brain, normalised, 0.0).astype(np.float32),
+        native_head=normalised.astype(np.float32),
         native_affine=affine,
         diagnostics={
             "registration_metric": registration.metric,
@@ -268,6 +275,38 @@ def prepare_scan(
             "grid_shape": list(shape),
         },
     )
+
+
+#: the working-grid fields of a :class:`PreparedScan`, as :func:`grid_arrays` returns them
+GRID_FIELDS = ("grid_t1", "grid_mask", "grid_tissue", "grid_regions")
+
+
+def grid_arrays(head, brain, tissue: dict, deep: list, affine, template_to_native, grid, shape):
+    """A visit's working-grid arrays (:data:`GRID_FIELDS`).
+
+    ``head`` (normalised T1), ``brain`` (mask), the ``tissue`` maps (GM, WM, CSF) and
+    the ``deep`` regions' maps (in the regions file's order) lie on the scan's RAS grid
+    (``affine``); each is resampled once, linearly, through ``template_to_native``
+    (template point -> scan point, mm) onto the working grid (``grid``, ``shape``).
+    """
+
+    def onto_grid(array):
+        return resample(array, affine, grid, shape, template_to_native)
+
+    return {
+        "grid_t1": onto_grid(head),
+        "grid_mask": onto_grid(brain.astype(np.float32)) > 0.5,
+        "grid_tissue": np.stack([onto_grid(tissue[name]) for name in TISSUES], axis=-1),
+        "grid_regions": np.stack([onto_grid(array) for array in deep], axis=-1),
+    }
+
+
+def save_grid(arrays: dict, grid: np.ndarray, files: ScanFiles) -> None:
+    """Write :func:`grid_arrays`' arrays as ``files``' working-grid images."""
+    save_array(arrays["grid_t1"], grid, files.t1)
+    save_array(arrays["grid_mask"].astype(np.uint8), grid, files.mask, np.uint8)
+    save_array(arrays["grid_tissue"], grid, files.tissue)
+    save_array(arrays["grid_regions"], grid, files.regions)
 
 
 def template_on_grid(template: Template, settings: PrepareSettings):
@@ -343,7 +382,7 @@ def _deep_regions(template, tissue, normalised, brain, mixture, to_native, scan)
 
 # --- workspace: cache, parallel scans, shards -------------------------------------------------
 #: bumped whenever a cache entry gains or changes a file, so older entries are redone
-CACHE_FORMAT = 4
+CACHE_FORMAT = 5
 _TEMPLATES: dict[tuple[str, str], Template] = {}
 
 
@@ -441,6 +480,8 @@ def read_prepared(files: ScanFiles, scan: Scan, regions: RegionSet) -> PreparedS
     result = files.read_result()
     tissue, deep = native_maps(files, regions)
     grid_t1 = array(files.t1)
+    labels = array(files.labels, np.uint8)
+    head = array(files.native_t1)
     return PreparedScan(
         volumes=result["volumes_ml"],
         template_to_native=np.asarray(result["template_to_native"], dtype=float),
@@ -450,8 +491,9 @@ def read_prepared(files: ScanFiles, scan: Scan, regions: RegionSet) -> PreparedS
         grid_regions=array(files.regions).reshape(*grid_t1.shape, -1),
         native_tissue=tissue,
         native_deep=deep,
-        native_labels=array(files.labels, np.uint8),
-        native_t1=array(files.native_t1),
+        native_labels=labels,
+        native_t1=np.where(labels > 0, head, 0.0).astype(np.float32),
+        native_head=head,
         native_affine=scan.affine,
         diagnostics=result["diagnostics"],
     )
@@ -464,12 +506,9 @@ def _prepare_entry(row: dict, files: ScanFiles, template: Template, settings) ->
     except PredictorError as error:
         return {"failed": redact_folders(str(error), row["image"], row.get("brain_mask"))}
     grid = np.asarray(prepared.diagnostics["grid_affine"])
-    save_array(prepared.grid_t1, grid, files.t1)
-    save_array(prepared.grid_mask.astype(np.uint8), grid, files.mask, np.uint8)
-    save_array(prepared.grid_tissue, grid, files.tissue)
-    save_array(prepared.grid_regions, grid, files.regions)
+    save_grid({name: getattr(prepared, name) for name in GRID_FIELDS}, grid, files)
     save_array(prepared.native_labels, prepared.native_affine, files.labels, np.uint8)
-    save_array(prepared.native_t1, prepared.native_affine, files.native_t1)
+    save_array(prepared.native_head, prepared.native_affine, files.native_t1)
     maps = [prepared.native_tissue[name] for name in TISSUES]
     maps += [prepared.native_deep[name] for name in template.region_set.deep]
     save_array(np.stack(maps, axis=-1), prepared.native_affine, files.native_maps)
@@ -501,6 +540,7 @@ def prepare_cohort(
     regions: RegionSet | None = None,
     coding: CohortSettings | None = None,
     progress_pairs=None,
+    progress_subjects=None,
 ) -> dict:
     """Prepare every scan of a validated cohort (or one shard of it) into ``work``.
 
@@ -510,7 +550,8 @@ def prepare_cohort(
     with the longitudinal stage on and no shard, pairs, pairs_failed and
     rescans measured); writes ``volumes.tsv``, ``changes.tsv``, ``rescans.tsv``
     and ``failures.tsv`` from all complete entries.
-    ``progress_pairs()`` is called after each visit pair.
+    ``progress_pairs()`` is called after each visit pair, ``progress_subjects()``
+    after each participant's within-subject space (:mod:`predictor.within_subject`).
     """
     settings = settings or PrepareSettings.from_toml()
     regions = regions or RegionSet.from_toml()
@@ -574,7 +615,19 @@ def prepare_cohort(
         for i, r in sorted(results.items())
         if "failed" in r
     ]
-    write_tsv(layout.volumes, volume_table(layout, regions, coding.covariate_names))
+    table = volume_table(layout, regions, coding.covariate_names)
+    spaces = {}
+    if settings.longitudinal.enabled and settings.longitudinal.within_subject and parts == 1:
+        from predictor.within_subject import align_participants
+
+        spaces, space_failures = align_participants(
+            layout.root, table, regions, settings.longitudinal, jobs, progress_subjects
+        )
+        failures += space_failures
+        summary["within_subject"] = len(set(spaces.values()))
+    table.insert(table.columns.get_loc("key") + 1, WITHIN_SUBJECT,
+                 [spaces.get(key, "") for key in table["key"]])  # fmt: skip
+    write_tsv(layout.volumes, table)
     if settings.longitudinal.enabled and parts == 1:
         from predictor.longitudinal import measure_changes, measure_rescans
 

@@ -75,7 +75,7 @@ from predictor.parallel import cores
 from predictor.regions import TOTAL_BRAIN, RegionSet
 from predictor.regression import baseline_rows, save_mixed_model
 from predictor.rng import seeded_rng
-from predictor.workspace import Workspace, read_workspace
+from predictor.workspace import WITHIN_SUBJECT, Workspace, read_workspace
 
 TERMS = ("similarity", "smoothness", "monotone", "prior")
 #: validation figures that early stopping can follow: the mean volume error of the forecast
@@ -226,7 +226,11 @@ class Run:
 
     @cached_property
     def store(self) -> ScanStore:
-        return ScanStore(self.workspace.root)
+        volumes = self.workspace.volumes
+        if WITHIN_SUBJECT not in volumes:  # prepared without the within-subject stage
+            return ScanStore(self.workspace.root)
+        return ScanStore(self.workspace.root, dict(zip(volumes["key"], volumes[WITHIN_SUBJECT],
+                                                       strict=True)))  # fmt: skip
 
 
 def default_split(volumes, config: TrainConfig, seed: int) -> dict[str, list[str]]:

@@ -14,13 +14,22 @@ Layout::
                              the regions file's order, on the working grid (4D)
         native_dseg.nii.gz   most likely tissue in the scan's own space (1 GM, 2 WM, 3 CSF)
         native_T1w.nii.gz    bias-corrected, normalised T1 in the scan's own space
+                             (whole head; native_dseg > 0 is the brain)
         native_probseg.nii.gz  GM, WM, CSF probabilities, then each deep region's
                              tissue fraction, in the scan's own space (4D)
         result.json          volumes, native<->template transforms, fit diagnostics
+    subjects/<key>/      one folder per participant with two or more visits: every
+                         visit in one within-subject space (predictor.within_subject);
+                         result.json is written last and marks the entry complete
+        <scan key>/grid_*.nii.gz  that visit's working-grid images (names as in scans/),
+                             through the participant's one transform to the template
+        mean_T1w.nii.gz      the participant's mean brain image
+        result.json          each visit's map from the mean and to the template
     pairs/<key>.json     change between two visits of a participant measured by
                          registration (predictor.longitudinal); one file per pair
-    volumes.tsv          one row per scan: its covariates (if any), regions in mL and
-                         % of total brain volume
+    volumes.tsv          one row per scan: its covariates (if any), its participant's
+                         within-subject entry (within_subject; empty: the scan's own
+                         working grid), regions in mL and % of total brain volume
     changes.tsv          per participant and pair of visits: each region's change
                          by registration and by segmentation
     rescans.tsv          per scan with a same-day rescan: each region's change from
@@ -48,6 +57,8 @@ from predictor.volumes import percent_of_brain
 
 #: identifying columns of volumes.tsv, before the key and the regions
 TSV_ID = ("participant_id", "session_id", "age", "sex", "diagnosis")
+#: volumes.tsv's column naming a scan's within-subject entry (after the key)
+WITHIN_SUBJECT = "within_subject"
 
 
 @dataclass(frozen=True)
@@ -74,6 +85,27 @@ class ScanFiles:
 
 
 @dataclass(frozen=True)
+class SubjectFiles:
+    """The files of one participant's within-subject entry."""
+
+    folder: Path
+
+    @property
+    def lock(self) -> Path:
+        return self.folder.parent / f".{self.folder.name}.lock"
+
+    mean = property(lambda self: self.folder / "mean_T1w.nii.gz")
+    result = property(lambda self: self.folder / "result.json")
+
+    def visit(self, key: str) -> ScanFiles:
+        """The working-grid images of the visit whose scan key is ``key``."""
+        return ScanFiles(self.folder / key)
+
+    def read_result(self) -> dict:
+        return json.loads(self.result.read_text())
+
+
+@dataclass(frozen=True)
 class Layout:
     """Paths of a workspace folder."""
 
@@ -94,6 +126,16 @@ class Layout:
 
     def scan(self, key: str) -> ScanFiles:
         return ScanFiles(self.root / "scans" / key)
+
+    def subject(self, key: str) -> SubjectFiles:
+        return SubjectFiles(self.root / "subjects" / key)
+
+    def grid(self, key: str, subject: object = None) -> ScanFiles:
+        """The working-grid images of scan ``key``: its participant's within-subject entry
+        ``subject`` (volumes.tsv's within_subject) where it has one, else its own."""
+        if isinstance(subject, str) and subject:
+            return self.subject(subject).visit(key)
+        return self.scan(key)
 
     def read_cohort(self, covariates: tuple[str, ...] = ()) -> pd.DataFrame:
         """cohort.tsv, its ``covariates`` columns as written (see :func:`read_table`)."""
@@ -141,7 +183,8 @@ def read_workspace(work: str | os.PathLike[str]) -> Workspace:
     if "regions" not in prepared or "cohort" not in prepared:
         raise DataError(f"{layout.prepare_json}: written by an older version; rerun prepare")
     cohort = CohortSettings.from_dict(prepared["cohort"], str(layout.prepare_json))
-    volumes = read_table(layout.volumes, cohort.covariate_names, {"key": str})
+    volumes = read_table(layout.volumes, cohort.covariate_names,
+                         {"key": str, WITHIN_SUBJECT: str})  # fmt: skip
     if volumes.empty:
         raise DataError(f"{layout.volumes}: no prepared scans")
     diagnostics = layout.scan(volumes["key"].iloc[0]).read_result()["diagnostics"]

@@ -235,3 +235,118 @@ def test_same_day_rescans_measure_the_noise_floor(realistic_workspace):
     page = rescan_section(floor, "registration")
     value = indexed.loc["brain", "median_abs_pct_tbv_registration"]
     assert f">{value:.4g}</td>" in page and "noise_floor.tsv" in page
+
+
+def _pose(acquisition: dict) -> np.ndarray:
+    """4x4 map anatomy point -> scanner point (mm) of a phantom acquisition's drawn pose."""
+    matrix = np.eye(4)
+    matrix[:3, :3] = np.asarray(acquisition["pose_rotation"])
+    matrix[:3, 3] = acquisition["pose_translation_mm"]
+    return matrix
+
+
+@pytest.mark.slow
+def test_visits_in_one_space_follow_the_true_head_pose(realistic_workspace):
+    # Each visit's map from the participant's mean, composed baseline -> later visit,
+    # against the head poses the phantom generator drew (recorded in draws.json: scanner
+    # point = R anatomy point + t, an outside reference): the mean point error over the
+    # baseline brain is smaller than that of the two independent template registrations'
+    # maps in most pairs, and the within-subject map never changes volume (rigid), where
+    # independent registrations do (the jitter training pairs learned as change).
+    # Measured on 21 pairs of another cohort (seed 1): within-subject better in 19,
+    # median 0.35 against 0.38 mm; independent determinants 0.2-3.7% from 1.
+    import json
+
+    import nibabel as nib
+
+    from predictor.phantoms.generate import TRUTH
+    from predictor.workspace import Layout, read_workspace
+
+    cohort, work = realistic_workspace
+    layout, volumes = Layout(work), read_workspace(work).volumes
+    draws = json.loads((cohort / TRUTH / "draws.json").read_text())["participants"]
+    poses = {(d["participant_id"], v["session_id"]): _pose(v) for d in draws for v in d["visits"]}
+    within, independent, scales = [], [], []
+    for participant, visits in volumes.groupby("participant_id"):
+        keys, sessions = visits["key"].tolist(), visits["session_id"].tolist()
+        assert visits["within_subject"].nunique() == 1 and isinstance(
+            visits["within_subject"].iloc[0], str
+        )
+        entry = layout.subject(visits["within_subject"].iloc[0]).read_result()["visits"]
+        labels = nib.load(layout.scan(keys[0]).labels)
+        index = np.argwhere(np.asarray(labels.dataobj) > 0)[::10]
+        points = np.c_[index, np.ones(len(index))] @ labels.affine.T
+        base = poses[(participant, sessions[0])]
+        for key, session in zip(keys[1:], sessions[1:], strict=True):
+            true = poses[(participant, session)] @ np.linalg.inv(base)
+            maps = {
+                "within": np.asarray(entry[key]["mean_to_visit"])
+                @ np.linalg.inv(entry[keys[0]]["mean_to_visit"]),
+                "independent": np.asarray(layout.scan(key).read_result()["template_to_native"])
+                @ np.linalg.inv(layout.scan(keys[0]).read_result()["template_to_native"]),
+            }
+            for name, found in (("within", within), ("independent", independent)):
+                error = points @ (maps[name] - true).T
+                found.append(float(np.linalg.norm(error[:, :3], axis=1).mean()))
+            scales.append(np.linalg.det(maps["within"][:3, :3]))
+    within, independent = np.array(within), np.array(independent)
+    assert np.median(within) < np.median(independent), (within, independent)
+    assert (within < independent).mean() >= 2 / 3, (within, independent)
+    np.testing.assert_allclose(scales, 1.0, atol=1e-9)
+
+
+@pytest.mark.slow
+def test_visit_order_gives_the_same_space(realistic_workspace):
+    # No visit is privileged (the issue's inverse consistency): a participant's two
+    # visits handed over in either order get the same maps to the template, to within
+    # 0.01 mm over the brain (measured: at most 0.002 mm on 5 rescan pairs).
+    from predictor.within_subject import subject_space
+    from predictor.workspace import Layout, read_workspace
+
+    _, work = realistic_workspace
+    layout, volumes = Layout(work), read_workspace(work).volumes
+    keys = volumes[volumes["participant_id"] == volumes["participant_id"].iloc[0]]["key"]
+    files = [layout.scan(key) for key in keys.iloc[[0, -1]]]
+    visits = [Visit.read(f.folder, REGIONS) for f in files]
+    maps = [np.asarray(f.read_result()["template_to_native"]) for f in files]
+    forward = subject_space(visits, maps, SETTINGS)
+    backward = subject_space(visits[::-1], maps[::-1], SETTINGS)
+    assert forward["mean_change"][-1] < SETTINGS.within_subject_tolerance
+    index = np.argwhere(visits[0].mask)[::10]
+    points = np.c_[index, np.ones(len(index))] @ visits[0].affine.T
+    for k in range(2):
+        one = forward["mean_to_visit"][k] @ forward["template_to_mean"]
+        other = backward["mean_to_visit"][1 - k] @ backward["template_to_mean"]
+        template_points = points @ np.linalg.inv(one).T
+        shift = template_points @ (one - other).T
+        assert np.linalg.norm(shift[:, :3], axis=1).max() < 0.01
+
+
+@pytest.mark.slow
+def test_within_subject_entries_are_cached_and_redone_when_half_written(realistic_workspace):
+    # A second run finds every participant's entry; an entry without its result.json
+    # (a run killed while writing it) is redone with the same arrays, and the others are
+    # not touched. Training reads the participant's entry, not the scan's own grid.
+    import nibabel as nib
+    import torch
+
+    from predictor.pairs import ScanStore
+    from predictor.within_subject import align_participants
+    from predictor.workspace import Layout, read_workspace
+
+    _, work = realistic_workspace
+    layout, volumes = Layout(work), read_workspace(work).volumes
+    spaces, failures = align_participants(work, volumes, REGIONS, SETTINGS)
+    assert not failures
+    assert spaces == dict(zip(volumes["key"], volumes["within_subject"], strict=True))
+    entries = sorted(set(spaces.values()))
+    killed, kept = layout.subject(entries[0]), layout.subject(entries[1])
+    key = next(k for k, v in spaces.items() if v == entries[0])
+    before = np.asarray(nib.load(killed.visit(key).t1).dataobj)
+    stamp = kept.result.stat().st_mtime_ns
+    killed.result.unlink()
+    assert align_participants(work, volumes, REGIONS, SETTINGS)[0] == spaces
+    np.testing.assert_array_equal(np.asarray(nib.load(killed.visit(key).t1).dataobj), before)
+    assert kept.result.stat().st_mtime_ns == stamp and killed.result.is_file()
+    store = ScanStore(work, spaces)
+    assert torch.equal(store[key][0], torch.from_numpy(before.astype(np.float32)))

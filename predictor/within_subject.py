@@ -1,0 +1,203 @@
+"""Every visit of a participant in one within-subject space (a stage of ``prepare``).
+
+Each visit was registered to the template on its own, so two visits' working-
+grid images differ by the jitter of two affine registrations as well as by
+the change between them (and part of a global atrophy can hide in the later
+visit's affine scale). For a participant with two or more prepared visits:
+
+1. Every visit's brain is registered (6 parameters by default; 9 or 12 with
+   ``within_subject_parameters``; Mattes mutual information, as the visit-pair
+   alignment of :mod:`predictor.longitudinal`) to the participant's mean
+   image. The first mean is the first visit; after each round the mean's pose
+   is moved to the average of the visits' poses (the mean of their maps, made
+   rigid again by its polar decomposition for 6 parameters), so that no visit
+   is privileged, and the visits are averaged there. Rounds repeat until the
+   mean changes by less than ``within_subject_tolerance`` (RMS over the brain,
+   relative to the mean's) or ``within_subject_rounds`` are done.
+2. The participant's one transform to the template: each visit's own
+   template registration carried into the mean space, averaged. This is the
+   registration of the visits' average anatomy to first order; no new
+   registration to the template is run.
+3. Each visit's normalised T1, brain mask, tissue and region maps are
+   resampled once onto the working grid through that shared transform and the
+   visit's map from the mean: two visits' working-grid images then differ only
+   by the anatomy's change and the noise.
+
+The result is cached per participant (``subjects/<key>/``; ``result.json`` is
+written last and marks the entry complete) and is what training reads
+(``volumes.tsv``'s ``within_subject`` column names the entry). Single-visit
+participants and those whose stage fails keep their scans' own working-grid
+images (the column is empty; a failure is reported, never fatal).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import shutil
+from dataclasses import asdict
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+
+from predictor import __version__
+from predictor.errors import PredictorError
+from predictor.files import exclusive, write_json
+from predictor.longitudinal import Visit, rigid_alignment
+from predictor.nifti import save_array
+from predictor.preprocess import resample
+from predictor.regions import RegionSet
+from predictor.workspace import Layout, ScanFiles
+
+#: the [longitudinal] settings that shape a within-subject entry
+SETTINGS = ("rigid_shrink_factors", "rigid_smoothing_mm", "rigid_iterations",
+            "rigid_min_step_mm", "within_subject_parameters", "within_subject_rounds",
+            "within_subject_tolerance")  # fmt: skip
+
+
+def average_map(maps: list[np.ndarray], rigid: bool) -> np.ndarray:
+    """The mean of 4x4 maps; with ``rigid``, its linear part replaced by the nearest
+    rotation (polar decomposition by SVD)."""
+    mean = np.mean(maps, axis=0)
+    if rigid:
+        u, _, vt = np.linalg.svd(mean[:3, :3])
+        mean[:3, :3] = u @ vt
+    return mean
+
+
+def _mean_image(visits: list[Visit], maps: list[np.ndarray], affine, shape) -> np.ndarray:
+    """The visits' brains resampled through ``maps`` (mean point -> visit point), averaged."""
+    moved = [resample(v.t1, v.affine, affine, shape, m) for v, m in zip(visits, maps, strict=True)]
+    return np.mean(moved, axis=0).astype(np.float32)
+
+
+def subject_space(visits: list[Visit], template_to_native: list[np.ndarray], settings) -> dict:
+    """A participant's within-subject space (see the module docstring).
+
+    ``visits`` (two or more) with each one's own template -> native map (4x4, mm).
+    Returns ``mean`` (the mean brain image on the first visit's grid, ``affine``),
+    ``mean_to_visit`` (4x4 per visit), ``template_to_mean`` (4x4), ``rounds`` and
+    ``mean_change`` (the relative RMS change of the mean per round).
+    """
+    parameters = settings.within_subject_parameters
+    affine, shape = visits[0].affine, visits[0].t1.shape
+    mean, maps, history = visits[0].t1, [], []
+    for _ in range(settings.within_subject_rounds):
+        reference = Visit(mean, affine, {}, {})
+        maps = [rigid_alignment(reference, visit, settings, parameters) for visit in visits]
+        centre = np.linalg.inv(average_map(maps, rigid=parameters == 6))
+        maps = [m @ centre for m in maps]
+        new = _mean_image(visits, maps, affine, shape)
+        brain = (new > 0) | (mean > 0)
+        history.append(float(np.sqrt(np.mean((new[brain] - mean[brain]) ** 2)
+                                     / np.mean(mean[brain] ** 2))))  # fmt: skip
+        mean = new
+        if history[-1] < settings.within_subject_tolerance:
+            break
+    carried = [np.linalg.inv(m) @ t for m, t in zip(maps, template_to_native, strict=True)]
+    return {
+        "mean": mean,
+        "affine": affine,
+        "mean_to_visit": maps,
+        "template_to_mean": average_map(carried, rigid=False),
+        "rounds": len(history),
+        "mean_change": history,
+    }
+
+
+def subject_key(keys: list[str], settings) -> str:
+    """Cache key of a participant's entry: its visits' scan keys, the settings that shape
+    it (:data:`SETTINGS`) and the version."""
+    shaping = {name: value for name, value in asdict(settings).items() if name in SETTINGS}
+    digest = hashlib.sha256(f"{'/'.join(keys)}/{__version__}".encode())
+    digest.update(json.dumps(shaping, sort_keys=True).encode())
+    return digest.hexdigest()[:20]
+
+
+def _read_visit(files: ScanFiles, regions: RegionSet) -> tuple[Visit, np.ndarray]:
+    """A prepared scan's :class:`Visit` and its whole-head normalised T1."""
+    visit = Visit.read(files.folder, regions)
+    return visit, np.asarray(nib.load(files.native_t1).dataobj, dtype=np.float32)
+
+
+def align_participant(work: str, keys: list[str], regions_raw: dict, settings) -> dict:
+    """One participant's entry (its visits' scan ``keys``, oldest first), from the cache
+    or computed and cached; ``{"key": ..., "failed": reason}`` when it cannot be made.
+
+    Runs in a worker process. The entry is locked while it is checked and written.
+    """
+    from predictor.prepare import GRID_FIELDS, grid_arrays, save_grid
+
+    layout = Layout(Path(work))
+    key = subject_key(keys, settings)
+    entry = layout.subject(key)
+    with exclusive(entry.lock):
+        if entry.result.is_file():
+            return {"key": key, "cached": True}
+        if entry.folder.exists():  # a half-written entry from an interrupted run
+            shutil.rmtree(entry.folder)
+        regions = RegionSet.from_dict(regions_raw)
+        try:
+            read = [_read_visit(layout.scan(k), regions) for k in keys]
+            results = [layout.scan(k).read_result() for k in keys]
+            space = subject_space(
+                [visit for visit, _ in read],
+                [np.asarray(r["template_to_native"], dtype=float) for r in results],
+                settings,
+            )
+        except (PredictorError, RuntimeError, OSError) as error:
+            return {"key": key, "failed": str(error).splitlines()[0]}
+        grid = np.asarray(results[0]["diagnostics"]["grid_affine"], dtype=float)
+        shape = tuple(results[0]["diagnostics"]["grid_shape"])
+        visits = {}
+        for k, (visit, head), to_visit in zip(keys, read, space["mean_to_visit"], strict=True):
+            shared = to_visit @ space["template_to_mean"]
+            arrays = grid_arrays(head, visit.mask, visit.tissue, list(visit.deep.values()),
+                                 visit.affine, shared, grid, shape)  # fmt: skip
+            save_grid({name: arrays[name] for name in GRID_FIELDS}, grid, entry.visit(k))
+            visits[k] = {"mean_to_visit": to_visit.tolist(), "template_to_native": shared.tolist()}
+        save_array(space["mean"], space["affine"], entry.mean)
+        write_json(
+            entry.result,
+            {
+                "visits": visits,
+                "template_to_mean": space["template_to_mean"].tolist(),
+                "rounds": space["rounds"],
+                "mean_change": space["mean_change"],
+            },
+        )  # written last: marks the entry complete
+    return {"key": key, "cached": False}
+
+
+def align_participants(
+    work: str | Path, volumes: pd.DataFrame, regions: RegionSet, settings, jobs: int = 1,
+    progress=None,
+) -> tuple[dict[str, str], list[dict]]:  # fmt: skip
+    """Every participant's within-subject entry (those with two or more visits in the
+    volume table ``volumes``).
+
+    Returns the entry's key of each visit's scan key, and the participants whose stage
+    failed (rows for failures.tsv).
+    """
+    from predictor.parallel import run_all
+    from predictor.preprocess import single_threaded_itk
+
+    groups = [
+        (participant, visits["key"].tolist())
+        for participant, visits in volumes.sort_values("age", kind="stable").groupby(
+            "participant_id", sort=True
+        )
+        if len(visits) > 1
+    ]
+    arguments = [(str(work), keys, regions.raw, settings) for _, keys in groups]
+    results = run_all(align_participant, arguments, jobs, progress, single_threaded_itk)
+    spaces, failures = {}, []
+    for (participant, keys), result in zip(groups, results, strict=True):
+        if "failed" in result:
+            failures.append({"participant_id": participant, "session_id": "", "image": "",
+                             "reason": f"within-subject space: {result['failed']}"})  # fmt: skip
+            continue
+        spaces |= dict.fromkeys(keys, result["key"])
+    return spaces, failures
