@@ -47,7 +47,7 @@ KINDS = ("numeric", "categorical")
 MISSING = ("", "n/a", "na", "nan")
 #: cohort and model columns a covariate may not be named after
 RESERVED = ("participant_id", "session_id", "age", "sex", "diagnosis", "image", "brain_mask",
-            "rescan", "key", "rescan_key", "years", "baseline_age")  # fmt: skip
+            "rescan", "key", "rescan_key", "within_subject", "years", "baseline_age")  # fmt: skip
 
 
 @dataclass(frozen=True)

@@ -60,6 +60,8 @@ from predictor.spatial import affine_to_matrix, from_sitk, matrix_to_transform, 
 from predictor.volumes import region_volumes
 from predictor.workspace import Layout
 
+#: changes when a pair's measurement does (2: demons' coarse levels smooth both images)
+PAIR_FORMAT = 2
 #: columns of changes.tsv, before one pair of columns per region
 CHANGE_ID = ("participant_id", "session_from", "session_to", "years")
 #: columns of rescans.tsv, before the same pairs of columns
@@ -108,12 +110,16 @@ class Visit:
 
 
 #: SimpleITK transform of each number of registration parameters (rigid, 3 scales, affine)
-TRANSFORMS = {6: sitk.Euler3DTransform, 9: sitk.ScaleVersor3DTransform, 12: sitk.AffineTransform}
+TRANSFORMS = {6: sitk.Euler3DTransform, 9: sitk.ScaleVersor3DTransform,
+              12: lambda: sitk.AffineTransform(3)}  # fmt: skip
 
 
-def rigid_alignment(fixed: Visit, moving: Visit, settings, parameters: int = 6) -> np.ndarray:
+def rigid_alignment(
+    fixed: Visit, moving: Visit, settings, parameters: int = 6, sampling_fraction: float = 0.3
+) -> np.ndarray:
     """4x4 RAS matrix mapping fixed points (mm) to moving points: a rigid registration
-    (or, with ``parameters`` 9 or 12, one with three scales or affine) of the brains."""
+    (or, with ``parameters`` 9 or 12, one with three scales or affine) of the brains; the
+    metric samples ``sampling_fraction`` of the fixed brain's voxels."""
     fixed_image, moving_image = fixed.image(), moving.image()
     initial = sitk.CenteredTransformInitializer(
         fixed_image,
@@ -123,7 +129,7 @@ def rigid_alignment(fixed: Visit, moving: Visit, settings, parameters: int = 6) 
     )
     options = SimpleNamespace(
         histogram_bins=48,
-        sampling_fraction=0.3,
+        sampling_fraction=sampling_fraction,
         learning_rate=1.0,
         min_step_mm=settings.rigid_min_step_mm,
         iterations=settings.rigid_iterations,
@@ -158,8 +164,13 @@ def _onto(
     return sitk.Resample(image, reference, transform, interpolator, 0.0, sitk.sitkFloat32)
 
 
-def demons_jacobian(fixed: sitk.Image, moving: sitk.Image, settings) -> np.ndarray:
+def demons_jacobian(fixed: sitk.Image, moving: sitk.Image, settings, levels=None) -> np.ndarray:
     """Jacobian determinant (RAS array on ``fixed``'s grid) of the map fixed -> moving.
+
+    ``levels`` ((shrink factor, iterations), coarse to fine) default to the
+    ``demons_*`` settings; a field that ends coarser than ``fixed`` is resampled
+    (linearly, in mm; the nearest value beyond its last centres) onto its grid
+    before it is differentiated.
 
     ``moving`` must already lie on ``fixed``'s grid. The images are handed to
     demons with an identity direction (``DisplacementFieldJacobianDeterminant``
@@ -172,11 +183,12 @@ def demons_jacobian(fixed: sitk.Image, moving: sitk.Image, settings) -> np.ndarr
         moving, fixed, settings.histogram_levels, 7, thresholdAtMeanIntensity=True
     )
     field = None
-    for shrink, iterations in zip(
-        settings.demons_shrink_factors, settings.demons_iterations, strict=True
-    ):
+    if levels is None:
+        levels = zip(settings.demons_shrink_factors, settings.demons_iterations, strict=True)
+    for shrink, iterations in levels:
+        # both images smoothed and shrunk alike: an unsmoothed moving image reads as change
         level_fixed = fixed if shrink == 1 else _shrunk(fixed, shrink)
-        level_moving = _onto(moving, level_fixed, None)
+        level_moving = moving if shrink == 1 else _shrunk(moving, shrink)
         if field is None:
             start = sitk.Image(level_fixed.GetSize(), sitk.sitkVectorFloat64, 3)
             start.CopyInformation(level_fixed)
@@ -187,6 +199,9 @@ def demons_jacobian(fixed: sitk.Image, moving: sitk.Image, settings) -> np.ndarr
         demons.SetSmoothDisplacementField(True)
         demons.SetStandardDeviations(settings.demons_field_sd_voxels)
         field = demons.Execute(level_fixed, level_moving, start)
+    if field.GetSize() != fixed.GetSize():  # the border beyond the coarse grid's last centres
+        field = sitk.Resample(field, fixed, sitk.Transform(), sitk.sitkLinear, 0.0,
+                              field.GetPixelID(), True)  # takes its nearest value, not zero
     determinant = sitk.GetArrayFromImage(sitk.DisplacementFieldJacobianDeterminant(field))
     return np.transpose(determinant, (2, 1, 0)).astype(np.float64)
 
@@ -316,9 +331,12 @@ def boundary_shift(
 
 
 def pair_key(earlier: str, later: str, settings) -> str:
-    """Cache key of a pair: its two scans' keys, the longitudinal settings and the version."""
-    digest = hashlib.sha256(f"{earlier}/{later}/{__version__}".encode())
-    digest.update(json.dumps(asdict(settings), sort_keys=True).encode())
+    """Cache key of a pair: its two scans' keys, the longitudinal settings that shape it
+    (not those of the within-subject space) and the version."""
+    shaping = {name: value for name, value in asdict(settings).items()
+               if not name.startswith(("within_subject", "target_"))}  # fmt: skip
+    digest = hashlib.sha256(f"{earlier}/{later}/{__version__}/{PAIR_FORMAT}".encode())
+    digest.update(json.dumps(shaping, sort_keys=True).encode())
     return digest.hexdigest()[:20]
 
 

@@ -9,7 +9,11 @@
   horizons of the same baseline (hinge on the volume change between them);
 * regional prior: each region's forecast volume ratio (Jacobian integral over
   the baseline region) against the regression prior's mean, in units of the
-  prior's predictive standard deviation (a squared z-score).
+  prior's predictive standard deviation (a squared z-score);
+* measured change: the network's log-Jacobian at the pair's horizon against
+  the pair's measured one (a demons registration of the two visits in their
+  within-subject space, :mod:`predictor.within_subject`), mean squared
+  difference inside the brain, over the pairs that have one.
 
 All tensors follow :mod:`predictor.fields`; region weights are (B, R, D, H, W)
 fractions on the working grid.
@@ -35,6 +39,7 @@ class LossSettings:
     smoothness_weight: float
     monotone_weight: float
     prior_weight: float
+    jacobian_weight: float  # the measured log-Jacobian term
     # the similarity weight rises linearly to its full value over this many epochs
     similarity_warmup_epochs: int
     # the monotone ordering is checked between the pair's horizon and this fraction of it
@@ -52,6 +57,7 @@ class LossSettings:
             self.smoothness_weight,
             self.monotone_weight,
             self.prior_weight,
+            self.jacobian_weight,
         )
         if any(w < 0 for w in weights):
             raise ValueError("loss weights must be >= 0")
@@ -66,6 +72,7 @@ class LossSettings:
             "smoothness": self.smoothness_weight,
             "monotone": self.monotone_weight,
             "prior": self.prior_weight,
+            "jacobian": self.jacobian_weight,
         }
 
 
@@ -133,3 +140,13 @@ def prior_z2(
 ) -> torch.Tensor:
     """Mean squared z-score of forecast volume ratios (B, R) against the prior's (B, R)."""
     return (((ratio - prior_ratio) / prior_sd_ratio.clamp(min=1e-4)) ** 2).mean()
+
+
+def log_jacobian_match(
+    predicted: torch.Tensor, measured: torch.Tensor, mask: torch.Tensor, present: torch.Tensor
+) -> torch.Tensor:
+    """Mean squared difference of log-Jacobians (B, D, H, W) inside ``mask`` (B, D, H, W),
+    averaged over the pairs with a measured map (``present`` (B,) 1, else 0)."""
+    inside = mask.sum(dim=(1, 2, 3)).clamp(min=1.0)
+    per_pair = ((predicted - measured) ** 2 * mask).sum(dim=(1, 2, 3)) / inside
+    return (per_pair * present).sum() / present.sum().clamp(min=1.0)

@@ -231,19 +231,35 @@ class ScanStore:
         self._cache: OrderedDict[str, torch.Tensor] = OrderedDict()
 
     def __getitem__(self, key: str) -> torch.Tensor:
+        files = self.layout.grid(key, self.spaces.get(key))
+        return self._cached(key, files.folder, lambda: grid_entry(
+            *(nib.load(path).dataobj for path in (files.t1, files.mask)),
+            *(nib.load(path).dataobj for path in (files.tissue, files.regions)),
+        ))  # fmt: skip
+
+    def log_jacobian(self, base: str, follow: str) -> torch.Tensor | None:
+        """The pair's measured log-Jacobian map (D, H, W) on the working grid; None for a
+        pair outside a within-subject entry or whose measurement failed."""
+        space = self.spaces.get(base)
+        if not (isinstance(space, str) and space and self.spaces.get(follow) == space):
+            return None
+        path = self.layout.subject(space).log_jacobian(base, follow)
+        if not path.is_file():  # its measurement failed (the entry's targets_failed)
+            return None
+        return self._cached(f"{base}/{follow}", path, lambda: torch.from_numpy(
+            np.asarray(nib.load(path).dataobj, dtype=np.float32)
+        ))  # fmt: skip
+
+    def _cached(self, key: str, where, load) -> torch.Tensor:
+        """``load()``, kept under ``key`` (least recently used dropped first)."""
         if key in self._cache:
             self._cache.move_to_end(key)
             return self._cache[key]
-        files = self.layout.grid(key, self.spaces.get(key))
         try:
-            tensor = grid_entry(
-                *(nib.load(path).dataobj for path in (files.t1, files.mask)),
-                *(nib.load(path).dataobj for path in (files.tissue, files.regions)),
-            )
+            tensor = load()
         except (OSError, ValueError) as error:
-            raise DataError(
-                f"{files.folder}: working-grid files unreadable ({error}); rerun prepare"
-            ) from error
+            raise DataError(f"{where}: working-grid files unreadable ({error}); rerun prepare") \
+                from error  # fmt: skip
         self._cache[key] = tensor
         if len(self._cache) > self.capacity:
             self._cache.popitem(last=False)
@@ -264,6 +280,8 @@ class Batch:
     years: torch.Tensor  # (B,)
     prior: torch.Tensor  # (B, R) forecast/baseline volume ratio
     prior_sd: torch.Tensor  # (B, R)
+    log_jacobian: torch.Tensor  # (B, D, H, W) the pair's measured log-Jacobian (0: none)
+    measured: torch.Tensor  # (B,) 1 where the pair has a measured log-Jacobian, else 0
 
 
 def make_batch(
@@ -276,6 +294,7 @@ def make_batch(
     gain_sd: float = 0.0,
     flip_probability: float = 0.0,
     image: torch.Tensor | None = None,
+    log_jacobians: bool = False,
 ) -> Batch:
     """Stack the pairs' arrays; with ``rngs`` (one per pair), draw a flip and an input gain.
 
@@ -285,11 +304,17 @@ def make_batch(
     loss compares. The regions are ``regions.prior``. ``image`` (a
     :func:`template_entry`) replaces the baseline as the network's input of
     every pair (a population field); regions and losses stay the pair's own.
+    With ``log_jacobians``, each pair's measured log-Jacobian map is read (flipped
+    with the pair) where its participant has a within-subject entry.
     """
     names = regions.prior
     items = []
     for k, pair in enumerate(pairs.itertuples(index=False)):
         base, follow = store[pair.base_key], store[pair.follow_key]
+        measured = store.log_jacobian(pair.base_key, pair.follow_key) if log_jacobians else None
+        present = measured is not None
+        if measured is None:
+            measured = torch.zeros(base.shape[1:])
         order = list(range(len(names)))
         gain, flip = 1.0, False
         if rngs is not None:
@@ -298,6 +323,7 @@ def make_batch(
         seen = base if image is None else image
         if flip:
             base, follow, seen = base.flip(1), follow.flip(1), seen.flip(1)
+            measured = measured.flip(0)
             order = regions.mirrored(names)
         prior = np.array([getattr(pair, f"{r}_prior") for r in names])[order]
         prior_sd = np.array([getattr(pair, f"{r}_prior_sd") for r in names])[order]
@@ -313,6 +339,8 @@ def make_batch(
                 pair.years,
                 prior,
                 prior_sd,
+                measured,
+                float(present),
             )
         )
     columns = list(zip(*items, strict=True))
@@ -321,4 +349,6 @@ def make_batch(
         torch.tensor(columns[7], dtype=torch.float32),
         torch.tensor(np.stack(columns[8]), dtype=torch.float32),
         torch.tensor(np.stack(columns[9]), dtype=torch.float32),
+        torch.stack(columns[10]),
+        torch.tensor(columns[11], dtype=torch.float32),
     )

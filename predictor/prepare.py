@@ -116,6 +116,9 @@ class LongitudinalSettings:
     within_subject_parameters: int  # 6 (rigid), 9 (and three scales) or 12 (affine)
     within_subject_rounds: int
     within_subject_tolerance: float
+    within_subject_sampling_fraction: float
+    target_demons_shrink_factors: tuple[int, ...]  # the pairs' log-Jacobian training targets
+    target_demons_iterations: tuple[int, ...]
 
     def __post_init__(self):
         if len(self.rigid_shrink_factors) != len(self.rigid_smoothing_mm):
@@ -125,6 +128,14 @@ class LongitudinalSettings:
                              f"{self.within_subject_parameters}")  # fmt: skip
         if self.within_subject_rounds < 1:
             raise ValueError("'within_subject_rounds' must be at least 1")
+        levels = (self.target_demons_shrink_factors, self.target_demons_iterations)
+        if not levels[0] or len(levels[0]) != len(levels[1]):
+            raise ValueError("'target_demons_shrink_factors' and 'target_demons_iterations' "
+                             "need equal, non-zero lengths")  # fmt: skip
+        if min(levels[0]) < 1 or min(levels[1]) < 1:
+            raise ValueError("target demons shrink factors and iterations must be at least 1")
+        if not 0.0 < self.within_subject_sampling_fraction <= 1.0:
+            raise ValueError("'within_subject_sampling_fraction' must be within (0, 1]")
         if len(self.demons_shrink_factors) != len(self.demons_iterations):
             raise ValueError("'demons_shrink_factors' and 'demons_iterations' need equal lengths")
 
@@ -547,9 +558,10 @@ def prepare_cohort(
     ``regions`` and ``coding`` (the cohort settings the table was read with)
     default to the shipped ``configs/``; both are recorded in the workspace.
     Returns counts: prepared, cached, failed (scans and same-day rescans; and,
-    with the longitudinal stage on and no shard, pairs, pairs_failed and
-    rescans measured); writes ``volumes.tsv``, ``changes.tsv``, ``rescans.tsv``
-    and ``failures.tsv`` from all complete entries.
+    with the longitudinal stage on and no shard, within_subject (participants
+    in a within-subject space), pairs, pairs_failed and rescans measured);
+    writes ``volumes.tsv``, ``changes.tsv``, ``rescans.tsv`` and ``failures.tsv``
+    from all complete entries.
     ``progress_pairs()`` is called after each visit pair, ``progress_subjects()``
     after each participant's within-subject space (:mod:`predictor.within_subject`).
     """

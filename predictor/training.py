@@ -40,6 +40,7 @@ from predictor.fields import jacobian_determinant, region_volume_ratio, warp
 from predictor.files import write_tsv
 from predictor.losses import (
     LossSettings,
+    log_jacobian_match,
     masked_mse,
     monotone_regions,
     monotone_voxels,
@@ -77,7 +78,7 @@ from predictor.regression import baseline_rows, save_mixed_model
 from predictor.rng import seeded_rng
 from predictor.workspace import WITHIN_SUBJECT, Workspace, read_workspace
 
-TERMS = ("similarity", "smoothness", "monotone", "prior")
+TERMS = ("similarity", "smoothness", "monotone", "prior", "jacobian")
 #: validation figures that early stopping can follow: the mean volume error of the forecast
 #: against the measured follow-ups (% of brain volume), or the weighted validation loss
 MONITORS = ("val_volume_error", "val_total")
@@ -137,10 +138,17 @@ class TrainConfig:
     @classmethod
     def from_dict(cls, raw: dict, source: str = "config") -> TrainConfig:
         """A complete configuration as :meth:`to_dict` writes it (e.g. from model.json)."""
-        return settings_from_table(cls, raw, source)
+        loss = {"jacobian_weight": 0.0} | raw.get("loss", {})
+        return settings_from_table(cls, raw | {"loss": loss}, source)
 
     def to_dict(self) -> dict:
-        return {name: asdict(getattr(self, name)) for name in ("network", "loss", "training")}
+        """Every setting, except a ``jacobian_weight`` of 0 (the term off): records made
+        before that term existed (model.json, checkpoints' and folds' fingerprints) then
+        still match the same training."""
+        raw = {name: asdict(getattr(self, name)) for name in ("network", "loss", "training")}
+        if raw["loss"]["jacobian_weight"] == 0.0:
+            del raw["loss"]["jacobian_weight"]
+        return raw
 
 
 # --- one batch ------------------------------------------------------------------------------
@@ -172,6 +180,9 @@ def batch_terms(network: VelocityNet, batch: Batch, loss: LossSettings, directio
         "monotone": monotone_voxels(log_jacobian, batch.tissue, growing)
         + monotone_regions(ratio_earlier, ratio, direction),
         "prior": prior_z2(ratio, batch.prior, batch.prior_sd),
+        "jacobian": log_jacobian_match(
+            log_jacobian, batch.log_jacobian, batch.mask[:, 0], batch.measured
+        ),
     }
     return terms, ratio, warped
 
@@ -214,6 +225,7 @@ class Run:
             training.gain_sd if rngs else 0.0,
             training.flip_probability if rngs else 0.0,
             self.image,
+            log_jacobians=self.config.loss.jacobian_weight > 0,
         )
 
     @cached_property
@@ -267,6 +279,10 @@ def prepare_run(
     }
     if pairs["train"].empty:
         raise DataError("the training participants have no follow-up visits: nothing to learn")
+    spaces = volumes[WITHIN_SUBJECT] if WITHIN_SUBJECT in volumes else pd.Series(dtype=str)
+    if config.loss.jacobian_weight > 0 and not spaces.notna().any():
+        raise DataError(f"{work}: jacobian_weight > 0 needs measured log-Jacobian maps; prepare "
+                        "it with [longitudinal] within_subject = true")  # fmt: skip
     counts = {}
     if member is not None:
         diagnosis = volumes.groupby("participant_id")["diagnosis"].first()

@@ -22,6 +22,14 @@ visit's affine scale). For a participant with two or more prepared visits:
    resampled once onto the working grid through that shared transform and the
    visit's map from the mean: two visits' working-grid images then differ only
    by the anatomy's change and the noise.
+4. For every pair of visits (earlier, later), the log-Jacobian determinant of
+   a diffeomorphic demons registration of the later visit's working-grid
+   image to the earlier's (:func:`predictor.longitudinal.demons_jacobian`, the
+   ``target_demons_*`` levels in working-grid voxels; by default one level at
+   half the grid's resolution, that of the network's velocity): the measured local change
+   the network's own log-Jacobian is trained towards (``jacobian_weight`` in
+   ``configs/train.toml``). It is measured on the working grid, where the
+   network works, and for every pair training uses (not only baseline pairs).
 
 The result is cached per participant (``subjects/<key>/``; ``result.json`` is
 written last and marks the entry complete) and is what training reads
@@ -45,16 +53,21 @@ import pandas as pd
 from predictor import __version__
 from predictor.errors import PredictorError
 from predictor.files import exclusive, write_json
-from predictor.longitudinal import Visit, rigid_alignment
+from predictor.longitudinal import Visit, demons_jacobian, rigid_alignment
 from predictor.nifti import save_array
 from predictor.preprocess import resample
 from predictor.regions import RegionSet
-from predictor.workspace import Layout, ScanFiles
+from predictor.spatial import to_sitk
+from predictor.workspace import Layout, ScanFiles, SubjectFiles
 
+#: fewest metric samples of a registration to the mean on its coarsest level
+MIN_SAMPLES = 2000
 #: the [longitudinal] settings that shape a within-subject entry
 SETTINGS = ("rigid_shrink_factors", "rigid_smoothing_mm", "rigid_iterations",
             "rigid_min_step_mm", "within_subject_parameters", "within_subject_rounds",
-            "within_subject_tolerance")  # fmt: skip
+            "within_subject_tolerance", "within_subject_sampling_fraction",
+            "target_demons_shrink_factors", "target_demons_iterations",
+            "demons_field_sd_voxels", "histogram_levels")  # fmt: skip
 
 
 def average_map(maps: list[np.ndarray], rigid: bool) -> np.ndarray:
@@ -83,10 +96,15 @@ def subject_space(visits: list[Visit], template_to_native: list[np.ndarray], set
     """
     parameters = settings.within_subject_parameters
     affine, shape = visits[0].affine, visits[0].t1.shape
+    # at least MIN_SAMPLES metric samples on the coarsest level: too few (a small, coarse
+    # scan) leave the joint histogram without a range, and the registration fails
+    coarsest = max(settings.rigid_shrink_factors) ** 3 / max(int(visits[0].mask.sum()), 1)
+    fraction = min(1.0, max(settings.within_subject_sampling_fraction, MIN_SAMPLES * coarsest))
     mean, maps, history = visits[0].t1, [], []
     for _ in range(settings.within_subject_rounds):
         reference = Visit(mean, affine, {}, {})
-        maps = [rigid_alignment(reference, visit, settings, parameters) for visit in visits]
+        maps = [rigid_alignment(reference, visit, settings, parameters, fraction)
+                for visit in visits]  # fmt: skip
         centre = np.linalg.inv(average_map(maps, rigid=parameters == 6))
         maps = [m @ centre for m in maps]
         new = _mean_image(visits, maps, affine, shape)
@@ -107,6 +125,17 @@ def subject_space(visits: list[Visit], template_to_native: list[np.ndarray], set
     }
 
 
+def pair_log_jacobian(earlier: np.ndarray, later: np.ndarray, grid: np.ndarray,
+                      settings) -> np.ndarray:  # fmt: skip
+    """log det of the demons map earlier -> later (:func:`demons_jacobian`) between two
+    working-grid images (RAS, ``grid``): the follow-up / baseline local volume ratio on
+    the earlier visit's grid points, as the network's forward map has it. float32."""
+    levels = zip(settings.target_demons_shrink_factors, settings.target_demons_iterations,
+                 strict=True)  # fmt: skip
+    determinant = demons_jacobian(to_sitk(earlier, grid), to_sitk(later, grid), settings, levels)
+    return np.log(np.clip(determinant, 1e-3, None)).astype(np.float32)
+
+
 def subject_key(keys: list[str], settings) -> str:
     """Cache key of a participant's entry: its visits' scan keys, the settings that shape
     it (:data:`SETTINGS`) and the version."""
@@ -124,12 +153,11 @@ def _read_visit(files: ScanFiles, regions: RegionSet) -> tuple[Visit, np.ndarray
 
 def align_participant(work: str, keys: list[str], regions_raw: dict, settings) -> dict:
     """One participant's entry (its visits' scan ``keys``, oldest first), from the cache
-    or computed and cached; ``{"key": ..., "failed": reason}`` when it cannot be made.
+    or computed and cached; ``{"key": ..., "failed": reason}`` when it cannot be made
+    (nothing of it is left then).
 
     Runs in a worker process. The entry is locked while it is checked and written.
     """
-    from predictor.prepare import GRID_FIELDS, grid_arrays, save_grid
-
     layout = Layout(Path(work))
     key = subject_key(keys, settings)
     entry = layout.subject(key)
@@ -138,37 +166,56 @@ def align_participant(work: str, keys: list[str], regions_raw: dict, settings) -
             return {"key": key, "cached": True}
         if entry.folder.exists():  # a half-written entry from an interrupted run
             shutil.rmtree(entry.folder)
-        regions = RegionSet.from_dict(regions_raw)
         try:
-            read = [_read_visit(layout.scan(k), regions) for k in keys]
-            results = [layout.scan(k).read_result() for k in keys]
-            space = subject_space(
-                [visit for visit, _ in read],
-                [np.asarray(r["template_to_native"], dtype=float) for r in results],
-                settings,
-            )
-        except (PredictorError, RuntimeError, OSError) as error:
+            _write_entry(layout, entry, keys, RegionSet.from_dict(regions_raw), settings)
+        except (PredictorError, RuntimeError, OSError, ValueError, ArithmeticError) as error:
+            shutil.rmtree(entry.folder, ignore_errors=True)
             return {"key": key, "failed": str(error).splitlines()[0]}
-        grid = np.asarray(results[0]["diagnostics"]["grid_affine"], dtype=float)
-        shape = tuple(results[0]["diagnostics"]["grid_shape"])
-        visits = {}
-        for k, (visit, head), to_visit in zip(keys, read, space["mean_to_visit"], strict=True):
-            shared = to_visit @ space["template_to_mean"]
-            arrays = grid_arrays(head, visit.mask, visit.tissue, list(visit.deep.values()),
-                                 visit.affine, shared, grid, shape)  # fmt: skip
-            save_grid({name: arrays[name] for name in GRID_FIELDS}, grid, entry.visit(k))
-            visits[k] = {"mean_to_visit": to_visit.tolist(), "template_to_native": shared.tolist()}
-        save_array(space["mean"], space["affine"], entry.mean)
-        write_json(
-            entry.result,
-            {
-                "visits": visits,
-                "template_to_mean": space["template_to_mean"].tolist(),
-                "rounds": space["rounds"],
-                "mean_change": space["mean_change"],
-            },
-        )  # written last: marks the entry complete
     return {"key": key, "cached": False}
+
+
+def _write_entry(layout: Layout, entry: SubjectFiles, keys: list[str], regions: RegionSet,
+                 settings) -> None:  # fmt: skip
+    """Compute and write a participant's entry; result.json last (it marks it complete)."""
+    from predictor.prepare import GRID_FIELDS, grid_arrays, save_grid
+
+    read = [_read_visit(layout.scan(k), regions) for k in keys]
+    results = [layout.scan(k).read_result() for k in keys]
+    space = subject_space(
+        [visit for visit, _ in read],
+        [np.asarray(r["template_to_native"], dtype=float) for r in results],
+        settings,
+    )
+    grid = np.asarray(results[0]["diagnostics"]["grid_affine"], dtype=float)
+    shape = tuple(results[0]["diagnostics"]["grid_shape"])
+    visits, images = {}, {}
+    for k, (visit, head), to_visit in zip(keys, read, space["mean_to_visit"], strict=True):
+        shared = to_visit @ space["template_to_mean"]
+        arrays = grid_arrays(head, visit.mask, visit.tissue, list(visit.deep.values()),
+                             visit.affine, shared, grid, shape)  # fmt: skip
+        save_grid({name: arrays[name] for name in GRID_FIELDS}, grid, entry.visit(k))
+        visits[k] = {"mean_to_visit": to_visit.tolist(), "template_to_native": shared.tolist()}
+        images[k] = arrays["grid_t1"]
+    missing = []  # a pair whose target fails has none; the space itself stands
+    for i, earlier in enumerate(keys):
+        for later in keys[i + 1 :]:
+            try:
+                measured = pair_log_jacobian(images[earlier], images[later], grid, settings)
+            except (RuntimeError, ValueError, ArithmeticError) as error:
+                missing.append([earlier, later, str(error).splitlines()[0]])
+                continue
+            save_array(measured, grid, entry.log_jacobian(earlier, later))
+    save_array(space["mean"], space["affine"], entry.mean)
+    write_json(
+        entry.result,
+        {
+            "visits": visits,
+            "template_to_mean": space["template_to_mean"].tolist(),
+            "rounds": space["rounds"],
+            "mean_change": space["mean_change"],
+            "targets_failed": missing,
+        },
+    )
 
 
 def align_participants(

@@ -24,6 +24,8 @@ Layout::
         <scan key>/grid_*.nii.gz  that visit's working-grid images (names as in scans/),
                              through the participant's one transform to the template
         mean_T1w.nii.gz      the participant's mean brain image
+        <earlier key>_<later key>_logjac.nii.gz  each pair of visits' log-Jacobian of
+                             a demons registration on the working grid (a training target)
         result.json          each visit's map from the mean and to the template
     pairs/<key>.json     change between two visits of a participant measured by
                          registration (predictor.longitudinal); one file per pair
@@ -100,6 +102,10 @@ class SubjectFiles:
     def visit(self, key: str) -> ScanFiles:
         """The working-grid images of the visit whose scan key is ``key``."""
         return ScanFiles(self.folder / key)
+
+    def log_jacobian(self, earlier: str, later: str) -> Path:
+        """The measured log-Jacobian map of the visits (scan keys) ``earlier`` -> ``later``."""
+        return self.folder / f"{earlier}_{later}_logjac.nii.gz"
 
     def read_result(self) -> dict:
         return json.loads(self.result.read_text())

@@ -20,6 +20,7 @@ from predictor.errors import ConfigError, DataError, OutputError
 from predictor.fields import identity_grid, jacobian_determinant, region_volume_ratio
 from predictor.losses import (
     LossSettings,
+    log_jacobian_match,
     masked_lncc,
     masked_mse,
     monotone_regions,
@@ -31,6 +32,7 @@ from predictor.modelstore import CHECKPOINT, WEIGHTS, load_model, load_tensors
 from predictor.network import NetworkSettings, VelocityNet, encode_condition
 from predictor.pairs import (
     ScanStore,
+    make_batch,
     network_input,
     region_weights,
     split_participants,
@@ -277,3 +279,55 @@ def test_train_command_refuses_to_overwrite(tiny_workspace, tmp_path):
     assert again.exit_code == 2 and "--resume" in again.output and "Traceback" not in again.output
     missing = runner.invoke(app, ["train", str(tmp_path / "nowhere"), str(tmp_path / "other")])
     assert missing.exit_code == 2 and "not a prepared workspace" in missing.output
+
+
+def test_log_jacobian_term_is_the_masked_mean_squared_difference_of_measured_pairs(rng):
+    # By hand (numpy): per pair the mean squared difference inside the mask, averaged over
+    # the pairs with a measured map; a pair without one adds nothing.
+    predicted, measured = rng.normal(size=(2, 3, 4, 5, 6))
+    mask = (rng.random((3, 4, 5, 6)) > 0.4).astype(float)
+    present = np.array([1.0, 0.0, 1.0])
+    per_pair = [((predicted[k] - measured[k]) ** 2 * mask[k]).sum() / mask[k].sum() for k in (0, 2)]
+    found = log_jacobian_match(*(torch.tensor(a) for a in (predicted, measured, mask, present)))
+    assert float(found) == pytest.approx(np.mean(per_pair), rel=1e-12)
+    none = [torch.tensor(a) for a in (predicted, measured, mask, 0 * present)]
+    assert float(log_jacobian_match(*none)) == 0.0
+
+
+def test_batches_carry_each_pairs_measured_log_jacobian_flipped_with_it(tiny_workspace):
+    # The map a batch carries is the participant's within-subject file (read here with
+    # nibabel), mirrored with the pair; without log_jacobians no pair has one.
+    import nibabel as nib
+
+    workspace = read_workspace(tiny_workspace)
+    volumes, regions = workspace.volumes, workspace.regions
+    spaces = dict(zip(volumes["key"], volumes["within_subject"], strict=True))
+    participants = sorted(volumes.participant_id.unique())[:2]
+    priors = {f"{r}_prior{end}": 1.0 for r in regions.prior for end in ("", "_sd")}
+    pairs = visit_pairs(volumes, participants, regions).assign(**priors)
+    store, count = ScanStore(tiny_workspace, spaces), len(pairs)
+    rngs = [np.random.default_rng(k) for k in range(count)]
+    batch = make_batch(pairs, store, torch.zeros(count, 5), True, regions, rngs, 0.0, 1.0,
+                       log_jacobians=True)  # fmt: skip
+    for k, pair in enumerate(pairs.itertuples(index=False)):
+        path = workspace.layout.subject(spaces[pair.base_key]).log_jacobian(
+            pair.base_key, pair.follow_key
+        )
+        expected = np.asarray(nib.load(path).dataobj, dtype=np.float32)[::-1]
+        np.testing.assert_array_equal(batch.log_jacobian[k].numpy(), expected)
+    assert batch.measured.tolist() == [1.0] * count
+    plain = make_batch(pairs, store, torch.zeros(count, 5), True, regions)
+    assert plain.measured.sum() == 0 and plain.log_jacobian.abs().sum() == 0
+
+
+def test_a_config_recorded_before_the_jacobian_term_reads_the_same():
+    # The term off (weight 0) leaves no trace in the record, so model.json files, checkpoint
+    # and fold fingerprints written before the term existed still match the same training.
+    from dataclasses import replace
+
+    config = TrainConfig.from_toml()
+    raw = config.to_dict()
+    assert config.loss.jacobian_weight == 0.0 and "jacobian_weight" not in raw["loss"]
+    assert TrainConfig.from_dict(raw) == config
+    on = replace(config, loss=replace(config.loss, jacobian_weight=2.0))
+    assert TrainConfig.from_dict(on.to_dict()) == on

@@ -33,6 +33,7 @@ def _default_batch(pairs: int):
         field(4), field(1), field(1), torch.ones(pairs, 1, *shape), field(1)[:, 0],
         field(regions), condition, torch.full((pairs,), 2.0),
         torch.ones(pairs, regions), torch.full((pairs, regions), 0.01),
+        torch.zeros(pairs, *shape), torch.zeros(pairs),
     )  # fmt: skip
     return batch, shape
 
