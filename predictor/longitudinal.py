@@ -334,7 +334,7 @@ def pair_key(earlier: str, later: str, settings) -> str:
     """Cache key of a pair: its two scans' keys, the longitudinal settings that shape it
     (not those of the within-subject space) and the version."""
     shaping = {name: value for name, value in asdict(settings).items()
-               if not name.startswith(("within_subject", "target_"))}  # fmt: skip
+               if not name.startswith(("within_subject", "target_", "jacobian_"))}  # fmt: skip
     digest = hashlib.sha256(f"{earlier}/{later}/{__version__}/{PAIR_FORMAT}".encode())
     digest.update(json.dumps(shaping, sort_keys=True).encode())
     return digest.hexdigest()[:20]

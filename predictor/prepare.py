@@ -117,6 +117,7 @@ class LongitudinalSettings:
     within_subject_rounds: int
     within_subject_tolerance: float
     within_subject_sampling_fraction: float
+    jacobian_targets: bool  # each pair of visits' log-Jacobian map (a training target)
     target_demons_shrink_factors: tuple[int, ...]  # the pairs' log-Jacobian training targets
     target_demons_iterations: tuple[int, ...]
 

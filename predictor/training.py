@@ -280,9 +280,10 @@ def prepare_run(
     if pairs["train"].empty:
         raise DataError("the training participants have no follow-up visits: nothing to learn")
     spaces = volumes[WITHIN_SUBJECT] if WITHIN_SUBJECT in volumes else pd.Series(dtype=str)
-    if config.loss.jacobian_weight > 0 and not spaces.notna().any():
+    made = workspace.prepare_settings.get("longitudinal", {}).get("jacobian_targets", False)
+    if config.loss.jacobian_weight > 0 and not (made and spaces.notna().any()):
         raise DataError(f"{work}: jacobian_weight > 0 needs measured log-Jacobian maps; prepare "
-                        "it with [longitudinal] within_subject = true")  # fmt: skip
+                        "it with [longitudinal] jacobian_targets = true")  # fmt: skip
     counts = {}
     if member is not None:
         diagnosis = volumes.groupby("participant_id")["diagnosis"].first()

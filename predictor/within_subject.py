@@ -22,7 +22,8 @@ visit's affine scale). For a participant with two or more prepared visits:
    resampled once onto the working grid through that shared transform and the
    visit's map from the mean: two visits' working-grid images then differ only
    by the anatomy's change and the noise.
-4. For every pair of visits (earlier, later), the log-Jacobian determinant of
+4. With ``jacobian_targets``, for every pair of visits (earlier, later), the
+   log-Jacobian determinant of
    a diffeomorphic demons registration of the later visit's working-grid
    image to the earlier's (:func:`predictor.longitudinal.demons_jacobian`, the
    ``target_demons_*`` levels in working-grid voxels; by default one level at
@@ -43,7 +44,7 @@ from __future__ import annotations
 import hashlib
 import json
 import shutil
-from dataclasses import asdict
+from dataclasses import asdict, replace
 from pathlib import Path
 
 import nibabel as nib
@@ -61,12 +62,14 @@ from predictor.spatial import to_sitk
 from predictor.workspace import Layout, ScanFiles, SubjectFiles
 
 #: fewest metric samples of a registration to the mean on its coarsest level
-MIN_SAMPLES = 2000
+MIN_SAMPLES = 300
+#: coarsest spacing (mm) of a level of the registration to the mean
+COARSEST_MM = 8.0
 #: the [longitudinal] settings that shape a within-subject entry
 SETTINGS = ("rigid_shrink_factors", "rigid_smoothing_mm", "rigid_iterations",
             "rigid_min_step_mm", "within_subject_parameters", "within_subject_rounds",
             "within_subject_tolerance", "within_subject_sampling_fraction",
-            "target_demons_shrink_factors", "target_demons_iterations",
+            "jacobian_targets", "target_demons_shrink_factors", "target_demons_iterations",
             "demons_field_sd_voxels", "histogram_levels")  # fmt: skip
 
 
@@ -96,9 +99,16 @@ def subject_space(visits: list[Visit], template_to_native: list[np.ndarray], set
     """
     parameters = settings.within_subject_parameters
     affine, shape = visits[0].affine, visits[0].t1.shape
-    # at least MIN_SAMPLES metric samples on the coarsest level: too few (a small, coarse
-    # scan) leave the joint histogram without a range, and the registration fails
-    coarsest = max(settings.rigid_shrink_factors) ** 3 / max(int(visits[0].mask.sum()), 1)
+    # levels coarser than COARSEST_MM hold no brain detail (a 4 mm scan shrunk 4 times);
+    # at least MIN_SAMPLES metric samples on the coarsest one: too few leave the joint
+    # histogram without a range, and the registration fails
+    voxel_mm = (visits[0].voxel_ml * 1000.0) ** (1.0 / 3.0)
+    levels = [(f, s) for f, s in zip(settings.rigid_shrink_factors, settings.rigid_smoothing_mm,
+                                     strict=True) if f * voxel_mm <= COARSEST_MM]  # fmt: skip
+    levels = levels or [(settings.rigid_shrink_factors[-1], settings.rigid_smoothing_mm[-1])]
+    settings = replace(settings, rigid_shrink_factors=tuple(f for f, _ in levels),
+                       rigid_smoothing_mm=tuple(s for _, s in levels))  # fmt: skip
+    coarsest = levels[0][0] ** 3 / max(int(visits[0].mask.sum()), 1)
     fraction = min(1.0, max(settings.within_subject_sampling_fraction, MIN_SAMPLES * coarsest))
     mean, maps, history = visits[0].t1, [], []
     for _ in range(settings.within_subject_rounds):
@@ -197,7 +207,7 @@ def _write_entry(layout: Layout, entry: SubjectFiles, keys: list[str], regions: 
         visits[k] = {"mean_to_visit": to_visit.tolist(), "template_to_native": shared.tolist()}
         images[k] = arrays["grid_t1"]
     missing = []  # a pair whose target fails has none; the space itself stands
-    for i, earlier in enumerate(keys):
+    for i, earlier in enumerate(keys if settings.jacobian_targets else []):
         for later in keys[i + 1 :]:
             try:
                 measured = pair_log_jacobian(images[earlier], images[later], grid, settings)

@@ -25,7 +25,8 @@ Layout::
                              through the participant's one transform to the template
         mean_T1w.nii.gz      the participant's mean brain image
         <earlier key>_<later key>_logjac.nii.gz  each pair of visits' log-Jacobian of
-                             a demons registration on the working grid (a training target)
+                             a demons registration on the working grid (a training
+                             target; with [longitudinal] jacobian_targets = true)
         result.json          each visit's map from the mean and to the template
     pairs/<key>.json     change between two visits of a participant measured by
                          registration (predictor.longitudinal); one file per pair

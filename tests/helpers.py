@@ -28,7 +28,9 @@ from predictor.training import TrainConfig
 
 #: prepare settings of the shared tiny workspaces (4 mm grid). Without demons: their
 #: tests use only the boundary regions' change (the observed change), which needs none.
-BOUNDARY_CHANGE_ONLY = PrepareSettings.from_toml(grid_mm=4.0, longitudinal={"demons": False})
+BOUNDARY_CHANGE_ONLY = PrepareSettings.from_toml(
+    grid_mm=4.0, longitudinal={"demons": False, "jacobian_targets": True}
+)
 
 
 def constant_velocity_model(

@@ -200,8 +200,8 @@ def small(tiny_cohort, tmp_path_factory):
     table = table[table.participant_id.isin(["sub-001", "sub-002"])].reset_index(drop=True)
     path = folder / "cohort.tsv"
     table.drop(columns="brain_mask").to_csv(path, sep="\t", index=False)
-    reference = folder / "reference"
-    prepare_cohort(table, reference, tiny_cohort / TEMPLATE, SETTINGS)
+    reference = folder / "reference"  # scans only: these tests are about the scans' cache
+    prepare_cohort(table, reference, tiny_cohort / TEMPLATE, PER_SCAN)
     return path, table, workspace_volumes(reference)
 
 
@@ -230,7 +230,7 @@ def test_killed_prepare_resumes_to_identical_results(tiny_cohort, small, tmp_pat
     process.wait()
     done = len(list((work / "scans").glob("*/result.json")))
     assert 0 < done < len(expected)
-    summary = prepare_cohort(table, work, template, SETTINGS)
+    summary = prepare_cohort(table, work, template, PER_SCAN)
     assert summary["cached"] >= done
     pd.testing.assert_frame_equal(workspace_volumes(work), expected)
 
@@ -254,7 +254,7 @@ def test_failed_scan_is_listed_and_others_go_on(tiny_cohort, small, tmp_path):
     broken = tmp_path / "broken.nii.gz"
     broken.write_bytes(b"not a scan")
     table.loc[0, "image"] = str(broken)
-    summary = prepare_cohort(table, tmp_path / "work", tiny_cohort / TEMPLATE, SETTINGS)
+    summary = prepare_cohort(table, tmp_path / "work", tiny_cohort / TEMPLATE, PER_SCAN)
     assert summary["failed"] == 1 and summary["prepared"] == len(table) - 1
     failures = pd.read_csv(tmp_path / "work" / "failures.tsv", sep="\t")
     assert failures.loc[0, "image"] == "broken.nii.gz"

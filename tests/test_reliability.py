@@ -35,7 +35,7 @@ from predictor.phantoms.generate import TEMPLATE
 from predictor.prepare import PrepareSettings, prepare_cohort, workspace_volumes
 from predictor.training import TrainConfig, train
 
-SETTINGS = PrepareSettings.from_toml(grid_mm=4.0)
+SETTINGS = PrepareSettings.from_toml(grid_mm=4.0, longitudinal={"demons": False})  # as fast
 PYTHON_CLI = [sys.executable, "-m", "predictor.cli"]
 
 
