@@ -87,15 +87,21 @@ class Visit:
     @classmethod
     def read(cls, folder: Path, regions: RegionSet) -> Visit:
         """The visit of a prepared scan entry (its native_* files)."""
+        return cls.read_with_head(folder, regions)[0]
+
+    @classmethod
+    def read_with_head(cls, folder: Path, regions: RegionSet) -> tuple[Visit, np.ndarray]:
+        """:meth:`read`, and the entry's normalised T1 over the whole head."""
         from predictor.prepare import native_maps
         from predictor.workspace import ScanFiles
 
         files = ScanFiles(folder)
         image = nib.load(files.native_t1)  # the whole head; the brain is native_dseg > 0
+        head = np.asarray(image.dataobj, dtype=np.float32)
         brain = np.asarray(nib.load(files.labels).dataobj) > 0
         tissue, deep = native_maps(files, regions)
-        t1 = np.where(brain, np.asarray(image.dataobj, dtype=np.float32), 0.0)
-        return cls(t1.astype(np.float32), image.affine, tissue, deep)
+        t1 = np.where(brain, head, 0.0).astype(np.float32)
+        return cls(t1, image.affine, tissue, deep), head
 
     @property
     def voxel_ml(self) -> float:

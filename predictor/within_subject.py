@@ -47,7 +47,6 @@ import shutil
 from dataclasses import asdict, replace
 from pathlib import Path
 
-import nibabel as nib
 import numpy as np
 import pandas as pd
 
@@ -59,7 +58,7 @@ from predictor.nifti import save_array
 from predictor.preprocess import resample
 from predictor.regions import RegionSet
 from predictor.spatial import to_sitk
-from predictor.workspace import Layout, ScanFiles, SubjectFiles
+from predictor.workspace import Layout, SubjectFiles
 
 #: fewest metric samples of a registration to the mean on its coarsest level
 MIN_SAMPLES = 300
@@ -155,12 +154,6 @@ def subject_key(keys: list[str], settings) -> str:
     return digest.hexdigest()[:20]
 
 
-def _read_visit(files: ScanFiles, regions: RegionSet) -> tuple[Visit, np.ndarray]:
-    """A prepared scan's :class:`Visit` and its whole-head normalised T1."""
-    visit = Visit.read(files.folder, regions)
-    return visit, np.asarray(nib.load(files.native_t1).dataobj, dtype=np.float32)
-
-
 def align_participant(work: str, keys: list[str], regions_raw: dict, settings) -> dict:
     """One participant's entry (its visits' scan ``keys``, oldest first), from the cache
     or computed and cached; ``{"key": ..., "failed": reason}`` when it cannot be made
@@ -189,7 +182,7 @@ def _write_entry(layout: Layout, entry: SubjectFiles, keys: list[str], regions: 
     """Compute and write a participant's entry; result.json last (it marks it complete)."""
     from predictor.prepare import GRID_FIELDS, grid_arrays, save_grid
 
-    read = [_read_visit(layout.scan(k), regions) for k in keys]
+    read = [Visit.read_with_head(layout.scan(k).folder, regions) for k in keys]
     results = [layout.scan(k).read_result() for k in keys]
     space = subject_space(
         [visit for visit, _ in read],
