@@ -65,14 +65,24 @@ WITHIN_SUBJECT = "within_subject"
 
 
 @dataclass(frozen=True)
-class ScanFiles:
-    """The files of one prepared scan (a cache entry)."""
+class Entry:
+    """A cache entry's folder: its lock file beside it, and result.json, written last."""
 
     folder: Path
 
     @property
     def lock(self) -> Path:
         return self.folder.parent / f".{self.folder.name}.lock"
+
+    result = property(lambda self: self.folder / "result.json")
+
+    def read_result(self) -> dict:
+        return json.loads(self.result.read_text())
+
+
+@dataclass(frozen=True)
+class ScanFiles(Entry):
+    """The files of one prepared scan (a cache entry)."""
 
     t1 = property(lambda self: self.folder / "grid_T1w.nii.gz")
     mask = property(lambda self: self.folder / "grid_mask.nii.gz")
@@ -81,24 +91,13 @@ class ScanFiles:
     labels = property(lambda self: self.folder / "native_dseg.nii.gz")
     native_t1 = property(lambda self: self.folder / "native_T1w.nii.gz")
     native_maps = property(lambda self: self.folder / "native_probseg.nii.gz")
-    result = property(lambda self: self.folder / "result.json")
-
-    def read_result(self) -> dict:
-        return json.loads(self.result.read_text())
 
 
 @dataclass(frozen=True)
-class SubjectFiles:
+class SubjectFiles(Entry):
     """The files of one participant's within-subject entry."""
 
-    folder: Path
-
-    @property
-    def lock(self) -> Path:
-        return self.folder.parent / f".{self.folder.name}.lock"
-
     mean = property(lambda self: self.folder / "mean_T1w.nii.gz")
-    result = property(lambda self: self.folder / "result.json")
 
     def visit(self, key: str) -> ScanFiles:
         """The working-grid images of the visit whose scan key is ``key``."""
@@ -107,9 +106,6 @@ class SubjectFiles:
     def log_jacobian(self, earlier: str, later: str) -> Path:
         """The measured log-Jacobian map of the visits (scan keys) ``earlier`` -> ``later``."""
         return self.folder / f"{earlier}_{later}_logjac.nii.gz"
-
-    def read_result(self) -> dict:
-        return json.loads(self.result.read_text())
 
 
 @dataclass(frozen=True)
