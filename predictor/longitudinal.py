@@ -395,7 +395,7 @@ def _change_row(earlier: dict, later: dict, result: dict, regions: RegionSet) ->
     return row
 
 
-def _failure(participant: str, session: str, what: str, result: dict) -> dict:
+def failure_row(participant: str, session: str, what: str, result: dict) -> dict:
     return {"participant_id": participant, "session_id": session, "image": "",
             "reason": f"{what}: {result['failed']}"}  # fmt: skip
 
@@ -416,7 +416,7 @@ def measure_changes(
         participant = earlier["participant_id"]
         sessions = f"{earlier['session_id']}->{later['session_id']}"
         if "failed" in result:
-            failures.append(_failure(participant, sessions, "change by registration", result))
+            failures.append(failure_row(participant, sessions, "change by registration", result))
             continue
         rows.append(
             {
@@ -467,7 +467,7 @@ def measure_rescans(
     for (scan, rescan), result in zip(pairs, results, strict=True):
         participant, session = scan["participant_id"], scan["session_id"]
         if "failed" in result:
-            failures.append(_failure(participant, f"{session} rescan", "rescan", result))
+            failures.append(failure_row(participant, f"{session} rescan", "rescan", result))
             continue
         rows.append(
             {"participant_id": participant, "session_id": session}

@@ -53,7 +53,7 @@ import pandas as pd
 from predictor import __version__
 from predictor.errors import PredictorError
 from predictor.files import exclusive, write_json
-from predictor.longitudinal import Visit, demons_jacobian, rigid_alignment
+from predictor.longitudinal import Visit, demons_jacobian, failure_row, rigid_alignment
 from predictor.nifti import save_array
 from predictor.preprocess import resample
 from predictor.regions import RegionSet
@@ -246,8 +246,7 @@ def align_participants(
     spaces, failures = {}, []
     for (participant, keys), result in zip(groups, results, strict=True):
         if "failed" in result:
-            failures.append({"participant_id": participant, "session_id": "", "image": "",
-                             "reason": f"within-subject space: {result['failed']}"})  # fmt: skip
+            failures.append(failure_row(participant, "", "within-subject space", result))
             continue
         spaces |= dict.fromkeys(keys, result["key"])
     return spaces, failures
