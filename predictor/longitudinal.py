@@ -3,8 +3,13 @@
 For each participant, the baseline visit (the youngest age) is paired with
 every later visit. Both visits' bias-corrected, normalised native images and
 region maps come from their prepared scan entries. The later visit is
-rigidly aligned to the earlier (6 parameters, Mattes mutual information,
-multi-resolution). A diffeomorphic demons registration (Vercauteren et al.
+rigidly aligned to the earlier: through the participant's within-subject
+space (:mod:`predictor.within_subject`) where both visits have one and it is
+rigid, so that every pair of a participant shares one set of poses and
+swapping the visits gives exactly the inverse map; otherwise by a rigid
+registration of the pair (6 parameters, Mattes mutual information,
+multi-resolution; also for same-day rescans, which are not in the space). A
+diffeomorphic demons registration (Vercauteren et al.
 2009, NeuroImage, "Diffeomorphic demons: efficient non-parametric image
 registration"; SimpleITK's ``DiffeomorphicDemonsRegistrationFilter``) then
 maps the later visit onto the earlier and, separately, the earlier onto the
@@ -58,10 +63,11 @@ from predictor.preprocess import run_registration
 from predictor.regions import RegionSet
 from predictor.spatial import affine_to_matrix, from_sitk, matrix_to_transform, to_sitk
 from predictor.volumes import region_volumes
-from predictor.workspace import Layout
+from predictor.workspace import WITHIN_SUBJECT, Layout
 
-#: changes when a pair's measurement does (2: demons' coarse levels smooth both images)
-PAIR_FORMAT = 2
+#: changes when a pair's measurement does (2: demons' coarse levels smooth both images;
+#: 3: aligned through the within-subject space)
+PAIR_FORMAT = 3
 #: columns of changes.tsv, before one pair of columns per region
 CHANGE_ID = ("participant_id", "session_from", "session_to", "years")
 #: columns of rescans.tsv, before the same pairs of columns
@@ -237,14 +243,19 @@ def _shrunk(image: sitk.Image, factor: int) -> sitk.Image:
     )
 
 
-def pair_change(earlier: Visit, later: Visit, regions: RegionSet, settings) -> dict:
+def pair_change(
+    earlier: Visit, later: Visit, regions: RegionSet, settings, earlier_to_later=None
+) -> dict:
     """Each region's volume ratio later / earlier (see the module docstring).
 
+    ``earlier_to_later`` (4x4, mm: earlier points -> later points) is the visits'
+    alignment where it is known; by default a rigid registration of the pair.
     Returns ``{"ratio": {region: r}, "forward": {...}, "backward": {...}}``:
     the symmetric ratio and the two one-way measurements (forward on the
     earlier visit's grid, later / earlier; backward on the later's, earlier / later).
     """
-    earlier_to_later = rigid_alignment(earlier, later, settings)
+    if earlier_to_later is None:
+        earlier_to_later = rigid_alignment(earlier, later, settings)
     forward = _one_way(earlier, later, earlier_to_later, regions, settings)
     backward = _one_way(later, earlier, np.linalg.inv(earlier_to_later), regions, settings)
     # a non-positive one-way ratio (a boundary shift larger than a small region) is a
@@ -336,12 +347,26 @@ def boundary_shift(
     return float(change[edge].sum(dtype=np.float64)) / ((1.0 - 2.0 * trim) * span)
 
 
-def pair_key(earlier: str, later: str, settings) -> str:
-    """Cache key of a pair: its two scans' keys, the longitudinal settings that shape it
-    (not those of the within-subject space) and the version."""
+def shared_space(earlier: dict, later: dict, settings) -> str:
+    """The within-subject entry (its key) whose poses align the two visits (volume-table
+    rows; a rescan's row has none), or "" where they have none in common or the space's
+    registrations are not rigid (9 or 12 parameters would take global change as pose)."""
+    space = earlier.get(WITHIN_SUBJECT, "")
+    if not isinstance(space, str) or space != later.get(WITHIN_SUBJECT, ""):
+        return ""
+    return space if settings.within_subject_parameters == 6 else ""
+
+
+def pair_key(earlier: dict, later: dict, settings) -> str:
+    """Cache key of a pair (volume-table rows): its two scans' keys, their shared space
+    (:func:`shared_space`, whose key covers the settings that shape it), the other
+    longitudinal settings that shape the pair and the version."""
     shaping = {name: value for name, value in asdict(settings).items()
                if not name.startswith(("within_subject", "target_", "jacobian_"))}  # fmt: skip
-    digest = hashlib.sha256(f"{earlier}/{later}/{__version__}/{PAIR_FORMAT}".encode())
+    space = shared_space(earlier, later, settings)
+    digest = hashlib.sha256(
+        f"{earlier['key']}/{later['key']}/{space}/{__version__}/{PAIR_FORMAT}".encode()
+    )
     digest.update(json.dumps(shaping, sort_keys=True).encode())
     return digest.hexdigest()[:20]
 
@@ -358,7 +383,7 @@ def visit_pairs(volumes: pd.DataFrame) -> list[tuple[dict, dict]]:
 def _measure_pair(work: str, earlier: dict, later: dict, regions_raw: dict, settings) -> dict:
     """One pair's change, from its cache file or computed and cached (worker process)."""
     layout = Layout(Path(work))
-    path = layout.pair(pair_key(earlier["key"], later["key"], settings))
+    path = layout.pair(pair_key(earlier, later, settings))
     if path.is_file():
         return json.loads(path.read_text())
     regions = RegionSet.from_dict(regions_raw)
@@ -368,11 +393,24 @@ def _measure_pair(work: str, earlier: dict, later: dict, regions_raw: dict, sett
             Visit.read(layout.scan(later["key"]).folder, regions),
             regions,
             settings,
+            _through_space(layout, earlier, later, settings),
         )
     except (PredictorError, RuntimeError, OSError) as error:
         return {"failed": str(error).splitlines()[0]}
     write_json(path, measured)  # atomic: a killed run leaves no half-written pair
     return measured
+
+
+def _through_space(layout: Layout, earlier: dict, later: dict, settings) -> np.ndarray | None:
+    """The map earlier -> later points (4x4, mm) through the visits' shared space (the
+    later visit's map from the mean after the inverse of the earlier's), or None."""
+    space = shared_space(earlier, later, settings)
+    if not space:
+        return None
+    maps = layout.subject(space).read_result()["visits"]
+    from_mean = [np.asarray(maps[row["key"]]["mean_to_visit"], dtype=float)
+                 for row in (earlier, later)]  # fmt: skip
+    return from_mean[1] @ np.linalg.inv(from_mean[0])
 
 
 def _measure_all(layout: Layout, pairs, regions: RegionSet, settings, jobs, progress) -> list:
@@ -409,7 +447,7 @@ def measure_changes(
     by registration and by segmentation. A failed pair is reported and skipped.
     """
     layout = Layout(Path(work))
-    pairs = visit_pairs(pd.read_csv(layout.volumes, sep="\t"))
+    pairs = visit_pairs(layout.read_volumes())
     results = _measure_all(layout, pairs, regions, settings, jobs, progress)
     rows, failures = [], []
     for (earlier, later), result in zip(pairs, results, strict=True):
@@ -438,7 +476,7 @@ def rescan_pairs(layout: Layout) -> list[tuple[dict, dict]]:
     cohort = layout.read_cohort()
     if "rescan_key" not in cohort.columns:
         return []
-    volumes = pd.read_csv(layout.volumes, sep="\t", dtype={"key": str}).set_index("key")
+    volumes = layout.read_volumes().set_index("key")
     pairs = []
     for key, rescan in zip(cohort["key"], cohort["rescan_key"], strict=True):
         files = layout.scan(rescan) if isinstance(rescan, str) else None
@@ -494,7 +532,7 @@ def noise_floor(layout: Layout, regions: RegionSet) -> pd.DataFrame:
     if not layout.rescans.is_file():
         return pd.DataFrame(columns=columns)
     rescans = pd.read_csv(layout.rescans, sep="\t")
-    volumes = pd.read_csv(layout.volumes, sep="\t")
+    volumes = layout.read_volumes()
     both = rescans.merge(volumes, on=["participant_id", "session_id"])
     rows = []
     for name in regions.names if len(both) else []:

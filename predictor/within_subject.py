@@ -32,6 +32,12 @@ visit's affine scale). For a participant with two or more prepared visits:
    ``configs/train.toml``). It is measured on the working grid, where the
    network works, and for every pair training uses (not only baseline pairs).
 
+With 6 parameters, the change stage (:mod:`predictor.longitudinal`) aligns a
+participant's pairs of visits through this space too (the later visit's map
+from the mean after the inverse of the earlier's) instead of registering each
+pair: the pairs share one set of poses, and swapping two visits inverts the
+map exactly.
+
 The result is cached per participant (``subjects/<key>/``; ``result.json`` is
 written last and marks the entry complete) and is what training reads
 (``volumes.tsv``'s ``within_subject`` column names the entry). Single-visit

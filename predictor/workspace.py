@@ -140,6 +140,10 @@ class Layout:
             return self.subject(subject).visit(key)
         return self.scan(key)
 
+    def read_volumes(self, covariates: tuple[str, ...] = ()) -> pd.DataFrame:
+        """volumes.tsv, its keys as text and its ``covariates`` columns as written."""
+        return read_table(self.volumes, covariates, {"key": str, WITHIN_SUBJECT: str})
+
     def read_cohort(self, covariates: tuple[str, ...] = ()) -> pd.DataFrame:
         """cohort.tsv, its ``covariates`` columns as written (see :func:`read_table`)."""
         if not self.cohort.is_file():
@@ -186,8 +190,7 @@ def read_workspace(work: str | os.PathLike[str]) -> Workspace:
     if "regions" not in prepared or "cohort" not in prepared:
         raise DataError(f"{layout.prepare_json}: written by an older version; rerun prepare")
     cohort = CohortSettings.from_dict(prepared["cohort"], str(layout.prepare_json))
-    volumes = read_table(layout.volumes, cohort.covariate_names,
-                         {"key": str, WITHIN_SUBJECT: str})  # fmt: skip
+    volumes = layout.read_volumes(cohort.covariate_names)
     if volumes.empty:
         raise DataError(f"{layout.volumes}: no prepared scans")
     diagnostics = layout.scan(volumes["key"].iloc[0]).read_result()["diagnostics"]

@@ -171,12 +171,10 @@ def test_changes_table_resumes_from_cached_pairs(tiny_workspace):
 
     layout = Layout(tiny_workspace)
     first = pd.read_csv(layout.changes, sep="\t")
-    volumes = pd.read_csv(layout.volumes, sep="\t")
+    volumes = layout.read_volumes()
     pairs = visit_pairs(volumes)
     assert len(first) == len(pairs) == (volumes.groupby("participant_id").size() - 1).sum()
-    lost = layout.pair(
-        pair_key(pairs[0][0]["key"], pairs[0][1]["key"], BOUNDARY_CHANGE_ONLY.longitudinal)
-    )
+    lost = layout.pair(pair_key(*pairs[0], BOUNDARY_CHANGE_ONLY.longitudinal))
     lost.unlink()
     stamps = {path: path.stat().st_mtime_ns for path in layout.pair("x").parent.glob("*.json")}
     again, failures = measure_changes(
@@ -225,6 +223,40 @@ def test_change_by_registration_beats_independent_segmentation(realistic_workspa
         error = registration["median_abs_error_pts"]
         assert 2 * error <= segmentation["median_abs_error_pts"], region
         assert registration["pearson_r"] > 0.8, region
+
+
+@pytest.mark.slow
+def test_pairs_are_aligned_through_the_participants_space(realistic_workspace):
+    # A participant's pair of visits is aligned through its within-subject space: the
+    # cached change is the one measured with the map through the space (the later visit's
+    # map from the mean after the inverse of the earlier's), and swapping the visits (the
+    # inverse map) inverts every region's change exactly, stronger than the 0.1%.
+    # A rescan, which is not in the space, is registered on its own.
+    import json
+
+    from predictor.longitudinal import pair_key, shared_space
+    from predictor.workspace import Layout
+
+    _, work = realistic_workspace
+    settings = PrepareSettings.from_toml(longitudinal={"demons": False}).longitudinal
+    layout = Layout(work)
+    volumes = layout.read_volumes().sort_values("age", kind="stable")
+    rows = volumes[volumes["participant_id"] == volumes["participant_id"].iloc[0]]
+    earlier, later = rows.iloc[0].to_dict(), rows.iloc[-1].to_dict()
+    maps = layout.subject(earlier["within_subject"]).read_result()["visits"]
+    through = np.asarray(maps[later["key"]]["mean_to_visit"]) @ np.linalg.inv(
+        maps[earlier["key"]]["mean_to_visit"]
+    )
+    visits = [Visit.read(layout.scan(row["key"]).folder, REGIONS) for row in (earlier, later)]
+    forward = pair_change(*visits, REGIONS, settings, through)
+    cached = json.loads(layout.pair(pair_key(earlier, later, settings)).read_text())
+    assert cached["ratio"] == pytest.approx(forward["ratio"], rel=1e-12)
+    backward = pair_change(*visits[::-1], REGIONS, settings, np.linalg.inv(through))
+    assert len(forward["ratio"]) == 4  # the regions with a boundary
+    for name, ratio in forward["ratio"].items():
+        assert ratio * backward["ratio"][name] == pytest.approx(1.0, abs=1e-9), name
+    assert shared_space(earlier, later, settings) == earlier["within_subject"]
+    assert shared_space(earlier, {"key": "rescan"}, settings) == ""
 
 
 @pytest.mark.slow
