@@ -60,6 +60,19 @@ def progress_bar(description: str, total: int):
     return progress, lambda n=1: progress.advance(task, n)
 
 
+def later_line(progress, description: str):
+    """A count on a new line of ``progress`` for a stage whose size is known only when it
+    starts: the line appears at the first call of the returned ``advance(n)``."""
+    task = []
+
+    def advance(n=1):
+        if not task:
+            task.append(progress.add_task(description, total=None))
+        progress.advance(task[0], n)
+
+    return advance
+
+
 @app.command()
 @reports_errors
 def phantoms(
@@ -185,7 +198,9 @@ def prepare(
     progress, advance = progress_bar("preparing scans", total)
     with progress:
         summary = prepare_cohort(
-            table, work, template, settings, jobs, part, advance, region_set, coding
+            table, work, template, settings, jobs, part, advance, region_set, coding,
+            progress_pairs=later_line(progress, "measuring change (visit pairs, rescans)"),
+            progress_subjects=later_line(progress, "participants in one space"),
         )
     typer.echo(
         f"{summary['prepared']} prepared, {summary['cached']} from cache, "

@@ -563,7 +563,7 @@ def prepare_cohort(
     in a within-subject space), pairs, pairs_failed and rescans measured);
     writes ``volumes.tsv``, ``changes.tsv``, ``rescans.tsv`` and ``failures.tsv``
     from all complete entries.
-    ``progress_pairs()`` is called after each visit pair, ``progress_subjects()``
+    ``progress_pairs()`` is called after each visit pair and rescan, ``progress_subjects()``
     after each participant's within-subject space (:mod:`predictor.within_subject`).
     """
     settings = settings or PrepareSettings.from_toml()
@@ -648,7 +648,7 @@ def prepare_cohort(
             layout.root, regions, settings.longitudinal, jobs, progress_pairs
         )
         rescanned, rescan_failures = measure_rescans(
-            layout.root, regions, settings.longitudinal, jobs
+            layout.root, regions, settings.longitudinal, jobs, progress_pairs
         )
         failures += pair_failures + rescan_failures
         summary |= {"pairs": len(changes), "pairs_failed": len(pair_failures),
