@@ -74,8 +74,10 @@ COARSEST_MM = 8.0
 SETTINGS = ("rigid_shrink_factors", "rigid_smoothing_mm", "rigid_iterations",
             "rigid_min_step_mm", "within_subject_parameters", "within_subject_rounds",
             "within_subject_tolerance", "within_subject_sampling_fraction",
-            "jacobian_targets", "target_demons_shrink_factors", "target_demons_iterations",
-            "demons_field_sd_voxels", "histogram_levels")  # fmt: skip
+            "jacobian_targets")  # fmt: skip
+#: those that shape it only with ``jacobian_targets`` (the log-Jacobian maps)
+TARGET_SETTINGS = ("target_demons_shrink_factors", "target_demons_iterations",
+                   "demons_field_sd_voxels", "histogram_levels")  # fmt: skip
 
 
 def average_map(maps: list[np.ndarray], rigid: bool) -> np.ndarray:
@@ -153,8 +155,9 @@ def pair_log_jacobian(earlier: np.ndarray, later: np.ndarray, grid: np.ndarray,
 
 def subject_key(keys: list[str], settings) -> str:
     """Cache key of a participant's entry: its visits' scan keys, the settings that shape
-    it (:data:`SETTINGS`) and the version."""
-    shaping = {name: value for name, value in asdict(settings).items() if name in SETTINGS}
+    it (:data:`SETTINGS`, and :data:`TARGET_SETTINGS` with targets) and the version."""
+    names = SETTINGS + (TARGET_SETTINGS if settings.jacobian_targets else ())
+    shaping = {name: value for name, value in asdict(settings).items() if name in names}
     digest = hashlib.sha256(f"{'/'.join(keys)}/{__version__}".encode())
     digest.update(json.dumps(shaping, sort_keys=True).encode())
     return digest.hexdigest()[:20]

@@ -159,6 +159,23 @@ def test_jacobian_filter_on_axis_aligned_fields_is_numpys_determinant(rng):
     np.testing.assert_allclose(filtered[inner], np.linalg.det(matrix)[inner], atol=1e-6)
 
 
+def test_entry_keys_follow_only_the_settings_that_shape_the_entry():
+    # The target demons' settings shape a participant's entry only when targets are made;
+    # a registration setting always does.
+    from dataclasses import replace
+
+    from predictor.within_subject import subject_key
+
+    keys = ["a", "b"]
+    off = replace(SETTINGS, jacobian_targets=False)
+    on = replace(SETTINGS, jacobian_targets=True)
+    for settings, changes in ((off, False), (on, True)):
+        other = replace(settings, target_demons_iterations=(7,), demons_field_sd_voxels=2.5)
+        assert (subject_key(keys, other) != subject_key(keys, settings)) is changes
+    assert subject_key(keys, replace(off, rigid_iterations=7)) != subject_key(keys, off)
+    assert subject_key(keys, on) != subject_key(keys, off)
+
+
 def test_changes_table_resumes_from_cached_pairs(tiny_workspace):
     # prepare wrote changes.tsv: one row per later visit; a lost pair (as after kill -9,
     # whose pair files are written atomically) is redone, the rest are cache hits, and
