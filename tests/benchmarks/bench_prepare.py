@@ -50,7 +50,8 @@ def template_anatomy_accuracy() -> dict:
     processing), for the change stage with and without demons (pairs registered on their
     own) and for the within-subject space with the change measured through it (demons
     off), the longitudinal paths' ratio to the independent path (goal: at most 1.5), volume
-    errors and change errors against the phantom truth (``pairwise_`` figures: pairs
+    errors and change errors against the phantom truth (slopes with a participant-bootstrap
+    95% CI; ``pairwise_`` figures: pairs
     registered on their own, with demons), and the scan-rescan noise floor (the accuracy
     the full demo's cohort gets)."""
     from predictor.cohort import read_cohort
@@ -109,6 +110,9 @@ def template_anatomy_accuracy() -> dict:
                 if row["pairs"] == 0:  # wm by registration needs demons
                     continue
                 figures[f"{prefix}{region}_{short}_slope"] = round(row["slope"], 2)
+                figures[f"{prefix}{region}_{short}_slope_ci95"] = [
+                    round(row["slope_ci_low"], 2), round(row["slope_ci_high"], 2)
+                ]
                 figures[f"{prefix}{region}_{short}_r"] = round(row["pearson_r"], 2)
                 figures[f"{prefix}{region}_{short}_median_abs_error_pts"] = round(
                     row["median_abs_error_pts"], 2
