@@ -61,16 +61,26 @@ def progress_bar(description: str, total: int):
 
 
 def later_line(progress, description: str):
-    """A count on a new line of ``progress`` for a stage whose size is known only when it
-    starts: the line appears at the first call of the returned ``advance(n)``."""
+    """A count on a new line of ``progress`` for a later stage: the line appears at the
+    first call of the returned ``advance(n)``, and the lines of the stages before it are
+    finished then (:func:`finish_lines`)."""
     task = []
 
     def advance(n=1):
         if not task:
+            finish_lines(progress)
             task.append(progress.add_task(description, total=None))
         progress.advance(task[0], n)
 
     return advance
+
+
+def finish_lines(progress) -> None:
+    """Mark every line of ``progress`` without a total as done (its count becomes its
+    total; its clock stops)."""
+    for task in progress.tasks:
+        if task.total is None:
+            progress.update(task.id, total=task.completed)
 
 
 @app.command()
@@ -202,6 +212,7 @@ def prepare(
             progress_pairs=later_line(progress, "measuring change (visit pairs, rescans)"),
             progress_subjects=later_line(progress, "participants in one space"),
         )
+        finish_lines(progress)
     typer.echo(
         f"{summary['prepared']} prepared, {summary['cached']} from cache, "
         f"{summary['failed']} failed; volumes in {work / 'volumes.tsv'}"

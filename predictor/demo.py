@@ -127,7 +127,7 @@ def change_agreement(work: Path, cohort: Path) -> pd.DataFrame:
     end = truth.loc[list(zip(changes.participant_id, changes.session_to, strict=True))]
     participants = changes["participant_id"].to_numpy()
     people = np.unique(participants)
-    draws = seeded_rng(0, 29).integers(0, len(people), size=(BOOTSTRAP, len(people)))
+    draws = seeded_rng(0, 53).integers(0, len(people), size=(BOOTSTRAP, len(people)))
     rows = []
     for region in regions.names:
         true = 100 * (end[region].to_numpy() / start[region].to_numpy() - 1)

@@ -8,7 +8,9 @@ space (:mod:`predictor.within_subject`) where both visits have one and it is
 rigid, so that every pair of a participant shares one set of poses and
 swapping the visits gives exactly the inverse map; otherwise by a rigid
 registration of the pair (6 parameters, Mattes mutual information,
-multi-resolution; also for same-day rescans, which are not in the space). A
+multi-resolution). A same-day rescan is registered to its participant's mean
+as the visits were (it does not shape the mean), so that the noise floor is
+that of the same alignment. A
 diffeomorphic demons registration (Vercauteren et al.
 2009, NeuroImage, "Diffeomorphic demons: efficient non-parametric image
 registration"; SimpleITK's ``DiffeomorphicDemonsRegistrationFilter``) then
@@ -348,8 +350,8 @@ def boundary_shift(
 
 
 def shared_space(earlier: dict, later: dict, settings) -> str:
-    """The within-subject entry (its key) whose poses align the two visits (volume-table
-    rows; a rescan's row has none), or "" where they have none in common or the space's
+    """The within-subject entry (its key) whose poses may align the two scans (their
+    volume-table rows), or "" where they have none in common or the space's
     registrations are not rigid (9 or 12 parameters would take global change as pose)."""
     space = earlier.get(WITHIN_SUBJECT, "")
     if not isinstance(space, str) or space != later.get(WITHIN_SUBJECT, ""):
@@ -357,18 +359,17 @@ def shared_space(earlier: dict, later: dict, settings) -> str:
     return space if settings.within_subject_parameters == 6 else ""
 
 
-def pair_key(earlier: dict, later: dict, settings) -> str:
-    """Cache key of a pair (volume-table rows): its two scans' keys, their shared space
-    (:func:`shared_space`, whose key covers the settings that shape it), the other
-    longitudinal settings that shape the pair and the version."""
+def pair_entry(layout: Layout, earlier: dict, later: dict, settings):
+    """A pair's alignment through its shared space (:func:`through_space`, or None) and its
+    cache file, keyed by the two scans' keys, that alignment, the other longitudinal
+    settings that shape the pair and the version."""
+    alignment = through_space(layout, earlier, later, settings)
     shaping = {name: value for name, value in asdict(settings).items()
                if not name.startswith(("within_subject", "target_", "jacobian_"))}  # fmt: skip
-    space = shared_space(earlier, later, settings)
-    digest = hashlib.sha256(
-        f"{earlier['key']}/{later['key']}/{space}/{__version__}/{PAIR_FORMAT}".encode()
-    )
+    digest = hashlib.sha256(f"{earlier['key']}/{later['key']}/{__version__}/{PAIR_FORMAT}".encode())
     digest.update(json.dumps(shaping, sort_keys=True).encode())
-    return digest.hexdigest()[:20]
+    digest.update(json.dumps(None if alignment is None else alignment.tolist()).encode())
+    return alignment, layout.pair(digest.hexdigest()[:20])
 
 
 def visit_pairs(volumes: pd.DataFrame) -> list[tuple[dict, dict]]:
@@ -383,7 +384,10 @@ def visit_pairs(volumes: pd.DataFrame) -> list[tuple[dict, dict]]:
 def _measure_pair(work: str, earlier: dict, later: dict, regions_raw: dict, settings) -> dict:
     """One pair's change, from its cache file or computed and cached (worker process)."""
     layout = Layout(Path(work))
-    path = layout.pair(pair_key(earlier, later, settings))
+    try:
+        alignment, path = pair_entry(layout, earlier, later, settings)
+    except (OSError, KeyError, ValueError) as error:  # a damaged within-subject entry
+        return {"failed": f"within-subject entry {earlier.get(WITHIN_SUBJECT)}: {error!r}"}
     if path.is_file():
         return json.loads(path.read_text())
     regions = RegionSet.from_dict(regions_raw)
@@ -393,7 +397,7 @@ def _measure_pair(work: str, earlier: dict, later: dict, regions_raw: dict, sett
             Visit.read(layout.scan(later["key"]).folder, regions),
             regions,
             settings,
-            _through_space(layout, earlier, later, settings),
+            alignment,
         )
     except (PredictorError, RuntimeError, OSError) as error:
         return {"failed": str(error).splitlines()[0]}
@@ -401,13 +405,18 @@ def _measure_pair(work: str, earlier: dict, later: dict, regions_raw: dict, sett
     return measured
 
 
-def _through_space(layout: Layout, earlier: dict, later: dict, settings) -> np.ndarray | None:
-    """The map earlier -> later points (4x4, mm) through the visits' shared space (the
-    later visit's map from the mean after the inverse of the earlier's), or None."""
+def through_space(layout: Layout, earlier: dict, later: dict, settings) -> np.ndarray | None:
+    """The map earlier -> later points (4x4, mm) through the scans' shared space (the
+    later scan's map from the mean after the inverse of the earlier's), or None where
+    they share none or the entry holds no map of one of them (a rescan whose
+    registration to the mean failed)."""
     space = shared_space(earlier, later, settings)
     if not space:
         return None
-    maps = layout.subject(space).read_result()["visits"]
+    result = layout.subject(space).read_result()
+    maps = result["visits"] | result.get("rescans", {})  # entries without rescans have none
+    if earlier["key"] not in maps or later["key"] not in maps:
+        return None
     from_mean = [np.asarray(maps[row["key"]]["mean_to_visit"], dtype=float)
                  for row in (earlier, later)]  # fmt: skip
     return from_mean[1] @ np.linalg.inv(from_mean[0])
@@ -482,9 +491,10 @@ def rescan_pairs(layout: Layout) -> list[tuple[dict, dict]]:
         files = layout.scan(rescan) if isinstance(rescan, str) else None
         if files is None or key not in volumes.index or not files.result.is_file():
             continue
+        scan = volumes.loc[key].to_dict() | {"key": key}
         pairs.append(
-            (volumes.loc[key].to_dict() | {"key": key},
-             files.read_result()["volumes_ml"] | {"key": rescan})
+            (scan, files.read_result()["volumes_ml"]
+             | {"key": rescan, WITHIN_SUBJECT: scan.get(WITHIN_SUBJECT, "")})
         )  # fmt: skip
     return pairs
 

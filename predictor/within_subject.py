@@ -36,7 +36,9 @@ With 6 parameters, the change stage (:mod:`predictor.longitudinal`) aligns a
 participant's pairs of visits through this space too (the later visit's map
 from the mean after the inverse of the earlier's) instead of registering each
 pair: the pairs share one set of poses, and swapping two visits inverts the
-map exactly.
+map exactly. A visit's same-day rescan is registered to the mean as the
+visits were in the last round (it does not shape the mean), so that its change
+from the visit, the noise floor, is measured through the same poses.
 
 The result is cached per participant (``subjects/<key>/``; ``result.json`` is
 written last and marks the entry complete) and is what training reads
@@ -96,13 +98,18 @@ def _mean_image(visits: list[Visit], maps: list[np.ndarray], affine, shape) -> n
     return np.mean(moved, axis=0).astype(np.float32)
 
 
-def subject_space(visits: list[Visit], template_to_native: list[np.ndarray], settings) -> dict:
+def subject_space(
+    visits: list[Visit], template_to_native: list[np.ndarray], settings, rescans=()
+) -> dict:
     """A participant's within-subject space (see the module docstring).
 
     ``visits`` (two or more) with each one's own template -> native map (4x4, mm).
     Returns ``mean`` (the mean brain image on the first visit's grid, ``affine``),
     ``mean_to_visit`` (4x4 per visit), ``template_to_mean`` (4x4), ``rounds`` and
-    ``mean_change`` (the relative RMS change of the mean per round).
+    ``mean_change`` (the relative RMS change of the mean per round), and
+    ``mean_to_rescan``: each of ``rescans`` (same-day rescans, not visits: they do not
+    shape the mean) registered as the visits were in the last round, or None where
+    that registration failed.
     """
     parameters = settings.within_subject_parameters
     affine, shape = visits[0].affine, visits[0].t1.shape
@@ -131,11 +138,19 @@ def subject_space(visits: list[Visit], template_to_native: list[np.ndarray], set
         mean = new
         if history[-1] < settings.within_subject_tolerance:
             break
+    to_rescan = []
+    for rescan in rescans:
+        try:
+            to_rescan.append(rigid_alignment(reference, rescan, settings, parameters, fraction)
+                             @ centre)  # fmt: skip
+        except RuntimeError:  # the rescan is then aligned to its scan on its own
+            to_rescan.append(None)
     carried = [np.linalg.inv(m) @ t for m, t in zip(maps, template_to_native, strict=True)]
     return {
         "mean": mean,
         "affine": affine,
         "mean_to_visit": maps,
+        "mean_to_rescan": to_rescan,
         "template_to_mean": average_map(carried, rigid=False),
         "rounds": len(history),
         "mean_change": history,
@@ -153,25 +168,30 @@ def pair_log_jacobian(earlier: np.ndarray, later: np.ndarray, grid: np.ndarray,
     return np.log(np.clip(determinant, 1e-3, None)).astype(np.float32)
 
 
-def subject_key(keys: list[str], settings) -> str:
-    """Cache key of a participant's entry: its visits' scan keys, the settings that shape
-    it (:data:`SETTINGS`, and :data:`TARGET_SETTINGS` with targets) and the version."""
+def subject_key(keys: list[str], rescans: dict[str, str], settings) -> str:
+    """Cache key of a participant's entry: its visits' scan keys, their rescans' (scan key
+    -> rescan key), the settings that shape it (:data:`SETTINGS`, and
+    :data:`TARGET_SETTINGS` with targets) and the version."""
     names = SETTINGS + (TARGET_SETTINGS if settings.jacobian_targets else ())
     shaping = {name: value for name, value in asdict(settings).items() if name in names}
-    digest = hashlib.sha256(f"{'/'.join(keys)}/{__version__}".encode())
+    pairs = [f"{k}>{rescans[k]}" for k in keys if k in rescans]
+    digest = hashlib.sha256(f"{'/'.join(keys + pairs)}/{__version__}".encode())
     digest.update(json.dumps(shaping, sort_keys=True).encode())
     return digest.hexdigest()[:20]
 
 
-def align_participant(work: str, keys: list[str], regions_raw: dict, settings) -> dict:
-    """One participant's entry (its visits' scan ``keys``, oldest first), from the cache
-    or computed and cached; ``{"key": ..., "failed": reason}`` when it cannot be made
+def align_participant(
+    work: str, keys: list[str], rescans: dict[str, str], regions_raw: dict, settings
+) -> dict:
+    """One participant's entry (its visits' scan ``keys``, oldest first; ``rescans``: the
+    prepared same-day rescan of a visit, scan key -> rescan key), from the cache or
+    computed and cached; ``{"key": ..., "failed": reason}`` when it cannot be made
     (nothing of it is left then).
 
     Runs in a worker process. The entry is locked while it is checked and written.
     """
     layout = Layout(Path(work))
-    key = subject_key(keys, settings)
+    key = subject_key(keys, rescans, settings)
     entry = layout.subject(key)
     with exclusive(entry.lock):
         if entry.result.is_file():
@@ -179,24 +199,27 @@ def align_participant(work: str, keys: list[str], regions_raw: dict, settings) -
         if entry.folder.exists():  # a half-written entry from an interrupted run
             shutil.rmtree(entry.folder)
         try:
-            _write_entry(layout, entry, keys, RegionSet.from_dict(regions_raw), settings)
+            _write_entry(layout, entry, keys, rescans, RegionSet.from_dict(regions_raw),
+                         settings)  # fmt: skip
         except (PredictorError, RuntimeError, OSError, ValueError, ArithmeticError) as error:
             shutil.rmtree(entry.folder, ignore_errors=True)
             return {"key": key, "failed": str(error).splitlines()[0]}
     return {"key": key, "cached": False}
 
 
-def _write_entry(layout: Layout, entry: SubjectFiles, keys: list[str], regions: RegionSet,
-                 settings) -> None:  # fmt: skip
+def _write_entry(layout: Layout, entry: SubjectFiles, keys: list[str], rescans: dict[str, str],
+                 regions: RegionSet, settings) -> None:  # fmt: skip
     """Compute and write a participant's entry; result.json last (it marks it complete)."""
     from predictor.prepare import GRID_FIELDS, grid_arrays, save_grid
 
     read = [Visit.read_with_head(layout.scan(k).folder, regions) for k in keys]
     results = [layout.scan(k).read_result() for k in keys]
+    rescan_keys = [rescans[k] for k in keys if k in rescans]
     space = subject_space(
         [visit for visit, _ in read],
         [np.asarray(r["template_to_native"], dtype=float) for r in results],
         settings,
+        [Visit.read(layout.scan(k).folder, regions) for k in rescan_keys],
     )
     grid = np.asarray(results[0]["diagnostics"]["grid_affine"], dtype=float)
     shape = tuple(results[0]["diagnostics"]["grid_shape"])
@@ -222,6 +245,9 @@ def _write_entry(layout: Layout, entry: SubjectFiles, keys: list[str], regions: 
         entry.result,
         {
             "visits": visits,
+            "rescans": {k: {"mean_to_visit": m.tolist()}
+                        for k, m in zip(rescan_keys, space["mean_to_rescan"], strict=True)
+                        if m is not None},  # fmt: skip
             "template_to_mean": space["template_to_mean"].tolist(),
             "rounds": space["rounds"],
             "mean_change": space["mean_change"],
@@ -243,6 +269,13 @@ def align_participants(
     from predictor.parallel import run_all
     from predictor.preprocess import single_threaded_itk
 
+    layout = Layout(Path(work))
+    cohort = layout.read_cohort()
+    rescans = {
+        key: rescan
+        for key, rescan in zip(cohort["key"], cohort.get("rescan_key", ()), strict=False)
+        if isinstance(rescan, str) and rescan and layout.scan(rescan).result.is_file()
+    }
     groups = [
         (participant, visits["key"].tolist())
         for participant, visits in volumes.sort_values("age", kind="stable").groupby(
@@ -250,7 +283,8 @@ def align_participants(
         )
         if len(visits) > 1
     ]
-    arguments = [(str(work), keys, regions.raw, settings) for _, keys in groups]
+    arguments = [(str(work), keys, {k: rescans[k] for k in keys if k in rescans}, regions.raw,
+                  settings) for _, keys in groups]  # fmt: skip
     results = run_all(align_participant, arguments, jobs, progress, single_threaded_itk)
     spaces, failures = {}, []
     for (participant, keys), result in zip(groups, results, strict=True):

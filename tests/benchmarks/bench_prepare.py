@@ -69,9 +69,10 @@ def template_anatomy_accuracy() -> dict:
         table, work = read_cohort(cohort), Path(folder) / "work"
         seconds = {}
         # scans are cached across the runs (their key ignores [longitudinal]), so each
-        # run after the first times its longitudinal stage; the last run's pairs are
-        # aligned through the within-subject space (a new pair key): it times the space
-        # and the change measured through it, and its changes are the ones scored
+        # run after the first times its longitudinal stage; the last run's visit pairs and
+        # rescans are aligned through the within-subject space (new pair keys, as a pair's
+        # key holds its alignment): it times the space and every change measured through
+        # it, and its changes and noise floor are the ones scored
         for name, longitudinal in (
             ("independent", {"enabled": False}),
             ("change_without_demons", {"demons": False, "within_subject": False}),
@@ -104,9 +105,9 @@ def template_anatomy_accuracy() -> dict:
     for region in ("brain", "ventricles", "hippocampus_left", "hippocampus_right", "wm"):
         figures[f"{region}_mean_error_pct"] = round(accuracy.loc[region, "mean_error_pct"], 1)
         figures[f"{region}_max_abs_error_pct"] = round(accuracy.loc[region, "max_abs_error_pct"], 1)
-        for table, prefix in ((pairwise, "pairwise_"), (agreement, "")):
+        for scores, prefix in ((pairwise, "pairwise_"), (agreement, "")):
             for method, short in (("registration", "reg"), ("segmentation", "seg")):
-                row = table.loc[(region, method)]
+                row = scores.loc[(region, method)]
                 if row["pairs"] == 0:  # wm by registration needs demons
                     continue
                 figures[f"{prefix}{region}_{short}_slope"] = round(row["slope"], 2)
