@@ -108,8 +108,9 @@ def change_agreement(work: Path, cohort: Path) -> pd.DataFrame:
     From ``changes.tsv``: the change by registration and by segmentation of
     every (baseline, later visit) pair; least-squares slope of measured on true
     change (1 is unbiased) with its 95% CI from a bootstrap of whole participants
-    (a participant's pairs share its anatomy and registrations), Pearson r and the
-    median absolute error (points).
+    (a participant's pairs share its anatomy and registrations; with few participants
+    the percentile interval is too narrow), Pearson r and the median absolute error
+    (points).
     """
     import numpy as np
 
@@ -143,6 +144,7 @@ def change_agreement(work: Path, cohort: Path) -> pd.DataFrame:
                     "region": region,
                     "method": method,
                     "pairs": int(kept.sum()),
+                    "participants": len(set(participants[kept])),
                     "slope": float(np.polyfit(x, y, 1)[0]) if enough else np.nan,
                     "slope_ci_low": low,
                     "slope_ci_high": high,

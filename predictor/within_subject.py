@@ -125,10 +125,12 @@ def subject_space(
     coarsest = levels[0][0] ** 3 / max(int(visits[0].mask.sum()), 1)
     fraction = min(1.0, max(settings.within_subject_sampling_fraction, MIN_SAMPLES * coarsest))
     mean, maps, history = visits[0].t1, [], []
-    for _ in range(settings.within_subject_rounds):
+    for round_ in range(settings.within_subject_rounds):
         reference = Visit(mean, affine, {}, {})
-        maps = [rigid_alignment(reference, visit, settings, parameters, fraction)
-                for visit in visits]  # fmt: skip
+        # the first mean is the first visit on its own grid: its map is the identity
+        maps = [np.eye(4) if round_ == 0 and k == 0 else
+                rigid_alignment(reference, visit, settings, parameters, fraction)
+                for k, visit in enumerate(visits)]  # fmt: skip
         centre = np.linalg.inv(average_map(maps, rigid=parameters == 6))
         maps = [m @ centre for m in maps]
         new = _mean_image(visits, maps, affine, shape)

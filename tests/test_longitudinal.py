@@ -253,10 +253,10 @@ def test_change_by_registration_beats_independent_segmentation(realistic_workspa
     # paths in this one run, on realistic anatomy prepared against a template that did
     # not generate it: the registration's median absolute error is at least 2x smaller
     # than two independent segmentations' (the issue's goal), and it follows the true
-    # change (Pearson r via numpy). Measured (13 pairs): whole brain 0.22 vs 1.97 points
-    # (slope 1.00, r 0.99), ventricles 1.24 vs 7.77 (slope 1.26, r 0.98), hippocampi
-    # (mni152's box proxies) 1.29 vs 3.62 and 1.52 vs 6.16 (slopes 1.03 and 0.90, r 0.92
-    # against 0.27-0.31 by segmentation).
+    # change (Pearson r via numpy). Measured (13 pairs, aligned through the within-subject
+    # space): whole brain 0.22 vs 1.97 points (slope 1.00, r 0.99), ventricles 1.37 vs 7.77
+    # (slope 1.23, r 0.98), hippocampi (mni152's box proxies) 1.29 vs 3.62 and 1.70 vs 6.16
+    # (slopes 1.02 and 0.89, r 0.92-0.93 against 0.27-0.31 by segmentation).
     from predictor.demo import change_agreement
 
     cohort, work = realistic_workspace
@@ -326,9 +326,10 @@ def test_same_day_rescans_measure_the_noise_floor(realistic_workspace):
     # same anatomy): every change measured between them is noise. The issue's goals
     # (scan-rescan brain change of established longitudinal pipelines is about 0.35%
     # median, from memory): brain at most 0.3%, hippocampi at most 1.5%, by registration
-    # (the observed change); a rescan is never a visit of its own. Measured (3 rescans):
-    # brain 0.21% (all three negative: the boundary shift reads some atrophy into a new
-    # acquisition; segmentation 0.09%), hippocampi 0.18% and 0.11% (segmentation 1.3-1.8%).
+    # (the observed change); a rescan is never a visit of its own. Measured (3 rescans,
+    # registered to the participant's mean): brain 0.21% (all three negative: the boundary
+    # shift reads some atrophy into a new acquisition; segmentation 0.09%), hippocampi
+    # 0.17% and 0.13% (segmentation 1.3-1.8%).
     from predictor.cohort import read_cohort
     from predictor.longitudinal import noise_floor
     from predictor.report import rescan_section
