@@ -8,9 +8,10 @@ space (:mod:`predictor.within_subject`) where both visits have one and it is
 rigid, so that every pair of a participant shares one set of poses and
 swapping the visits gives exactly the inverse map; otherwise by a rigid
 registration of the pair (6 parameters, Mattes mutual information,
-multi-resolution). A same-day rescan is registered to its participant's mean
-as the visits were (it does not shape the mean), so that the noise floor is
-that of the same alignment. A
+multi-resolution). A same-day rescan of a visit in a rigid within-subject
+space is registered to its participant's mean as the visits were (it does not
+shape the mean, so its floor is, if anything, a little pessimistic for the
+visits); other rescans are registered to their scan directly. A
 diffeomorphic demons registration (Vercauteren et al.
 2009, NeuroImage, "Diffeomorphic demons: efficient non-parametric image
 registration"; SimpleITK's ``DiffeomorphicDemonsRegistrationFilter``) then
@@ -72,6 +73,8 @@ from predictor.workspace import WITHIN_SUBJECT, Layout
 PAIR_FORMAT = 3
 #: columns of changes.tsv, before one pair of columns per region
 CHANGE_ID = ("participant_id", "session_from", "session_to", "years")
+#: marks a rescan's row in a pair of scans (:func:`rescan_pairs`)
+RESCAN = "rescan"
 #: columns of rescans.tsv, before the same pairs of columns
 RESCAN_ID = ("participant_id", "session_id")
 
@@ -386,7 +389,7 @@ def _measure_pair(work: str, earlier: dict, later: dict, regions_raw: dict, sett
     layout = Layout(Path(work))
     try:
         alignment, path = pair_entry(layout, earlier, later, settings)
-    except (OSError, KeyError, ValueError) as error:  # a damaged within-subject entry
+    except (OSError, KeyError, ValueError, TypeError) as error:  # a damaged entry
         return {"failed": f"within-subject entry {earlier.get(WITHIN_SUBJECT)}: {error!r}"}
     if path.is_file():
         return json.loads(path.read_text())
@@ -408,15 +411,18 @@ def _measure_pair(work: str, earlier: dict, later: dict, regions_raw: dict, sett
 def through_space(layout: Layout, earlier: dict, later: dict, settings) -> np.ndarray | None:
     """The map earlier -> later points (4x4, mm) through the scans' shared space (the
     later scan's map from the mean after the inverse of the earlier's), or None where
-    they share none or the entry holds no map of one of them (a rescan whose
-    registration to the mean failed)."""
+    they share none or the entry holds no map of a rescan (its registration to the mean
+    failed). A visit missing from its entry (a damaged entry) raises KeyError."""
     space = shared_space(earlier, later, settings)
     if not space:
         return None
     result = layout.subject(space).read_result()
     maps = result["visits"] | result.get("rescans", {})  # entries without rescans have none
-    if earlier["key"] not in maps or later["key"] not in maps:
-        return None
+    for row in (earlier, later):
+        if row["key"] not in maps:
+            if row.get(RESCAN) is True:
+                return None
+            raise KeyError(f"visit {row['key']} is not in its within-subject entry")
     from_mean = [np.asarray(maps[row["key"]]["mean_to_visit"], dtype=float)
                  for row in (earlier, later)]  # fmt: skip
     return from_mean[1] @ np.linalg.inv(from_mean[0])
@@ -494,7 +500,7 @@ def rescan_pairs(layout: Layout) -> list[tuple[dict, dict]]:
         scan = volumes.loc[key].to_dict() | {"key": key}
         pairs.append(
             (scan, files.read_result()["volumes_ml"]
-             | {"key": rescan, WITHIN_SUBJECT: scan.get(WITHIN_SUBJECT, "")})
+             | {"key": rescan, WITHIN_SUBJECT: scan.get(WITHIN_SUBJECT, ""), RESCAN: True})
         )  # fmt: skip
     return pairs
 

@@ -68,6 +68,9 @@ from predictor.regions import RegionSet
 from predictor.spatial import to_sitk
 from predictor.workspace import Layout, SubjectFiles
 
+#: changes when an entry's content does (2: the first visit's first map is the identity;
+#: same-day rescans registered to the mean)
+SUBJECT_FORMAT = 2
 #: fewest metric samples of a registration to the mean on its coarsest level
 MIN_SAMPLES = 300
 #: coarsest spacing (mm) of a level of the registration to the mean
@@ -108,8 +111,8 @@ def subject_space(
     ``mean_to_visit`` (4x4 per visit), ``template_to_mean`` (4x4), ``rounds`` and
     ``mean_change`` (the relative RMS change of the mean per round), and
     ``mean_to_rescan``: each of ``rescans`` (same-day rescans, not visits: they do not
-    shape the mean) registered as the visits were in the last round, or None where
-    that registration failed.
+    shape the mean; None for one that could not be read) registered as the visits were
+    in the last round, or None where that failed.
     """
     parameters = settings.within_subject_parameters
     affine, shape = visits[0].affine, visits[0].t1.shape
@@ -142,6 +145,9 @@ def subject_space(
             break
     to_rescan = []
     for rescan in rescans:
+        if rescan is None:
+            to_rescan.append(None)
+            continue
         try:
             to_rescan.append(rigid_alignment(reference, rescan, settings, parameters, fraction)
                              @ centre)  # fmt: skip
@@ -177,7 +183,7 @@ def subject_key(keys: list[str], rescans: dict[str, str], settings) -> str:
     names = SETTINGS + (TARGET_SETTINGS if settings.jacobian_targets else ())
     shaping = {name: value for name, value in asdict(settings).items() if name in names}
     pairs = [f"{k}>{rescans[k]}" for k in keys if k in rescans]
-    digest = hashlib.sha256(f"{'/'.join(keys + pairs)}/{__version__}".encode())
+    digest = hashlib.sha256(f"{'/'.join(keys + pairs)}/{__version__}/{SUBJECT_FORMAT}".encode())
     digest.update(json.dumps(shaping, sort_keys=True).encode())
     return digest.hexdigest()[:20]
 
@@ -221,7 +227,7 @@ def _write_entry(layout: Layout, entry: SubjectFiles, keys: list[str], rescans: 
         [visit for visit, _ in read],
         [np.asarray(r["template_to_native"], dtype=float) for r in results],
         settings,
-        [Visit.read(layout.scan(k).folder, regions) for k in rescan_keys],
+        [_rescan(layout, k, regions) for k in rescan_keys],
     )
     grid = np.asarray(results[0]["diagnostics"]["grid_affine"], dtype=float)
     shape = tuple(results[0]["diagnostics"]["grid_shape"])
@@ -258,6 +264,15 @@ def _write_entry(layout: Layout, entry: SubjectFiles, keys: list[str], rescans: 
     )
 
 
+def _rescan(layout: Layout, key: str, regions: RegionSet) -> Visit | None:
+    """A rescan's prepared visit, or None where its files cannot be read (it is then
+    aligned to its scan on its own; the participant's space stands)."""
+    try:
+        return Visit.read(layout.scan(key).folder, regions)
+    except (OSError, ValueError, KeyError):
+        return None
+
+
 def align_participants(
     work: str | Path, volumes: pd.DataFrame, regions: RegionSet, settings, jobs: int = 1,
     progress=None,
@@ -273,10 +288,13 @@ def align_participants(
 
     layout = Layout(Path(work))
     cohort = layout.read_cohort()
+    # a rescan's map from the mean is used only when the space is rigid (see
+    # predictor.longitudinal.shared_space)
+    rigid = settings.within_subject_parameters == 6
     rescans = {
         key: rescan
         for key, rescan in zip(cohort["key"], cohort.get("rescan_key", ()), strict=False)
-        if isinstance(rescan, str) and rescan and layout.scan(rescan).result.is_file()
+        if rigid and isinstance(rescan, str) and rescan and layout.scan(rescan).result.is_file()
     }
     groups = [
         (participant, visits["key"].tolist())

@@ -27,7 +27,8 @@ Layout::
         <earlier key>_<later key>_logjac.nii.gz  each pair of visits' log-Jacobian of
                              a demons registration on the working grid (a training
                              target; with [longitudinal] jacobian_targets = true)
-        result.json          each visit's map from the mean and to the template
+        result.json          each visit's map from the mean and to the template, and
+                             each same-day rescan's map from the mean
     pairs/<key>.json     change between two visits of a participant measured by
                          registration (predictor.longitudinal); one file per pair
     volumes.tsv          one row per scan: its covariates (if any), its participant's

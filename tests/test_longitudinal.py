@@ -203,6 +203,37 @@ def test_entry_keys_follow_only_the_settings_that_shape_the_entry():
     assert subject_key(keys, {"a": "r"}, off) != subject_key(keys, {}, off)  # a rescan
 
 
+def test_alignment_through_a_space_and_its_fallbacks(tmp_path):
+    # Two visits' map is the later's map from the mean after the inverse of the earlier's;
+    # a rescan without a map (its registration to the mean failed) falls back to a
+    # registration of its own (None); a visit missing from its entry is a damaged entry
+    # (KeyError, which fails that pair); without a shared rigid space there is none.
+    import json
+    from dataclasses import replace
+
+    from predictor.longitudinal import RESCAN, through_space
+    from predictor.workspace import Layout
+
+    layout = Layout(tmp_path)
+    shift = np.eye(4)
+    shift[:3, 3] = [1.0, -2.0, 0.5]
+    turn = np.eye(4)
+    turn[:2, :2] = [[0.0, -1.0], [1.0, 0.0]]
+    entry = layout.subject("space")
+    entry.folder.mkdir(parents=True)
+    entry.result.write_text(json.dumps({"visits": {"a": {"mean_to_visit": shift.tolist()},
+                                                   "b": {"mean_to_visit": turn.tolist()}}}))
+    a, b = ({"key": k, "within_subject": "space"} for k in ("a", "b"))
+    np.testing.assert_allclose(through_space(layout, a, b, SETTINGS), turn @ np.linalg.inv(shift))
+    rescan = {"key": "r", "within_subject": "space", RESCAN: True}
+    assert through_space(layout, a, rescan, SETTINGS) is None
+    with pytest.raises(KeyError):
+        through_space(layout, a, {"key": "c", "within_subject": "space"}, SETTINGS)
+    assert through_space(layout, a, {"key": "b", "within_subject": float("nan")}, SETTINGS) is None
+    affine = replace(SETTINGS, within_subject_parameters=12)
+    assert through_space(layout, a, b, affine) is None
+
+
 def test_changes_table_resumes_from_cached_pairs(tiny_workspace):
     # prepare wrote changes.tsv: one row per later visit; a lost pair (as after kill -9,
     # whose pair files are written atomically) is redone, the rest are cache hits, and

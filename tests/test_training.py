@@ -225,7 +225,10 @@ def test_torchrun_two_processes_match_a_single_process(tiny_workspace, tmp_path)
     # one pair and DDP averages their gradients, which must give the single process's
     # step. Adam's first step is about the learning rate times the gradient's sign, so a
     # wrong pair, augmentation or split moves weights by about the learning rate; the
-    # summation order alone moved them by 0.6% of it (2026-12-05). Over more steps such
+    # summation order alone moved them by 0.6% of it (2026-12-05), except where a gradient
+    # is so near zero that the order flips its sign and Adam steps the other way (one
+    # weight of 8479 on another tiny workspace): at most 0.1% of the weights may differ by
+    # more than 5% of the learning rate. Over more steps such
     # float-level differences grow (Adam divides near-zero gradients by their own size):
     # after 2 epochs of 16 pairs the validation loss differed by 10.6%, which is why this
     # test compares one step, not a trained model.
@@ -243,8 +246,9 @@ def test_torchrun_two_processes_match_a_single_process(tiny_workspace, tmp_path)
     done = subprocess.run(command, capture_output=True, text=True, env=environment, timeout=600)
     assert done.returncode == 0, done.stderr[-2000:]
     one, two = load_tensors(single / WEIGHTS), load_tensors(tmp_path / "ddp" / WEIGHTS)
-    largest = max((one[key] - two[key]).abs().max().item() for key in one)
-    assert largest < 0.05 * raw["training"]["learning_rate"], largest
+    moved = sum(int(((one[k] - two[k]).abs() > 0.05 * raw["training"]["learning_rate"]).sum())
+                for k in one)  # fmt: skip
+    assert moved <= 0.001 * sum(tensor.numel() for tensor in one.values()), moved
     # both processes' validation sums are gathered: the same validation loss
     logs = [pd.read_csv(f / "log.tsv", sep="\t") for f in (single, tmp_path / "ddp")]
     assert logs[1].val_total.iloc[-1] == pytest.approx(logs[0].val_total.iloc[-1], rel=0.01)
