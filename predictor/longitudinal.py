@@ -359,7 +359,7 @@ def shared_space(earlier: dict, later: dict, settings) -> str:
     space = earlier.get(WITHIN_SUBJECT, "")
     if not isinstance(space, str) or space != later.get(WITHIN_SUBJECT, ""):
         return ""
-    return space if settings.within_subject_parameters == 6 else ""
+    return space if settings.rigid_space else ""
 
 
 def pair_entry(layout: Layout, earlier: dict, later: dict, settings):

@@ -121,6 +121,12 @@ class LongitudinalSettings:
     target_demons_shrink_factors: tuple[int, ...]  # the pairs' log-Jacobian training targets
     target_demons_iterations: tuple[int, ...]
 
+    @property
+    def rigid_space(self) -> bool:
+        """The registrations to a participant's mean are rigid (6 parameters): their maps
+        are poses only, so they may align the change between two of its scans."""
+        return self.within_subject_parameters == 6
+
     def __post_init__(self):
         if len(self.rigid_shrink_factors) != len(self.rigid_smoothing_mm):
             raise ValueError("'rigid_shrink_factors' and 'rigid_smoothing_mm' need equal lengths")

@@ -134,7 +134,7 @@ def subject_space(
         maps = [np.eye(4) if round_ == 0 and k == 0 else
                 rigid_alignment(reference, visit, settings, parameters, fraction)
                 for k, visit in enumerate(visits)]  # fmt: skip
-        centre = np.linalg.inv(average_map(maps, rigid=parameters == 6))
+        centre = np.linalg.inv(average_map(maps, rigid=settings.rigid_space))
         maps = [m @ centre for m in maps]
         new = _mean_image(visits, maps, affine, shape)
         brain = (new > 0) | (mean > 0)
@@ -290,12 +290,11 @@ def align_participants(
     cohort = layout.read_cohort()
     # a rescan's map from the mean is used only when the space is rigid (see
     # predictor.longitudinal.shared_space)
-    rigid = settings.within_subject_parameters == 6
     rescans = {
         key: rescan
         for key, rescan in zip(cohort["key"], cohort.get("rescan_key", ()), strict=False)
-        if rigid and isinstance(rescan, str) and rescan and layout.scan(rescan).result.is_file()
-    }
+        if isinstance(rescan, str) and rescan and layout.scan(rescan).result.is_file()
+    } if settings.rigid_space else {}
     groups = [
         (participant, visits["key"].tolist())
         for participant, visits in volumes.sort_values("age", kind="stable").groupby(
