@@ -485,21 +485,31 @@ def measure_changes(
     return table, failures
 
 
+def prepared_rescans(layout: Layout) -> dict[str, str]:
+    """Scan key -> its same-day rescan's key, for every scan whose rescan is prepared
+    (cohort.tsv's rescan_key and a complete entry)."""
+    cohort = layout.read_cohort()
+    if "rescan_key" not in cohort.columns:
+        return {}
+    pairs = zip(cohort["key"], cohort["rescan_key"], strict=True)
+    return {key: rescan for key, rescan in pairs
+            if isinstance(rescan, str) and rescan and layout.scan(rescan).result.is_file()}
+
+
 def rescan_pairs(layout: Layout) -> list[tuple[dict, dict]]:
     """(scan row, rescan row) of every prepared scan whose same-day rescan is prepared:
     volumes.tsv's row, and the rescan's key and volumes (mL)."""
-    cohort = layout.read_cohort()
-    if "rescan_key" not in cohort.columns:
+    rescans = prepared_rescans(layout)
+    if not rescans:
         return []
     volumes = layout.read_volumes().set_index("key")
     pairs = []
-    for key, rescan in zip(cohort["key"], cohort["rescan_key"], strict=True):
-        files = layout.scan(rescan) if isinstance(rescan, str) else None
-        if files is None or key not in volumes.index or not files.result.is_file():
+    for key, rescan in rescans.items():
+        if key not in volumes.index:
             continue
         scan = volumes.loc[key].to_dict() | {"key": key}
         pairs.append(
-            (scan, files.read_result()["volumes_ml"]
+            (scan, layout.scan(rescan).read_result()["volumes_ml"]
              | {"key": rescan, WITHIN_SUBJECT: scan.get(WITHIN_SUBJECT, ""), RESCAN: True})
         )  # fmt: skip
     return pairs

@@ -61,7 +61,13 @@ import pandas as pd
 from predictor import __version__
 from predictor.errors import PredictorError
 from predictor.files import exclusive, write_json
-from predictor.longitudinal import Visit, demons_jacobian, failure_row, rigid_alignment
+from predictor.longitudinal import (
+    Visit,
+    demons_jacobian,
+    failure_row,
+    prepared_rescans,
+    rigid_alignment,
+)
 from predictor.nifti import save_array
 from predictor.preprocess import resample
 from predictor.regions import RegionSet
@@ -286,15 +292,9 @@ def align_participants(
     from predictor.parallel import run_all
     from predictor.preprocess import single_threaded_itk
 
-    layout = Layout(Path(work))
-    cohort = layout.read_cohort()
     # a rescan's map from the mean is used only when the space is rigid (see
     # predictor.longitudinal.shared_space)
-    rescans = {
-        key: rescan
-        for key, rescan in zip(cohort["key"], cohort.get("rescan_key", ()), strict=False)
-        if isinstance(rescan, str) and rescan and layout.scan(rescan).result.is_file()
-    } if settings.rigid_space else {}
+    rescans = prepared_rescans(Layout(Path(work))) if settings.rigid_space else {}
     groups = [
         (participant, visits["key"].tolist())
         for participant, visits in volumes.sort_values("age", kind="stable").groupby(
