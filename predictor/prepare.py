@@ -112,6 +112,7 @@ class LongitudinalSettings:
     demons_iterations: tuple[int, ...]
     demons_field_sd_voxels: float
     histogram_levels: int
+    differential_bias_mm: float  # 0: none; else its median window (predictor.longitudinal)
     within_subject: bool  # every visit of a participant in one space (predictor.within_subject)
     within_subject_parameters: int  # 6 (rigid), 9 (and three scales) or 12 (affine)
     within_subject_rounds: int
@@ -143,6 +144,8 @@ class LongitudinalSettings:
             raise ValueError("target demons shrink factors and iterations must be at least 1")
         if not 0.0 < self.within_subject_sampling_fraction <= 1.0:
             raise ValueError("'within_subject_sampling_fraction' must be within (0, 1]")
+        if self.differential_bias_mm < 0:
+            raise ValueError("'differential_bias_mm' must be 0 (off) or a width in mm")
         if len(self.demons_shrink_factors) != len(self.demons_iterations):
             raise ValueError("'demons_shrink_factors' and 'demons_iterations' need equal lengths")
 
