@@ -22,7 +22,8 @@ its diffeomorphic variant keeps the Jacobian determinant positive.
 
 Before either, the moved visit's slowly varying intensity difference from the
 fixed one (what the bias corrections of the two scans left) is divided out:
-differential bias correction (Lewis and Fox 2004), :func:`differential_bias`.
+differential bias correction after Lewis and Fox 2004, :func:`differential_bias`
+(not for the training targets of :mod:`predictor.within_subject`).
 
 Each region's volume ratio later / earlier is measured on the earlier
 visit's grid (forward) and earlier / later on the later's (backward); the
@@ -123,9 +124,9 @@ class Visit:
         return abs(float(np.linalg.det(self.affine[:3, :3]))) / 1000.0
 
     @property
-    def voxel_mm(self) -> float:
-        """The side of a cube of the voxel's volume (mm)."""
-        return (self.voxel_ml * 1000.0) ** (1 / 3)
+    def voxel_mm(self) -> np.ndarray:
+        """The voxel's sides (3,), mm."""
+        return np.linalg.norm(self.affine[:3, :3], axis=0)
 
     @property
     def mask(self) -> np.ndarray:
@@ -294,7 +295,9 @@ def _one_way(fixed: Visit, moving: Visit, fixed_to_moving, regions: RegionSet, s
     Both read the moved image after differential bias correction, its ratio taken over
     pure white matter in both visits only: atrophy widens sulcal CSF all over the
     cortex, and a ratio over all brain tissue takes that for bias (on template-anatomy
-    phantoms it removed most of the whole brain's measured change).
+    phantoms it removed most of the whole brain's measured change). The costs: a change
+    of white matter's own intensity (lesions, ageing) is taken for bias, and on the
+    tuning cohort the ventricles were measured worse with it (configs/prepare.toml).
     """
     fixed_image = fixed.image()
 
@@ -336,21 +339,26 @@ def _one_way(fixed: Visit, moving: Visit, fixed_to_moving, regions: RegionSet, s
 
 
 def differential_bias(
-    fixed: np.ndarray, moved: np.ndarray, mask: np.ndarray, voxel_mm: float, window_mm: float
+    fixed: np.ndarray, moved: np.ndarray, mask: np.ndarray, voxel_mm, window_mm: float
 ) -> np.ndarray:
-    """Differential bias correction (Lewis and Fox 2004, NeuroImage, "Correction of
-    differential intensity inhomogeneity in longitudinal MR images"): the smooth
-    multiplicative field (array on the images' grid) that takes ``moved``'s intensities
-    to ``fixed``'s, where the two aligned images differ by slowly varying bias.
+    """Differential bias correction after Lewis and Fox 2004 (NeuroImage, "Correction of
+    differential intensity inhomogeneity in longitudinal MR images"), modified: the
+    smooth multiplicative field (array on the images' grid) that takes ``moved``'s
+    intensities to ``fixed``'s, where the two aligned images differ by slowly varying
+    bias. ``voxel_mm``: the voxel's sides (3,) or side, mm.
 
-    The log ratio fixed / moved over ``mask`` is averaged in blocks about a fifth of
-    ``window_mm`` wide, and median-filtered over 5 blocks each way (a window about
-    ``window_mm`` wide), so that the local change of atrophy at an edge (a few voxels)
-    barely moves it. Blocks with less than half their voxels in the mask take the value
-    of a quadratic in space fitted to the full blocks (the residual bias is smooth; a
-    nearest block's value missed a steep field's change by 4-8%). The filtered log
-    ratio is interpolated linearly back to the voxels and exponentiated; the field is 1
-    outside the box that holds both images' nonzero voxels (where it is worked out).
+    Lewis and Fox median-filter the two images' ratio over the brain (from memory).
+    Here the log ratio fixed / moved is taken over ``mask`` only (the caller's pure
+    white matter) and averaged in blocks about a fifth of ``window_mm`` wide, and the
+    blocks are median-filtered over 5 each way (a window about ``window_mm`` wide), so
+    that the local change of atrophy at an edge barely moves it. Blocks with less than
+    half their voxels in the mask take the value of a quadratic in space fitted to the
+    full blocks (a constant where fewer than 30 are full): the field where the edges
+    lie (cortex, ventricles) is extrapolated, not measured (the residual bias is
+    smooth; a nearest block's value missed a steep field's change by 4-8%). The
+    filtered log ratio is interpolated linearly back to the voxels and exponentiated;
+    the field is 1 outside the box that holds both images' nonzero voxels (where it is
+    worked out), and 1 everywhere where no block is full.
     """
     from scipy import ndimage
 
@@ -361,35 +369,36 @@ def differential_bias(
     box = tuple(slice(low, high + 1)
                 for low, high in zip(support.min(0), support.max(0), strict=True))  # fmt: skip
     fixed, moved, mask = fixed[box], moved[box], mask[box]
-    factor = max(1, round(window_mm / 5 / voxel_mm))
+    sides = np.broadcast_to(np.asarray(voxel_mm, dtype=float), (3,))
+    factors = np.maximum(1, np.round(window_mm / 5 / sides)).astype(int)
     shape = np.asarray(fixed.shape)
-    padded = -(-shape // factor) * factor
+    padded = -(-shape // factors) * factors
     inside = mask & (fixed > 0) & (moved > 0)
-    log_ratio = np.zeros(padded)
-    count = np.zeros(padded)
+    log_ratio, count, in_box = np.zeros(padded), np.zeros(padded), np.zeros(padded)
     crop = tuple(slice(0, n) for n in shape)
     log_ratio[crop][inside] = np.log(fixed[inside] / moved[inside])
     count[crop][inside] = 1.0
-    block_shape = [size for n in padded for size in (n // factor, factor)]
+    in_box[crop] = 1.0
+    block_shape = [size for n, f in zip(padded, factors, strict=True) for size in (n // f, f)]
 
     def block_sum(array):
         return array.reshape(block_shape).sum(axis=(1, 3, 5))
 
     total, voxels = block_sum(log_ratio), block_sum(count)
-    full = voxels >= factor**3 / 2
+    full = voxels >= block_sum(in_box) / 2
     if not full.any():
         return field
     coarse = np.where(full, total / np.maximum(voxels, 1.0), 0.0)
     centres = np.indices(full.shape).reshape(3, -1).T / np.asarray(full.shape)
-    terms = np.column_stack(
-        [np.ones(len(centres)), centres]
-        + [centres[:, i] * centres[:, j] for i in range(3) for j in range(i, 3)]
-    )
+    terms = np.ones((len(centres), 1))
+    if full.sum() >= 30:  # three times the quadratic's 10 terms
+        products = [centres[:, i] * centres[:, j] for i in range(3) for j in range(i, 3)]
+        terms = np.column_stack([terms, centres, *products])
     flat = full.ravel()
     coefficients = np.linalg.lstsq(terms[flat], coarse.ravel()[flat], rcond=None)[0]
     coarse = np.where(full, coarse, (terms @ coefficients).reshape(full.shape))
     coarse = ndimage.median_filter(coarse, size=5, mode="nearest")
-    fine = ndimage.zoom(coarse, factor, order=1, mode="nearest", grid_mode=True)
+    fine = ndimage.zoom(coarse, factors, order=1, mode="nearest", grid_mode=True)
     field[box] = np.exp(fine[crop])
     return field
 

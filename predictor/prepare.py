@@ -180,12 +180,14 @@ class PrepareSettings:
 
         ``[longitudinal] boundary_width_voxels`` of earlier versions is dropped: the band
         is now each region's ``boundary`` setting, whose default (2 voxels, no trim) is
-        what that setting was.
+        what that setting was. A run recorded before ``differential_bias_mm`` existed
+        measured without that correction: 0 (off), not today's default.
         """
         stored = dict(stored)
-        if "boundary_width_voxels" in stored.get("longitudinal", {}):
+        if "longitudinal" in stored:
             longitudinal = dict(stored["longitudinal"])
-            longitudinal.pop("boundary_width_voxels")
+            longitudinal.pop("boundary_width_voxels", None)
+            longitudinal.setdefault("differential_bias_mm", 0.0)
             stored["longitudinal"] = longitudinal
         return load_settings(cls, "prepare.toml", overrides=stored)
 
