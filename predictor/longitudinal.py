@@ -350,8 +350,10 @@ def differential_bias(
     Lewis and Fox median-filter the two images' ratio over the brain (from memory).
     Here the log ratio fixed / moved is taken over ``mask`` only (the caller's pure
     white matter) and averaged in blocks about a fifth of ``window_mm`` wide, and the
-    blocks are median-filtered over 5 each way (a window about ``window_mm`` wide), so
-    that the local change of atrophy at an edge barely moves it. Blocks with less than
+    blocks are median-filtered over 5 along each axis in turn (a separable median,
+    Narendra 1981, IEEE Trans Pattern Anal Mach Intell; a window about ``window_mm``
+    wide; a tenth of the time of the 5 x 5 x 5 cube's), so that the local change of
+    atrophy at an edge barely moves it. Blocks with less than
     half their voxels in the mask take the value of a quadratic in space fitted to the
     full blocks (a constant where fewer than 30 are full): the field where the edges
     lie (cortex, ventricles) is extrapolated, not measured (the residual bias is
@@ -397,7 +399,10 @@ def differential_bias(
     flat = full.ravel()
     coefficients = np.linalg.lstsq(terms[flat], coarse.ravel()[flat], rcond=None)[0]
     coarse = np.where(full, coarse, (terms @ coefficients).reshape(full.shape))
-    coarse = ndimage.median_filter(coarse, size=5, mode="nearest")
+    for axis in range(3):  # separable: 5 blocks along each axis in turn
+        size = [1, 1, 1]
+        size[axis] = 5
+        coarse = ndimage.median_filter(coarse, size=size, mode="nearest")
     fine = ndimage.zoom(coarse, factors, order=1, mode="nearest", grid_mode=True)
     field[box] = np.exp(fine[crop])
     return field
