@@ -69,13 +69,7 @@ from predictor.errors import PredictorError
 from predictor.files import write_json, write_tsv
 from predictor.preprocess import run_registration
 from predictor.regions import RegionSet
-from predictor.spatial import (
-    RAS_TO_LPS,
-    affine_to_matrix,
-    from_sitk,
-    matrix_to_transform,
-    to_sitk,
-)
+from predictor.spatial import affine_to_matrix, from_sitk, matrix_to_transform, to_sitk
 from predictor.volumes import region_volumes
 from predictor.workspace import WITHIN_SUBJECT, Layout
 
@@ -148,32 +142,18 @@ TRANSFORMS = {6: sitk.Euler3DTransform, 9: sitk.ScaleVersor3DTransform,
 
 
 def rigid_alignment(
-    fixed: Visit, moving: Visit, settings, parameters: int = 6, sampling_fraction: float = 0.3,
-    initial: np.ndarray | None = None,
+    fixed: Visit, moving: Visit, settings, parameters: int = 6, sampling_fraction: float = 0.3
 ) -> np.ndarray:
     """4x4 RAS matrix mapping fixed points (mm) to moving points: a rigid registration
     (or, with ``parameters`` 9 or 12, one with three scales or affine) of the brains; the
-    metric samples ``sampling_fraction`` of the fixed brain's voxels. It starts from the
-    brains' centres of mass, or from ``initial`` (a rigid 4x4 RAS map, fixed -> moving;
-    6 parameters only), rotating about the fixed image's centre."""
+    metric samples ``sampling_fraction`` of the fixed brain's voxels."""
     fixed_image, moving_image = fixed.image(), moving.image()
-    if initial is None:
-        start = sitk.CenteredTransformInitializer(
-            fixed_image,
-            moving_image,
-            TRANSFORMS[parameters](),
-            sitk.CenteredTransformInitializerFilter.MOMENTS,
-        )
-    else:
-        if parameters != 6:
-            raise ValueError("a registration starts from a given map only when rigid")
-        lps = RAS_TO_LPS @ initial @ RAS_TO_LPS
-        centre = np.asarray(fixed_image.TransformContinuousIndexToPhysicalPoint(
-            ((np.asarray(fixed_image.GetSize()) - 1) / 2).tolist()))  # fmt: skip
-        start = sitk.Euler3DTransform()
-        start.SetCenter(centre.tolist())
-        start.SetMatrix(lps[:3, :3].ravel().tolist())
-        start.SetTranslation((lps[:3, 3] + lps[:3, :3] @ centre - centre).tolist())
+    initial = sitk.CenteredTransformInitializer(
+        fixed_image,
+        moving_image,
+        TRANSFORMS[parameters](),
+        sitk.CenteredTransformInitializerFilter.MOMENTS,
+    )
     options = SimpleNamespace(
         histogram_bins=48,
         sampling_fraction=sampling_fraction,
@@ -184,7 +164,7 @@ def rigid_alignment(
         smoothing_mm=settings.rigid_smoothing_mm,
     )
     mask = to_sitk(_dilated(fixed.mask, 2).astype(np.uint8), fixed.affine)
-    transform, _ = run_registration(fixed_image, mask, moving_image, start, options)
+    transform, _ = run_registration(fixed_image, mask, moving_image, initial, options)
     return affine_to_matrix(transform)
 
 

@@ -13,12 +13,7 @@ visit's affine scale). For a participant with two or more prepared visits:
    rigid again by its polar decomposition for 6 parameters), so that no visit
    is privileged, and the visits are averaged there. Rounds repeat until the
    mean changes by less than ``within_subject_tolerance`` (RMS over the brain,
-   relative to the mean's) or ``within_subject_rounds`` are done. With 6
-   parameters, a round after the first starts each registration from the
-   visit's map of the round before (the new mean was made with those maps) and
-   runs only the finest level: half the time of a registration from the
-   centres of mass, within 0.05 mm of its result (one template-anatomy
-   participant, four visits, 2 mm).
+   relative to the mean's) or ``within_subject_rounds`` are done.
 2. The participant's one transform to the template: each visit's own
    template registration carried into the mean space, averaged. This is the
    registration of the visits' average anatomy to first order; no new
@@ -80,9 +75,8 @@ from predictor.spatial import to_sitk
 from predictor.workspace import Layout, SubjectFiles
 
 #: changes when an entry's content does (2: the first visit's first map is the identity;
-#: same-day rescans registered to the mean; 3: later rigid rounds start from the last
-#: round's maps, at the finest level)
-SUBJECT_FORMAT = 3
+#: same-day rescans registered to the mean)
+SUBJECT_FORMAT = 2
 #: fewest metric samples of a registration to the mean on its coarsest level
 MIN_SAMPLES = 300
 #: coarsest spacing (mm) of a level of the registration to the mean
@@ -139,23 +133,13 @@ def subject_space(
                        rigid_smoothing_mm=tuple(s for _, s in levels))  # fmt: skip
     coarsest = levels[0][0] ** 3 / max(int(visits[0].mask.sum()), 1)
     fraction = min(1.0, max(settings.within_subject_sampling_fraction, MIN_SAMPLES * coarsest))
-    # rigid rounds after the first start from the last round's maps, which the new mean
-    # was made with, and register at the finest level only
-    finest = replace(settings, rigid_shrink_factors=settings.rigid_shrink_factors[-1:],
-                     rigid_smoothing_mm=settings.rigid_smoothing_mm[-1:])  # fmt: skip
     mean, maps, history = visits[0].t1, [], []
     for round_ in range(settings.within_subject_rounds):
         reference = Visit(mean, affine, {}, {})
-        if round_ == 0:  # the first mean is the first visit on its own grid: the identity
-            maps = [np.eye(4) if k == 0 else
-                    rigid_alignment(reference, visit, settings, parameters, fraction)
-                    for k, visit in enumerate(visits)]  # fmt: skip
-        elif settings.rigid_space:
-            maps = [rigid_alignment(reference, visit, finest, parameters, fraction, initial=m)
-                    for visit, m in zip(visits, maps, strict=True)]  # fmt: skip
-        else:
-            maps = [rigid_alignment(reference, visit, settings, parameters, fraction)
-                    for visit in visits]  # fmt: skip
+        # the first mean is the first visit on its own grid: its map is the identity
+        maps = [np.eye(4) if round_ == 0 and k == 0 else
+                rigid_alignment(reference, visit, settings, parameters, fraction)
+                for k, visit in enumerate(visits)]  # fmt: skip
         centre = np.linalg.inv(average_map(maps, rigid=settings.rigid_space))
         maps = [m @ centre for m in maps]
         new = _mean_image(visits, maps, affine, shape)
