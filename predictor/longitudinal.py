@@ -74,8 +74,9 @@ from predictor.volumes import region_volumes
 from predictor.workspace import WITHIN_SUBJECT, Layout
 
 #: changes when a pair's measurement does (2: demons' coarse levels smooth both images;
-#: 3: aligned through the within-subject space; 4: differential bias correction)
-PAIR_FORMAT = 4
+#: 3: aligned through the within-subject space; 4: differential bias correction; 5: its
+#: field extended by a quadratic and median-filtered separably)
+PAIR_FORMAT = 5
 #: columns of changes.tsv, before one pair of columns per region
 CHANGE_ID = ("participant_id", "session_from", "session_to", "years")
 #: marks a rescan's row in a pair of scans (:func:`rescan_pairs`)
@@ -353,12 +354,13 @@ def differential_bias(
     blocks are median-filtered over 5 along each axis in turn (a separable median,
     Narendra 1981, IEEE Trans Pattern Anal Mach Intell; a window about ``window_mm``
     wide; a tenth of the time of the 5 x 5 x 5 cube's), so that the local change of
-    atrophy at an edge barely moves it. Blocks with less than
-    half their voxels in the mask take the value of a quadratic in space fitted to the
-    full blocks (a constant where fewer than 30 are full): the field where the edges
-    lie (cortex, ventricles) is extrapolated, not measured (the residual bias is
-    smooth; a nearest block's value missed a steep field's change by 4-8%). The
-    filtered log ratio is interpolated linearly back to the voxels and exponentiated;
+    atrophy at an edge barely moves it. (It rejects a compact cluster less well than
+    the cube's median: 3 x 3 x 3 outlying blocks survive it, where the cube needs 63.)
+    Blocks with less than half their voxels in the mask take the value of a quadratic
+    in space fitted to the full blocks (a constant where fewer than 30 are full): the
+    field where the edges lie (cortex, ventricles) is extrapolated, not measured (the
+    residual bias is smooth; a nearest block's value missed a steep field's change by
+    4-8%). The filtered log ratio is interpolated linearly back to the voxels and exponentiated;
     the field is 1 outside the box that holds both images' nonzero voxels (where it is
     worked out), and 1 everywhere where no block is full.
     """
