@@ -360,9 +360,9 @@ def differential_bias(
     in space fitted to the full blocks (a constant where fewer than 30 are full): the
     field where the edges lie (cortex, ventricles) is extrapolated, not measured (the
     residual bias is smooth; a nearest block's value missed a steep field's change by
-    4-8%). The filtered log ratio is interpolated linearly back to the voxels and exponentiated;
-    the field is 1 outside the box that holds both images' nonzero voxels (where it is
-    worked out), and 1 everywhere where no block is full.
+    4-8%). The filtered log ratio is interpolated linearly back to the voxels and
+    exponentiated; the field is 1 outside the box that holds both images' nonzero
+    voxels (where it is worked out), and 1 everywhere where no block is full.
     """
     from scipy import ndimage
 
